@@ -1,0 +1,3 @@
+"""sceneprior: Bayesian clutter and birth intensities for multi-object trackers."""
+
+__version__ = "0.1.0"
