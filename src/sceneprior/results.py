@@ -1,0 +1,206 @@
+"""Run directories: posterior.nc, intensity.nc and summary.json, written atomically.
+
+A run is written into a temporary sibling folder and renamed into place at the end, so a
+crash or Ctrl-C never leaves a half-written run (DESIGN.md §5). See runs/README.md.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import platform
+import shutil
+import tempfile
+from datetime import datetime, timezone
+from pathlib import Path
+
+import numpy as np
+
+from . import __version__
+
+CAUTION = (
+    "Fitted clutter and birth priors are statistical estimates from recorded data. "
+    "Validate them in closed loop with the tracker before operational use; local codes, "
+    "regulations and the system's own safety process take precedence over these numbers."
+)
+
+QUANTILES = {"q05": 0.05, "q50": 0.50, "q95": 0.95}
+SUMMARY_SCHEMA = "sceneprior.summary/1"
+
+
+def _interval(draws: np.ndarray) -> dict:
+    d = np.asarray(draws, dtype=float).reshape(-1)
+    q = np.quantile(d, [0.05, 0.5, 0.95])
+    return {"mean": float(d.mean()), "sd": float(d.std(ddof=1)), "q05": float(q[0]),
+            "q50": float(q[1]), "q95": float(q[2])}
+
+
+def intensity_dataset(result):
+    """xarray Dataset of per-cell posterior summaries of the intensity (CF-style attributes).
+
+    Cells with no area inside the window (permanent masks) are NaN: the model says nothing
+    there that an export should use.
+    """
+    import xarray as xr
+
+    stats = result.stats
+    grid = stats.grid
+    n0, n1 = grid.shape
+    lam = result.cell_intensity()  # (chain, draw, cell)
+    flat = lam.reshape(-1, grid.n_cells)
+    summaries = {
+        "mean": flat.mean(axis=0),
+        "sd": flat.std(axis=0, ddof=1),
+    }
+    qs = np.quantile(flat, list(QUANTILES.values()), axis=0)
+    for (name, _), q in zip(QUANTILES.items(), qs):
+        summaries[name] = q
+    outside = stats.window_area <= 0
+    a0, a1 = grid.axes
+    u1 = "degree" if grid.frame == "polar" else "m"
+    coords = {
+        a0: (a0, np.asarray(grid.centres0), {"units": "m", "long_name": f"{a0} of cell centre"}),
+        a1: (a1, np.asarray(grid.centres1), {"units": u1, "long_name": f"{a1} of cell centre"}),
+        f"{a0}_edges": (f"{a0}_edge", np.asarray(grid.edges0), {"units": "m"}),
+        f"{a1}_edges": (f"{a1}_edge", np.asarray(grid.edges1), {"units": u1}),
+    }
+    data_vars = {}
+    for name, vals in summaries.items():
+        v = np.where(outside, np.nan, vals).reshape(n0, n1)
+        data_vars[f"intensity_{name}"] = (
+            (a0, a1), v,
+            {"units": "m-2 scan-1", "quantity": "intensity",
+             "long_name": f"clutter intensity, posterior {name}, per m² per scan"},
+        )
+    if grid.frame == "polar":
+        # Cell average of the intensity per metre of range per radian of bearing:
+        # ∫_c λ dA / (Δr Δθ) = λ_c (r₁ + r₂)/2 for λ constant per m² on the cell (DESIGN.md §4).
+        r_mid = 0.5 * (grid.edges0[:-1] + grid.edges0[1:])
+        for name, vals in summaries.items():
+            v = np.where(outside, np.nan, vals).reshape(n0, n1) * r_mid[:, None]
+            data_vars[f"intensity_polar_{name}"] = (
+                (a0, a1), v,
+                {"units": "m-1 rad-1 scan-1", "quantity": "intensity",
+                 "long_name": f"clutter intensity, posterior {name}, per m of range per rad of "
+                              "bearing (cell average; = per-m² value × mid-cell range)"},
+            )
+    data_vars["counts"] = ((a0, a1), stats.counts.reshape(n0, n1),
+                           {"units": "1", "long_name": "detections summed over scans (N_c)"})
+    data_vars["exposure"] = ((a0, a1), stats.exposure.reshape(n0, n1),
+                             {"units": "m2 scan", "long_name": "exposure E_c = Σ_k |c ∩ W_k|"})
+    data_vars["window_area"] = ((a0, a1), stats.window_area.reshape(n0, n1),
+                                {"units": "m2", "long_name": "cell area inside the window |c ∩ W|"})
+    data_vars["cell_area"] = ((a0, a1), stats.cell_area.reshape(n0, n1),
+                              {"units": "m2", "long_name": "full cell area"})
+    ds = xr.Dataset(data_vars=data_vars, coords=coords)
+    ds.attrs.update({
+        "title": f"sceneprior clutter intensity, run {result.spec.name}",
+        "frame": grid.frame,
+        "model": result.model.name,
+        "quantiles_note": "per-cell quantiles; their integral is not a quantile of the rate "
+                          "(see summary.json 'rate' for the rate's own interval)",
+        "masked_cells": "NaN where the cell has no area inside the window (permanent masks)",
+        "caution": CAUTION,
+        "sceneprior_version": __version__,
+    })
+    return ds
+
+
+def _versions() -> dict:
+    import arviz
+    import jax
+    import numpyro
+    import xarray
+
+    return {"sceneprior": __version__, "python": platform.python_version(), "numpy": np.__version__,
+            "jax": jax.__version__, "numpyro": numpyro.__version__, "arviz": arviz.__version__,
+            "xarray": xarray.__version__}
+
+
+def spec_hash(spec) -> str:
+    return hashlib.sha256(json.dumps(spec.raw, sort_keys=True, default=str).encode()).hexdigest()
+
+
+def summary_dict(result) -> dict:
+    spec, stats, rec = result.spec, result.stats, result.recording
+    grid = stats.grid
+    rate = result.rate_draws()
+    out = {
+        "schema": SUMMARY_SCHEMA,
+        "run": spec.name,
+        "caution": CAUTION,
+        "model": {"kind": result.model.name, "prior": result.model.describe_prior(result.prior, stats)},
+        "space": {
+            "frame": grid.frame,
+            "axes": list(grid.axes),
+            "bounds": [list(stats.region.bounds0), list(stats.region.bounds1)],
+            "bounds_units": ["m", "degree" if grid.frame == "polar" else "m"],
+            "cells": list(grid.shape),
+            "masks": [m.name for m in stats.region.masks],
+            "region_area_m2": float(stats.region.area()),
+            "window_area_m2": stats.window_total,
+        },
+        "data": {
+            "scans": stats.n_scans,
+            "empty_scans": int((stats.scan_counts == 0).sum()),
+            "detections_read": rec.n_read,
+            "detections_used": rec.n_detections,
+            "dropped_in_masks": rec.n_masked,
+            "dropped_outside_bounds": rec.n_outside,
+            "exposure_m2_scan": stats.total_exposure,
+            "inputs_sha256": rec.inputs,
+            "spec": spec.source,
+            "spec_sha256": spec_hash(spec),
+        },
+        "rate": {"units": "detections per scan in the window (region minus permanent masks)",
+                 **_interval(rate)},
+        "mean_intensity": {"units": "m-2 scan-1 (rate / window area)",
+                           **_interval(rate / stats.window_total)},
+        "sampler": {"method": spec.sampler.method, "chains": spec.sampler.chains,
+                    "warmup": spec.sampler.warmup, "draws": spec.sampler.draws,
+                    "seed": spec.sampler.seed},
+        "diagnostics": result.diagnostics,
+        "draws_kept": "all posterior draws of the model's parameters are in posterior.nc; "
+                      "per-cell intensity draws are derived from them on demand",
+        "versions": _versions(),
+        "timing_s": {k: round(v, 3) for k, v in result.timing.items()},
+        "written_utc": datetime.now(timezone.utc).isoformat(timespec="seconds"),
+    }
+    if result.model.name == "uniform":
+        from .models.uniform import exact_posterior
+
+        a, b = exact_posterior(stats, result.prior)
+        out["exact_posterior"] = {
+            "note": "conjugate Gamma posterior of the intensity ρ (Gelman et al., BDA3 §2.6)",
+            "shape": a, "rate_m2_scan": b, "intensity_mean": a / b, "intensity_sd": float(np.sqrt(a) / b),
+            "rate_mean": a / b * stats.window_total,
+            "rate_sd": float(np.sqrt(a) / b * stats.window_total),
+        }
+    return out
+
+
+def write_run(result, runs_dir: Path | None = None) -> Path:
+    """Write runs/NAME/ atomically and return its path."""
+    runs_dir = Path(runs_dir or result.spec.output_dir)
+    runs_dir.mkdir(parents=True, exist_ok=True)
+    target = runs_dir / result.spec.name
+    tmp = Path(tempfile.mkdtemp(prefix=f".{result.spec.name}.partial-", dir=runs_dir))
+    try:
+        result.idata.to_netcdf(str(tmp / "posterior.nc"), engine="h5netcdf")
+        intensity_dataset(result).to_netcdf(tmp / "intensity.nc", engine="h5netcdf")
+        summary = summary_dict(result)
+        (tmp / "summary.json").write_text(json.dumps(summary, indent=2, ensure_ascii=False) + "\n",
+                                          encoding="utf-8")
+        old = None
+        if target.exists():
+            old = Path(tempfile.mkdtemp(prefix=f".{result.spec.name}.old-", dir=runs_dir))
+            os.replace(target, old / "run")
+        os.chmod(tmp, 0o755)  # mkdtemp makes it private
+        os.replace(tmp, target)
+        if old is not None:
+            shutil.rmtree(old, ignore_errors=True)
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+    return target

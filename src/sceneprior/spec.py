@@ -1,0 +1,354 @@
+"""Fit specifications: TOML files (models/*.toml) turned into validated dataclasses.
+
+This module owns every user-facing message about a specification. Paths inside a
+specification are resolved relative to the specification file's own folder, so a spec
+can be copied together with its data. ``models/template.toml`` documents every key.
+"""
+
+from __future__ import annotations
+
+import difflib
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from .errors import InputError
+
+# Allowed keys, table by table. A value of dict means a sub-table with its own keys;
+# "list-of-tables" entries (TOML [[...]]) are listed in _ARRAY_TABLES.
+_SCHEMA: dict[str, Any] = {
+    "name": None,
+    "description": None,
+    "data": {
+        "detections": None,
+        "scans": None,
+        "n_scans": None,
+        "outside": None,
+        "columns": {"scan": None, "x": None, "y": None, "range": None, "bearing": None},
+    },
+    "space": {
+        "frame": None,
+        "x": None,
+        "y": None,
+        "range": None,
+        "bearing": None,
+        "cells": None,
+        "masks": None,
+    },
+    "model": {
+        "kind": None,
+        "prior": None,  # free table: each model kind checks its own prior keys
+    },
+    "sampler": {
+        "method": None,
+        "chains": None,
+        "warmup": None,
+        "draws": None,
+        "seed": None,
+        "progress": None,
+    },
+    "output": {"dir": None, "draws_budget_mb": None},
+}
+_MASK_KEYS = {"name": None, "polygon": None, "range": None, "bearing": None}
+
+MODEL_KINDS = ("uniform",)
+FRAMES = ("cartesian", "polar")
+
+
+def _suggest(key: str, allowed) -> str:
+    close = difflib.get_close_matches(key, list(allowed), n=1, cutoff=0.5)
+    return f" (did you mean '{close[0]}'?)" if close else ""
+
+
+def _check_keys(table: dict, schema: dict, where: str, source: str) -> None:
+    for key, value in table.items():
+        if key not in schema:
+            allowed = ", ".join(sorted(schema))
+            raise InputError(
+                f"{source}: unknown key '{key}' in [{where or 'top level'}]"
+                f"{_suggest(key, schema)}; allowed keys: {allowed}"
+            )
+        sub = schema[key]
+        if isinstance(sub, dict):
+            if not isinstance(value, dict):
+                raise InputError(f"{source}: '{_join(where, key)}' must be a table ([{_join(where, key)}])")
+            _check_keys(value, sub, _join(where, key), source)
+    if where == "space" and "masks" in table:
+        masks = table["masks"]
+        if not isinstance(masks, list) or not all(isinstance(m, dict) for m in masks):
+            raise InputError(f"{source}: 'space.masks' must be a list of tables ([[space.masks]])")
+        for i, m in enumerate(masks):
+            _check_keys(m, _MASK_KEYS, f"space.masks #{i + 1}", source)
+
+
+def _join(where: str, key: str) -> str:
+    return f"{where}.{key}" if where else key
+
+
+@dataclass(frozen=True)
+class DataSpec:
+    detections: Path
+    scans: Path | None
+    n_scans: int | None
+    outside: str  # "error" | "drop"
+    columns: dict[str, str]
+
+
+@dataclass(frozen=True)
+class MaskSpec:
+    name: str
+    polygon: tuple[tuple[float, float], ...] | None = None
+    range: tuple[float, float] | None = None
+    bearing: tuple[float, float] | None = None
+
+
+@dataclass(frozen=True)
+class SpaceSpec:
+    frame: str
+    bounds0: tuple[float, float]  # x [m] or range [m]
+    bounds1: tuple[float, float]  # y [m] or bearing [deg]
+    cells: tuple[int, int]
+    masks: tuple[MaskSpec, ...] = ()
+
+
+@dataclass(frozen=True)
+class SamplerSpec:
+    method: str = "nuts"  # "nuts" | "exact" (conjugate models only)
+    chains: int = 4
+    warmup: int = 500
+    draws: int = 1000
+    seed: int = 0
+    progress: bool = True
+
+
+@dataclass(frozen=True)
+class ModelSpec:
+    kind: str
+    prior: dict[str, float] = field(default_factory=dict)
+
+
+@dataclass(frozen=True)
+class FitSpec:
+    name: str
+    data: DataSpec
+    space: SpaceSpec
+    model: ModelSpec
+    sampler: SamplerSpec
+    output_dir: Path
+    draws_budget_mb: float
+    source: str  # the file it came from (for messages and provenance)
+    raw: dict = field(default_factory=dict, compare=False, repr=False)
+
+
+def _pair(value, key: str, source: str) -> tuple[float, float]:
+    if (
+        not isinstance(value, (list, tuple))
+        or len(value) != 2
+        or not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in value)
+    ):
+        raise InputError(f"{source}: '{key}' must be two numbers [low, high], got {value!r}")
+    lo, hi = float(value[0]), float(value[1])
+    if not hi > lo:
+        raise InputError(f"{source}: '{key}' must be increasing [low, high], got {value!r}")
+    return lo, hi
+
+
+def _int(value, key: str, source: str, minimum: int = 1) -> int:
+    if not isinstance(value, int) or isinstance(value, bool) or value < minimum:
+        raise InputError(f"{source}: '{key}' must be a whole number ≥ {minimum}, got {value!r}")
+    return value
+
+
+def load_spec(path: str | Path, overrides: dict | None = None) -> FitSpec:
+    """Read and validate a TOML fit specification. ``overrides`` is merged on top (used by
+    the demo and by tests); its paths are taken as given (absolute or relative to cwd)."""
+    path = Path(path)
+    source = str(path)
+    if not path.is_file():
+        raise InputError(f"{source}: specification file not found")
+    try:
+        text = path.read_text(encoding="utf-8")
+    except UnicodeDecodeError as exc:
+        raise InputError(f"{source}: not a UTF-8 text file ({exc.reason})") from None
+    try:
+        raw = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise InputError(f"{source}: cannot parse TOML: {exc}") from None
+    return spec_from_dict(raw, base_dir=path.parent, source=source, overrides=overrides)
+
+
+def _merge(base: dict, over: dict) -> dict:
+    out = dict(base)
+    for k, v in over.items():
+        if isinstance(v, dict) and isinstance(out.get(k), dict):
+            out[k] = _merge(out[k], v)
+        else:
+            out[k] = v
+    return out
+
+
+def spec_from_dict(
+    raw: dict, base_dir: Path, source: str = "<spec>", overrides: dict | None = None
+) -> FitSpec:
+    """Validate a specification given as a dict (parsed TOML)."""
+    _check_keys(raw, _SCHEMA, "", source)
+    if overrides:
+        _check_keys(overrides, _SCHEMA, "", "overrides")
+        raw = _merge(raw, overrides)
+    over_paths = _flat_paths(overrides or {})
+
+    def resolve(key: str, value) -> Path:
+        if not isinstance(value, str) or not value:
+            raise InputError(f"{source}: '{key}' must be a file path (a string)")
+        p = Path(value)
+        if key in over_paths or p.is_absolute():
+            return p
+        return (base_dir / p).resolve()
+
+    name = raw.get("name")
+    if not isinstance(name, str) or not name or "/" in name or name.startswith("."):
+        raise InputError(f"{source}: 'name' (the run's name under the output folder) is required, "
+                         "a plain name such as \"lowmarsh-uniform\"")
+
+    # --- data ---
+    d = raw.get("data")
+    if not isinstance(d, dict) or "detections" not in d:
+        raise InputError(f"{source}: [data] needs 'detections' (path to a CSV or Parquet table)")
+    outside = d.get("outside", "error")
+    if outside not in ("error", "drop"):
+        raise InputError(f"{source}: 'data.outside' must be \"error\" or \"drop\", got {outside!r}")
+    n_scans = d.get("n_scans")
+    if n_scans is not None:
+        n_scans = _int(n_scans, "data.n_scans", source)
+    scans = resolve("data.scans", d["scans"]) if "scans" in d else None
+    if scans is not None and n_scans is not None:
+        raise InputError(f"{source}: give either 'data.scans' (a scans table) or 'data.n_scans', not both")
+    if scans is None and n_scans is None:
+        raise InputError(
+            f"{source}: no scan list: set 'data.scans' (a table with one row per scan, empty "
+            "scans included) or 'data.n_scans' (scan ids 0..n-1); without it empty scans are "
+            "invisible and the rate would be biased upward"
+        )
+    columns = {k: k for k in ("scan", "x", "y", "range", "bearing")}
+    for k, v in (d.get("columns") or {}).items():
+        if not isinstance(v, str) or not v:
+            raise InputError(f"{source}: 'data.columns.{k}' must be a column name (a string)")
+        columns[k] = v
+    data = DataSpec(
+        detections=resolve("data.detections", d["detections"]),
+        scans=scans,
+        n_scans=n_scans,
+        outside=outside,
+        columns=columns,
+    )
+
+    # --- space ---
+    s = raw.get("space")
+    if not isinstance(s, dict):
+        raise InputError(f"{source}: [space] is required (frame, bounds, cells)")
+    frame = s.get("frame")
+    if frame not in FRAMES:
+        raise InputError(f"{source}: 'space.frame' must be \"cartesian\" or \"polar\", got {frame!r}")
+    k0, k1 = ("x", "y") if frame == "cartesian" else ("range", "bearing")
+    other = ("range", "bearing") if frame == "cartesian" else ("x", "y")
+    for k in other:
+        if k in s:
+            raise InputError(f"{source}: 'space.{k}' does not belong to a {frame} space; use "
+                             f"'space.{k0}' and 'space.{k1}'")
+    for k in (k0, k1, "cells"):
+        if k not in s:
+            raise InputError(f"{source}: [space] of a {frame} frame needs '{k}'")
+    b0 = _pair(s[k0], f"space.{k0}", source)
+    b1 = _pair(s[k1], f"space.{k1}", source)
+    cells = s["cells"]
+    if not isinstance(cells, list) or len(cells) != 2:
+        raise InputError(f"{source}: 'space.cells' must be two whole numbers [{k0} cells, {k1} cells]")
+    cells = (_int(cells[0], "space.cells", source), _int(cells[1], "space.cells", source))
+    masks = []
+    for i, m in enumerate(s.get("masks", [])):
+        mname = str(m.get("name", f"mask {i + 1}"))
+        if "polygon" in m:
+            if "range" in m or "bearing" in m:
+                raise InputError(f"{source}: mask '{mname}' has both 'polygon' and range/bearing; give one")
+            poly = m["polygon"]
+            try:
+                verts = tuple((float(p[0]), float(p[1])) for p in poly if len(p) == 2)
+            except (TypeError, ValueError):
+                verts = ()
+            if len(verts) != len(poly) or len(verts) < 3:
+                raise InputError(f"{source}: mask '{mname}': 'polygon' must be ≥ 3 [x, y] pairs in metres")
+            masks.append(MaskSpec(name=mname, polygon=verts))
+        elif "range" in m or "bearing" in m:
+            if frame != "polar":
+                raise InputError(f"{source}: mask '{mname}': range/bearing masks need a polar space; "
+                                 "use 'polygon' on a cartesian space")
+            r = _pair(m.get("range", list(b0)), f"space.masks '{mname}' range", source)
+            b = _pair(m.get("bearing", list(b1)), f"space.masks '{mname}' bearing", source)
+            masks.append(MaskSpec(name=mname, range=r, bearing=b))
+        else:
+            raise InputError(f"{source}: mask '{mname}' needs 'polygon' (cartesian) or 'range'/'bearing' (polar)")
+    space = SpaceSpec(frame=frame, bounds0=b0, bounds1=b1, cells=cells, masks=tuple(masks))
+
+    # --- model ---
+    mdl = raw.get("model")
+    if not isinstance(mdl, dict) or "kind" not in mdl:
+        raise InputError(f"{source}: [model] needs 'kind' (one of: {', '.join(MODEL_KINDS)})")
+    kind = mdl["kind"]
+    if kind not in MODEL_KINDS:
+        raise InputError(f"{source}: unknown model kind {kind!r}{_suggest(str(kind), MODEL_KINDS)}; "
+                         f"available: {', '.join(MODEL_KINDS)}")
+    prior = {}
+    if not isinstance(mdl.get("prior", {}), dict):
+        raise InputError(f"{source}: 'model.prior' must be a table ([model.prior])")
+    for k, v in (mdl.get("prior") or {}).items():
+        if not isinstance(v, (int, float)) or isinstance(v, bool) or not v > 0:
+            raise InputError(f"{source}: 'model.prior.{k}' must be a positive number, got {v!r}")
+        prior[k] = float(v)
+    model = ModelSpec(kind=kind, prior=prior)
+
+    # --- sampler ---
+    smp = raw.get("sampler") or {}
+    method = smp.get("method", "nuts")
+    if method not in ("nuts", "exact"):
+        raise InputError(f"{source}: 'sampler.method' must be \"nuts\" or \"exact\", got {method!r}")
+    progress = smp.get("progress", True)
+    if not isinstance(progress, bool):
+        raise InputError(f"{source}: 'sampler.progress' must be true or false")
+    sampler = SamplerSpec(
+        method=method,
+        chains=_int(smp.get("chains", 4), "sampler.chains", source),
+        warmup=_int(smp.get("warmup", 500), "sampler.warmup", source, minimum=0),
+        draws=_int(smp.get("draws", 1000), "sampler.draws", source),
+        seed=_int(smp.get("seed", 0), "sampler.seed", source, minimum=0),
+        progress=progress,
+    )
+
+    out = raw.get("output") or {}
+    out_dir = resolve("output.dir", out["dir"]) if "dir" in out else Path("runs").resolve()
+    budget = out.get("draws_budget_mb", 1024)
+    if not isinstance(budget, (int, float)) or isinstance(budget, bool) or budget <= 0:
+        raise InputError(f"{source}: 'output.draws_budget_mb' must be a positive number of MB")
+
+    return FitSpec(
+        name=name,
+        data=data,
+        space=space,
+        model=model,
+        sampler=sampler,
+        output_dir=out_dir,
+        draws_budget_mb=float(budget),
+        source=source,
+        raw=raw,
+    )
+
+
+def _flat_paths(over: dict, prefix: str = "") -> set[str]:
+    keys = set()
+    for k, v in over.items():
+        key = _join(prefix, k)
+        if isinstance(v, dict):
+            keys |= _flat_paths(v, key)
+        else:
+            keys.add(key)
+    return keys
