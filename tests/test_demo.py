@@ -1,0 +1,102 @@
+"""The demo end to end: simulate Lowmarsh, fit the uniform model, read the run back.
+
+The reference for the rate is the simulator's ground truth ∫_W λ dA (Gauss–Legendre
+quadrature of the known intensity), against which the posterior mean must lie within 3.5
+posterior sd (DESIGN.md §7: one replicate, |z| < 3.5).
+"""
+
+from __future__ import annotations
+
+import json
+import tomllib
+
+import numpy as np
+import pytest
+import xarray as xr
+
+from conftest import REPO
+
+
+def test_demo_rate_covers_truth(demo_run):
+    summary = json.loads((demo_run / "demo" / "summary.json").read_text())
+    truth = json.loads((demo_run / "demo-data" / "truth.json").read_text())
+    z = (summary["rate"]["mean"] - truth["true_rate_per_scan"]) / summary["rate"]["sd"]
+    assert abs(z) < 3.5, z
+    assert truth["true_rate_quadrature_error"] < 1e-6 * truth["true_rate_per_scan"]
+    d = summary["data"]
+    assert d["detections_used"] + d["dropped_in_masks"] + d["dropped_outside_bounds"] == d["detections_read"]
+    assert d["detections_used"] == truth["detections_in_window"]
+    assert d["dropped_in_masks"] > 0  # the land sector returns clutter that must be dropped
+    assert summary["caution"] and "closed loop" in summary["caution"]
+    dg = summary["diagnostics"]
+    assert dg["divergences"] == 0 and dg["variables"]["rate"]["r_hat"] < 1.01
+
+
+def test_demo_nuts_agrees_with_its_exact_posterior(demo_run):
+    s = json.loads((demo_run / "demo" / "summary.json").read_text())
+    ex = s["exact_posterior"]
+    ess = s["diagnostics"]["variables"]["rate"]["ess_bulk"]
+    assert abs(s["rate"]["mean"] - ex["rate_mean"]) < 4 * ex["rate_sd"] / np.sqrt(ess)
+
+
+def test_intensity_file_units_and_polar_labels(demo_run):
+    ds = xr.open_dataset(demo_run / "demo" / "intensity.nc", engine="h5netcdf")
+    assert ds["intensity_mean"].attrs["units"] == "m-2 scan-1"
+    assert ds["intensity_polar_mean"].attrs["units"] == "m-1 rad-1 scan-1"
+    assert ds["range"].attrs["units"] == "m" and ds["bearing"].attrs["units"] == "degree"
+    # per m·rad = per m² × mid-cell range (cell average of λ·r; DESIGN.md §4)
+    r_mid = 0.5 * (ds["range_edges"].values[:-1] + ds["range_edges"].values[1:])
+    np.testing.assert_allclose(ds["intensity_polar_mean"].values,
+                               ds["intensity_mean"].values * r_mid[:, None], rtol=1e-12)
+    # the map integrates to the rate: Σ_c λ_c |c ∩ W| (uniform: exactly mean ρ · |W|)
+    s = json.loads((demo_run / "demo" / "summary.json").read_text())
+    integral = float(np.nansum(ds["intensity_mean"].values * ds["window_area"].values))
+    assert integral == pytest.approx(s["rate"]["mean"], rel=1e-9)
+    # land cells (bearing 45..70, fully masked) are NaN, cut cells (40..45) are not
+    land = ds["bearing"].values > 45
+    assert np.isnan(ds["intensity_mean"].values[:, land]).all()
+    assert np.isfinite(ds["intensity_mean"].values[:, ~land]).all()
+    # exact polar cell areas: (r2² − r1²)/2 · Δθ
+    e = ds["range_edges"].values
+    want = (e[1:] ** 2 - e[:-1] ** 2) / 2 * np.deg2rad(5.0)
+    np.testing.assert_allclose(ds["cell_area"].values[:, 0], want, rtol=1e-12)
+    ds.close()
+
+
+def test_posterior_file_is_inference_data(demo_run):
+    import arviz as az
+
+    idata = az.from_netcdf(demo_run / "demo" / "posterior.nc")
+    assert set(idata.posterior.data_vars) >= {"intensity", "rate"}
+    assert idata.posterior.sizes["chain"] == 4 and idata.posterior.sizes["draw"] == 1000
+
+
+def test_models_spec_matches_packaged_demo_spec():
+    user = tomllib.loads((REPO / "models" / "lowmarsh-uniform.toml").read_text())
+    packaged = tomllib.loads((REPO / "src" / "sceneprior" / "specs" / "lowmarsh-uniform.toml").read_text())
+    for d in (user, packaged):
+        d.pop("data"), d.pop("output")
+    assert user == packaged
+
+
+def test_models_spec_fits_demo_data(demo_run, tmp_path):
+    """models/lowmarsh-uniform.toml runs on the demo data (paths redirected)."""
+    from sceneprior.fitting import prepare
+    from sceneprior.spec import load_spec
+
+    spec = load_spec(REPO / "models" / "lowmarsh-uniform.toml", overrides={
+        "data": {"detections": str(demo_run / "demo-data" / "detections.csv"),
+                 "scans": str(demo_run / "demo-data" / "scans.csv")}})
+    _, rec, stats = prepare(spec)
+    assert stats.n_scans == 600 and rec.n_masked > 0
+
+
+def test_help_states_units(capsys):
+    from sceneprior.cli import main
+
+    for args in (["--help"], ["fit", "--help"], ["simulate", "--help"], ["demo", "--help"]):
+        with pytest.raises(SystemExit) as exc:
+            main(args)
+        assert exc.value.code == 0
+        out = capsys.readouterr().out
+        assert "per scan" in out and "m²" in out, args
