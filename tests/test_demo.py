@@ -100,3 +100,14 @@ def test_help_states_units(capsys):
         assert exc.value.code == 0
         out = capsys.readouterr().out
         assert "per scan" in out and "m²" in out, args
+
+
+def test_cell_draws_within_budget(demo_run):
+    ds = xr.open_dataset(demo_run / "demo" / "cell_draws.nc", engine="h5netcdf")
+    assert ds["intensity"].dtype == np.float32 and ds["intensity"].attrs["units"] == "m-2 scan-1"
+    assert ds.attrs["thinning"] == 1 and ds.sizes["sample"] == 4000  # 13 MB ≪ 1024 MB budget
+    from sceneprior.results import thin_for_budget
+
+    # 4000 draws × 10⁶ cells × 4 B = 16 GB: a 1024 MB budget keeps 256 draws (every 16th)
+    assert thin_for_budget(4000, 10**6, 1024) == 16
+    ds.close()

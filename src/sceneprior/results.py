@@ -107,6 +107,36 @@ def intensity_dataset(result):
     return ds
 
 
+def thin_for_budget(n_draws: int, n_cells: int, budget_mb: float) -> int:
+    """Thinning step so that kept per-cell draws fit ``budget_mb`` in float32."""
+    per_draw = 4.0 * n_cells / 1e6  # MB
+    keep = max(1, int(budget_mb // per_draw)) if per_draw > 0 else n_draws
+    return max(1, -(-n_draws // keep))  # ceil(n_draws / keep)
+
+
+def cell_draws_dataset(result):
+    """Thinned per-cell intensity draws (float32) within the spec's memory budget
+    (DESIGN.md §5), so quantile export, per-cell comparison and predictive checks can read
+    them without re-running the model. Dimensions (sample, cell); cell = flat C-order index."""
+    import xarray as xr
+
+    lam = result.cell_intensity()
+    c, d, n = lam.shape
+    flat = lam.reshape(c * d, n)
+    step = thin_for_budget(c * d, n, result.spec.draws_budget_mb)
+    kept = np.ascontiguousarray(flat[::step], dtype=np.float32)
+    rate = result.rate_draws().reshape(-1)[::step]
+    return xr.Dataset(
+        {"intensity": (("sample", "cell"), kept,
+                       {"units": "m-2 scan-1", "long_name": "posterior draws of the cell intensity"}),
+         "rate": (("sample",), rate.astype(np.float64),
+                  {"units": "detections per scan", "long_name": "posterior draws of the rate over the window"})},
+        attrs={"thinning": step, "draws_total": c * d, "budget_mb": result.spec.draws_budget_mb,
+               "precision": "float32 (intensity); the summaries in intensity.nc use all draws in float64",
+               "order": "sample = chain-major flattening of (chain, draw), then thinned"},
+    )
+
+
 def _versions() -> dict:
     import arviz
     import jax
@@ -161,8 +191,13 @@ def summary_dict(result) -> dict:
                     "warmup": spec.sampler.warmup, "draws": spec.sampler.draws,
                     "seed": spec.sampler.seed},
         "diagnostics": result.diagnostics,
-        "draws_kept": "all posterior draws of the model's parameters are in posterior.nc; "
-                      "per-cell intensity draws are derived from them on demand",
+        "draws_kept": {
+            "posterior.nc": "all draws of the model's parameters",
+            "cell_draws.nc": "per-cell intensity draws, float32, thinned to fit the budget",
+            "budget_mb": spec.draws_budget_mb,
+            "thinning": thin_for_budget(spec.sampler.chains * spec.sampler.draws, grid.n_cells,
+                                        spec.draws_budget_mb),
+        },
         "versions": _versions(),
         "timing_s": {k: round(v, 3) for k, v in result.timing.items()},
         "written_utc": datetime.now(timezone.utc).isoformat(timespec="seconds"),
@@ -189,6 +224,8 @@ def write_run(result, runs_dir: Path | None = None) -> Path:
     try:
         result.idata.to_netcdf(str(tmp / "posterior.nc"), engine="h5netcdf")
         intensity_dataset(result).to_netcdf(tmp / "intensity.nc", engine="h5netcdf")
+        cd = cell_draws_dataset(result)
+        cd.to_netcdf(tmp / "cell_draws.nc", engine="h5netcdf")
         summary = summary_dict(result)
         (tmp / "summary.json").write_text(json.dumps(summary, indent=2, ensure_ascii=False) + "\n",
                                           encoding="utf-8")
