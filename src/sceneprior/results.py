@@ -241,3 +241,65 @@ def write_run(result, runs_dir: Path | None = None) -> Path:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
     return target
+
+
+RUN_FILES = ("posterior.nc", "intensity.nc", "cell_draws.nc", "summary.json")
+
+
+class Run:
+    """A run directory read back from disk (export, report, check and compare use this).
+
+    Attributes: ``path``, ``summary`` (dict), and lazily opened ``intensity`` (xarray),
+    ``cell_draws`` (xarray) and ``posterior`` (arviz InferenceData).
+    """
+
+    def __init__(self, path: Path):
+        from .errors import InputError
+
+        self.path = Path(path)
+        if not self.path.is_dir():
+            raise InputError(f"{self.path}: not a run directory (expected runs/NAME/)")
+        missing = [f for f in RUN_FILES if not (self.path / f).is_file()]
+        if missing:
+            raise InputError(f"{self.path}: incomplete run, missing {', '.join(missing)}; re-run "
+                             "`sceneprior fit` for it")
+        try:
+            self.summary = json.loads((self.path / "summary.json").read_text(encoding="utf-8"))
+        except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+            raise InputError(f"{self.path / 'summary.json'}: unreadable ({exc})") from None
+        if self.summary.get("schema") != SUMMARY_SCHEMA:
+            raise InputError(f"{self.path}: run written by another sceneprior version (summary schema "
+                             f"{self.summary.get('schema')!r}, this version reads {SUMMARY_SCHEMA!r}); "
+                             "re-run `sceneprior fit`")
+        self._cache: dict = {}
+
+    def _open(self, name):
+        if name not in self._cache:
+            import xarray as xr
+
+            self._cache[name] = xr.load_dataset(self.path / name, engine="h5netcdf")
+        return self._cache[name]
+
+    @property
+    def intensity(self):
+        return self._open("intensity.nc")
+
+    @property
+    def cell_draws(self):
+        return self._open("cell_draws.nc")
+
+    @property
+    def posterior(self):
+        if "posterior" not in self._cache:
+            import arviz as az
+
+            self._cache["posterior"] = az.from_netcdf(self.path / "posterior.nc")
+        return self._cache["posterior"]
+
+    @property
+    def name(self) -> str:
+        return self.summary["run"]
+
+
+def load_run(path) -> Run:
+    return Run(Path(path))
