@@ -182,6 +182,7 @@ def summary_dict(result) -> dict:
             "inputs_sha256": rec.inputs,
             "spec": spec.source,
             "spec_sha256": spec_hash(spec),
+            "spec_content": spec.raw,
         },
         "rate": {"units": "detections per scan in the window (region minus permanent masks)",
                  **_interval(rate)},
