@@ -38,6 +38,7 @@ class FitResult:
     stats: BinnedStats
     model: ModelKind
     prior: dict
+    setup: object  # models.registry.ModelSetup
     idata: object  # arviz.InferenceData
     diagnostics: dict
     timing: dict = field(default_factory=dict)
@@ -49,7 +50,7 @@ class FitResult:
 
     def cell_intensity(self) -> np.ndarray:
         """(chain, draw, n_cells) intensity draws [m⁻² scan⁻¹]."""
-        return self.model.cell_intensity(self.posterior_arrays(), self.stats)
+        return self.model.cell_intensity(self.posterior_arrays(), self.stats, self.setup)
 
     def rate_draws(self) -> np.ndarray:
         """(chain, draw) expected detections per scan in the window."""
@@ -78,6 +79,7 @@ def fit(spec: FitSpec, progress: bool = True, log=print) -> FitResult:
         f"dropped {rec.n_masked} in masks and {rec.n_outside} outside the bounds; "
         f"binned on {stats.grid.shape[0]}×{stats.grid.shape[1]} {region.frame} cells"
     )
+    setup = kind.setup(stats, prior, spec.model)
     smp = spec.sampler
     if smp.method == "exact":
         if kind.exact is None:
@@ -93,7 +95,7 @@ def fit(spec: FitSpec, progress: bool = True, log=print) -> FitResult:
 
         log(f"sampling {kind.name} with NUTS: {smp.chains} chains × ({smp.warmup} warmup + "
             f"{smp.draws} draws), seed {smp.seed}")
-        idata = run_nuts(kind.fn, kind.inputs(stats, prior), smp, progress=progress)
+        idata = run_nuts(kind.fn, setup.inputs, smp, progress=progress)
     t_mcmc = time.perf_counter()
     from .inference import diagnostics
 
@@ -104,6 +106,7 @@ def fit(spec: FitSpec, progress: bool = True, log=print) -> FitResult:
         stats=stats,
         model=kind,
         prior=prior,
+        setup=setup,
         idata=idata,
         diagnostics=diag,
         timing={"read_and_bin_s": t_bin - t0, "sampling_s": t_mcmc - t_bin},

@@ -203,6 +203,8 @@ def summary_dict(result) -> dict:
         "timing_s": {k: round(v, 3) for k, v in result.timing.items()},
         "written_utc": datetime.now(timezone.utc).isoformat(timespec="seconds"),
     }
+    if result.model.summary is not None:
+        out[result.model.name] = result.model.summary(result)
     if result.model.name == "uniform":
         from .models.uniform import exact_posterior
 

@@ -7,7 +7,7 @@ to ``spec.MODEL_KINDS`` (DEVELOPERS.md, "Adding a model").
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Callable
 
 from ..errors import InputError
@@ -16,14 +16,32 @@ from . import uniform
 
 @dataclass(frozen=True)
 class ModelKind:
+    """What the pipeline needs to know of a model kind.
+
+    setup(stats, prior, model_spec) -> ModelSetup: the numpyro inputs and anything the
+        model's other helpers need (design matrices, torus geometry, ...), built once.
+    cell_intensity(posterior, stats, setup) -> (chain, draw, n_cells) per m² per scan.
+    describe_prior(prior, stats) -> dict written to summary.json.
+    hyper: sites checked by the diagnostics and the gate, besides the rate.
+    exact(stats, prior, rng, chains, draws) -> posterior dict, for conjugate models.
+    summary(result) -> dict merged into summary.json under the model's name (optional).
+    """
+
     name: str
-    fn: Callable  # numpyro model
+    fn: Callable
     default_prior: dict
-    inputs: Callable  # (stats, prior) -> kwargs of fn
-    cell_intensity: Callable  # (posterior dict, stats) -> (chain, draw, n_cells) per m² per scan
-    describe_prior: Callable  # (prior, stats) -> dict, written to summary.json
-    hyper: tuple[str, ...]  # sites checked by the diagnostics (besides the rate)
-    exact: Callable | None = None  # (stats, prior, rng, chains, draws) -> posterior dict
+    setup: Callable
+    cell_intensity: Callable
+    describe_prior: Callable
+    hyper: tuple[str, ...]
+    exact: Callable | None = None
+    summary: Callable | None = None
+
+
+@dataclass
+class ModelSetup:
+    inputs: dict  # keyword arguments of the numpyro function
+    extra: dict = field(default_factory=dict)
 
 
 MODELS: dict[str, ModelKind] = {
@@ -31,7 +49,7 @@ MODELS: dict[str, ModelKind] = {
         name="uniform",
         fn=uniform.uniform_model,
         default_prior=uniform.DEFAULT_PRIOR,
-        inputs=uniform.model_inputs,
+        setup=uniform.setup,
         cell_intensity=uniform.cell_intensity,
         describe_prior=uniform.describe_prior,
         hyper=("intensity",),

@@ -33,14 +33,16 @@ def uniform_model(total_count, total_exposure, window_total, shape, rate):
     numpyro.deterministic("rate", rho * window_total)
 
 
-def model_inputs(stats, prior: dict) -> dict:
-    return dict(
+def setup(stats, prior: dict, model_spec=None):
+    from .registry import ModelSetup
+
+    return ModelSetup(inputs=dict(
         total_count=float(stats.counts.sum()),
         total_exposure=stats.total_exposure,
         window_total=stats.window_total,
         shape=prior["shape"],
         rate=prior["rate"],
-    )
+    ))
 
 
 def exact_posterior(stats, prior: dict) -> tuple[float, float]:
@@ -56,7 +58,7 @@ def exact_draws(stats, prior: dict, rng: np.random.Generator, chains: int, draws
     return {"intensity": rho, "rate": rho * stats.window_total}
 
 
-def cell_intensity(posterior: dict, stats) -> np.ndarray:
+def cell_intensity(posterior: dict, stats, setup=None) -> np.ndarray:
     """Per-cell intensity draws [m⁻² scan⁻¹], shaped (chain, draw, n_cells) by broadcasting."""
     rho = np.asarray(posterior["intensity"])
     return np.broadcast_to(rho[..., None], rho.shape + (stats.grid.n_cells,))
