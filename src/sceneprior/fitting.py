@@ -95,7 +95,8 @@ def fit(spec: FitSpec, progress: bool = True, log=print) -> FitResult:
 
         log(f"sampling {kind.name} with NUTS: {smp.chains} chains × ({smp.warmup} warmup + "
             f"{smp.draws} draws), seed {smp.seed}")
-        idata = run_nuts(kind.fn, setup.inputs, smp, progress=progress)
+        idata = run_nuts(kind.fn, setup.inputs, smp, progress=progress,
+                         dims=setup.extra.get("dims"), coords=setup.extra.get("coords"))
     t_mcmc = time.perf_counter()
     from .inference import diagnostics
 

@@ -38,7 +38,8 @@ def configure_jax() -> None:
     _CONFIGURED = True
 
 
-def run_nuts(fn, inputs: dict, sampler, progress: bool = True, dense_mass: bool = False):
+def run_nuts(fn, inputs: dict, sampler, progress: bool = True, dense_mass: bool = False,
+             dims: dict | None = None, coords: dict | None = None):
     """Sample ``fn(**inputs)`` with NUTS; returns (InferenceData, extra) where extra holds
     the leapfrog steps and divergences per draw."""
     configure_jax()
@@ -56,7 +57,7 @@ def run_nuts(fn, inputs: dict, sampler, progress: bool = True, dense_mass: bool 
         progress_bar=progress and sampler.progress,
     )
     mcmc.run(jax.random.PRNGKey(sampler.seed), extra_fields=("diverging", "num_steps"), **inputs)
-    idata = az.from_numpyro(mcmc, log_likelihood=False)
+    idata = az.from_numpyro(mcmc, log_likelihood=False, dims=dims, coords=coords)
     return idata
 
 

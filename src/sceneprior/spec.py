@@ -39,6 +39,8 @@ _SCHEMA: dict[str, Any] = {
     "model": {
         "kind": None,
         "prior": None,  # free table: each model kind checks its own prior keys
+        "covariates": None,  # loglinear
+        "rasters": None,  # loglinear: [[model.rasters]] name, file
     },
     "sampler": {
         "method": None,
@@ -52,7 +54,9 @@ _SCHEMA: dict[str, Any] = {
 }
 _MASK_KEYS = {"name": None, "polygon": None, "range": None, "bearing": None}
 
-MODEL_KINDS = ("uniform",)
+MODEL_KINDS = ("uniform", "loglinear")
+# model-table keys each kind accepts besides kind and prior
+MODEL_OPTIONS = {"uniform": (), "loglinear": ("covariates", "rasters")}
 FRAMES = ("cartesian", "polar")
 
 
@@ -126,6 +130,7 @@ class SamplerSpec:
 class ModelSpec:
     kind: str
     prior: dict[str, float] = field(default_factory=dict)
+    options: dict = field(default_factory=dict)  # kind-specific keys (covariates, rasters, ...)
 
 
 @dataclass(frozen=True)
@@ -305,7 +310,28 @@ def spec_from_dict(
         if not isinstance(v, (int, float)) or isinstance(v, bool) or not v > 0:
             raise InputError(f"{source}: 'model.prior.{k}' must be a positive number, got {v!r}")
         prior[k] = float(v)
-    model = ModelSpec(kind=kind, prior=prior)
+    options = {}
+    for k in _SCHEMA["model"]:
+        if k in ("kind", "prior") or k not in mdl:
+            continue
+        if k not in MODEL_OPTIONS[kind]:
+            raise InputError(f"{source}: 'model.{k}' does not apply to model kind '{kind}'")
+        options[k] = mdl[k]
+    if "rasters" in options:
+        rasters = options["rasters"]
+        if not isinstance(rasters, list) or not all(isinstance(r, dict) for r in rasters):
+            raise InputError(f"{source}: 'model.rasters' must be a list of tables ([[model.rasters]])")
+        resolved = []
+        for i, r in enumerate(rasters):
+            if set(r) - {"name", "file"} or "name" not in r or "file" not in r:
+                raise InputError(f"{source}: model.rasters #{i + 1} needs exactly 'name' and 'file'")
+            resolved.append({"name": str(r["name"]), "file": resolve(f"model.rasters.{r['name']}", r["file"])})
+        options["rasters"] = resolved
+    if "covariates" in options:
+        cov = options["covariates"]
+        if not isinstance(cov, list) or not all(isinstance(c, str) for c in cov):
+            raise InputError(f"{source}: 'model.covariates' must be a list of names, e.g. [\"log_range\", \"bearing\"]")
+    model = ModelSpec(kind=kind, prior=prior, options=options)
 
     # --- sampler ---
     smp = raw.get("sampler") or {}

@@ -11,7 +11,7 @@ from dataclasses import dataclass, field
 from typing import Callable
 
 from ..errors import InputError
-from . import uniform
+from . import loglinear, uniform
 
 
 @dataclass(frozen=True)
@@ -54,6 +54,16 @@ MODELS: dict[str, ModelKind] = {
         describe_prior=uniform.describe_prior,
         hyper=("intensity",),
         exact=uniform.exact_draws,
+    ),
+    "loglinear": ModelKind(
+        name="loglinear",
+        fn=loglinear.loglinear_model,
+        default_prior=loglinear.DEFAULT_PRIOR,
+        setup=loglinear.setup,
+        cell_intensity=loglinear.cell_intensity,
+        describe_prior=loglinear.describe_prior,
+        hyper=("alpha", "beta_std"),
+        summary=loglinear.summary,
     ),
 }
 
