@@ -50,7 +50,8 @@ _SCHEMA: dict[str, Any] = {
         "seed": None,
         "progress": None,
     },
-    "output": {"dir": None, "draws_budget_mb": None},
+    "output": {"dir": None, "draws_budget_mb": None, "thresholds": None},
+    "zones": None,  # [[zones]]: name + polygon (x, y m) or range/bearing intervals
 }
 _MASK_KEYS = {"name": None, "polygon": None, "range": None, "bearing": None}
 
@@ -78,6 +79,12 @@ def _check_keys(table: dict, schema: dict, where: str, source: str) -> None:
             if not isinstance(value, dict):
                 raise InputError(f"{source}: '{_join(where, key)}' must be a table ([{_join(where, key)}])")
             _check_keys(value, sub, _join(where, key), source)
+    if where == "" and "zones" in table:
+        zones = table["zones"]
+        if not isinstance(zones, list) or not all(isinstance(z, dict) for z in zones):
+            raise InputError(f"{source}: 'zones' must be a list of tables ([[zones]])")
+        for i, z in enumerate(zones):
+            _check_keys(z, _MASK_KEYS, f"zones #{i + 1}", source)
     if where == "space" and "masks" in table:
         masks = table["masks"]
         if not isinstance(masks, list) or not all(isinstance(m, dict) for m in masks):
@@ -143,6 +150,8 @@ class FitSpec:
     output_dir: Path
     draws_budget_mb: float
     source: str  # the file it came from (for messages and provenance)
+    zones: tuple[MaskSpec, ...] = ()  # named sub-areas with their own rate posterior
+    thresholds: tuple[float, ...] = ()  # intensities [m⁻² scan⁻¹] for exceedance maps
     raw: dict = field(default_factory=dict, compare=False, repr=False)
 
 
@@ -163,6 +172,30 @@ def _int(value, key: str, source: str, minimum: int = 1) -> int:
     if not isinstance(value, int) or isinstance(value, bool) or value < minimum:
         raise InputError(f"{source}: '{key}' must be a whole number ≥ {minimum}, got {value!r}")
     return value
+
+
+def _area_spec(m: dict, i: int, what: str, frame: str, b0, b1, source: str) -> MaskSpec:
+    """A mask or zone: a polygon (x, y in m) or range/bearing intervals (polar frames)."""
+    mname = str(m.get("name", f"{what} {i + 1}"))
+    if "polygon" in m:
+        if "range" in m or "bearing" in m:
+            raise InputError(f"{source}: {what} '{mname}' has both 'polygon' and range/bearing; give one")
+        poly = m["polygon"]
+        try:
+            verts = tuple((float(p[0]), float(p[1])) for p in poly if len(p) == 2)
+        except (TypeError, ValueError):
+            verts = ()
+        if not isinstance(poly, list) or len(verts) != len(poly) or len(verts) < 3:
+            raise InputError(f"{source}: {what} '{mname}': 'polygon' must be ≥ 3 [x, y] pairs in metres")
+        return MaskSpec(name=mname, polygon=verts)
+    if "range" in m or "bearing" in m:
+        if frame != "polar":
+            raise InputError(f"{source}: {what} '{mname}': range/bearing intervals need a polar space; "
+                             "use 'polygon' on a cartesian space")
+        r = _pair(m.get("range", list(b0)), f"{what} '{mname}' range", source)
+        b = _pair(m.get("bearing", list(b1)), f"{what} '{mname}' bearing", source)
+        return MaskSpec(name=mname, range=r, bearing=b)
+    raise InputError(f"{source}: {what} '{mname}' needs 'polygon' (x, y in m) or 'range'/'bearing' (polar)")
 
 
 def load_spec(path: str | Path, overrides: dict | None = None) -> FitSpec:
@@ -270,29 +303,7 @@ def spec_from_dict(
     if not isinstance(cells, list) or len(cells) != 2:
         raise InputError(f"{source}: 'space.cells' must be two whole numbers [{k0} cells, {k1} cells]")
     cells = (_int(cells[0], "space.cells", source), _int(cells[1], "space.cells", source))
-    masks = []
-    for i, m in enumerate(s.get("masks", [])):
-        mname = str(m.get("name", f"mask {i + 1}"))
-        if "polygon" in m:
-            if "range" in m or "bearing" in m:
-                raise InputError(f"{source}: mask '{mname}' has both 'polygon' and range/bearing; give one")
-            poly = m["polygon"]
-            try:
-                verts = tuple((float(p[0]), float(p[1])) for p in poly if len(p) == 2)
-            except (TypeError, ValueError):
-                verts = ()
-            if len(verts) != len(poly) or len(verts) < 3:
-                raise InputError(f"{source}: mask '{mname}': 'polygon' must be ≥ 3 [x, y] pairs in metres")
-            masks.append(MaskSpec(name=mname, polygon=verts))
-        elif "range" in m or "bearing" in m:
-            if frame != "polar":
-                raise InputError(f"{source}: mask '{mname}': range/bearing masks need a polar space; "
-                                 "use 'polygon' on a cartesian space")
-            r = _pair(m.get("range", list(b0)), f"space.masks '{mname}' range", source)
-            b = _pair(m.get("bearing", list(b1)), f"space.masks '{mname}' bearing", source)
-            masks.append(MaskSpec(name=mname, range=r, bearing=b))
-        else:
-            raise InputError(f"{source}: mask '{mname}' needs 'polygon' (cartesian) or 'range'/'bearing' (polar)")
+    masks = [_area_spec(m, i, "mask", frame, b0, b1, source) for i, m in enumerate(s.get("masks", []))]
     space = SpaceSpec(frame=frame, bounds0=b0, bounds1=b1, cells=cells, masks=tuple(masks))
 
     # --- model ---
@@ -350,7 +361,17 @@ def spec_from_dict(
         progress=progress,
     )
 
+    zones = tuple(_area_spec(z, i, "zone", frame, b0, b1, source) for i, z in enumerate(raw.get("zones", [])))
+    names = [z.name for z in zones]
+    if len(set(names)) != len(names):
+        raise InputError(f"{source}: zone names must be unique, got {names}")
+
     out = raw.get("output") or {}
+    thresholds = out.get("thresholds", [])
+    if not isinstance(thresholds, list) or not all(
+            isinstance(t, (int, float)) and not isinstance(t, bool) and 0 < t < float("inf") for t in thresholds):
+        raise InputError(f"{source}: 'output.thresholds' must be a list of positive intensities in "
+                         f"m⁻² scan⁻¹ (exceedance maps P(λ > t)), got {thresholds!r}")
     out_dir = resolve("output.dir", out["dir"]) if "dir" in out else Path("runs").resolve()
     budget = out.get("draws_budget_mb", 1024)
     if not isinstance(budget, (int, float)) or isinstance(budget, bool) or budget <= 0:
@@ -364,6 +385,8 @@ def spec_from_dict(
         sampler=sampler,
         output_dir=out_dir,
         draws_budget_mb=float(budget),
+        zones=zones,
+        thresholds=tuple(float(t) for t in thresholds),
         source=source,
         raw=raw,
     )
