@@ -152,6 +152,14 @@ def spec_hash(spec) -> str:
     return hashlib.sha256(json.dumps(spec.raw, sort_keys=True, default=str).encode()).hexdigest()
 
 
+def _gate_entry(result) -> dict:
+    """Convergence-gate verdict of the fit (sceneprior.gate); "converged": false marks the
+    run unconverged (``sceneprior fit`` then exits 3 and export refuses it)."""
+    from .gate import summary_entry
+
+    return summary_entry(result)
+
+
 def summary_dict(result) -> dict:
     spec, stats, rec = result.spec, result.stats, result.recording
     grid = stats.grid
@@ -192,6 +200,7 @@ def summary_dict(result) -> dict:
                     "warmup": spec.sampler.warmup, "draws": spec.sampler.draws,
                     "seed": spec.sampler.seed},
         "diagnostics": result.diagnostics,
+        "gate": _gate_entry(result),
         "draws_kept": {
             "posterior.nc": "all draws of the model's parameters",
             "cell_draws.nc": "per-cell intensity draws, float32, thinned to fit the budget",
