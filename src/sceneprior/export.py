@@ -1,0 +1,398 @@
+"""Tracker configuration export: a run directory → one schema-versioned JSON file.
+
+``export_run(run)`` (what ``sceneprior export RUN`` calls) reads a run with
+:func:`sceneprior.results.load_run`, applies the convergence gate
+(:mod:`sceneprior.gate`), and writes ``tracker.json`` into the run (and optionally a copy
+elsewhere). The file validates against ``schemas/tracker-1.schema.json`` and is read by
+:mod:`sceneprior.evaluator`, which needs neither jax nor numpyro.
+
+The exported triple (DESIGN.md §4), in this order:
+
+1. intensity map λ_c [m⁻² scan⁻¹] on the run's grid: the per-cell posterior mean
+   (``intensity.nc``, all draws, float64) or a per-cell posterior quantile q computed
+   from the kept cell draws (``cell_draws.nc``, float32 draws, quantile in float64);
+2. rate [detections per scan] = its integral over the window, Σ_c λ_c·|c ∩ W|, with the
+   area of each cell inside the window (region minus permanent masks);
+3. spatial density f_c = λ_c / rate [m⁻²], which integrates to 1 over the window.
+
+Posterior summaries do not commute: the integral of a per-cell quantile map is not a
+quantile of the rate, so the rate's own posterior (mean, sd, 5/50/95 %) is written beside
+the map's integral. Cells without area in the window are masked (null values and
+``masked = true``); a cell cut by a mask keeps its value, which applies to its part inside
+the window only (the evaluator returns 0 in the masked part).
+
+Optional sections slot in when the run's summary.json has them (other model kinds):
+``cardinality`` is Poisson(rate) unless the summary (top level or the model kind's own
+section) has ``overdispersion.phi`` (per-scan
+factor u_k ~ Gamma(1/φ, 1/φ), DESIGN.md §3), then negative binomial with mean = rate and
+variance = rate + φ·rate², given as scipy.stats.nbinom(n = 1/φ, p = 1/(1 + φ·rate));
+``birth`` copies ``summary["birth"]`` (a Gaussian mixture with untruncated weights;
+DEVELOPERS.md "Tracker export" states the contract).
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import tempfile
+from datetime import datetime, timezone
+from importlib import resources
+from pathlib import Path
+
+import numpy as np
+
+from . import __version__
+from .errors import InputError
+from .results import CAUTION, load_run
+
+TRACKER_SCHEMA = "sceneprior.tracker/1"
+SCHEMA_FILE = "tracker-1.schema.json"
+TRACKER_FILE = "tracker.json"
+
+QUANTITIES = {
+    "rate": "expected clutter detections per scan over the window (region minus permanent masks); "
+            "dimensionless count per scan",
+    "intensity": "expected detections per scan per m² at a point: λ(z) = rate · f(z) [m-2 scan-1]; "
+                 "polar trackers need it per m of range per rad of bearing: λ(z)·r [m-1 rad-1 scan-1]",
+    "density": "where a clutter detection falls: f(z) = λ(z) / rate, integrates to 1 over the window [m-2]",
+}
+INTERPOLATION = {
+    "nearest": "piecewise constant: the value of the cell containing the point; preserves every "
+               "cell's integral, so the evaluator integrates exactly to the exported rate",
+    "bilinear": "bilinear between cell centres in the grid's native coordinates (range, bearing "
+                "for polar grids), constant beyond the outermost centres, masked neighbours left "
+                "out; smoother, but does NOT preserve cell integrals (its integral differs from the rate)",
+}
+CONVENTIONS = ("x east, y north, metres; range in metres and bearing in degrees clockwise from "
+               "north, x = r·sin θ, y = r·cos θ, the polar origin (sensor) at x = y = 0; "
+               "'rad' in units means radians of bearing")
+
+
+def schema() -> dict:
+    """The JSON Schema of the tracker configuration (packaged file)."""
+    with resources.as_file(resources.files("sceneprior") / "schemas" / SCHEMA_FILE) as p:
+        return json.loads(Path(p).read_text(encoding="utf-8"))
+
+
+# ----------------------------------------------------------------------- run geometry
+def run_region(run):
+    """The run's :class:`~sceneprior.geometry.Region` (bounds and permanent masks), rebuilt
+    from the specification content that summary.json keeps (spec.spec_from_dict, then
+    fitting.region_from_spec: the same code path as the fit)."""
+    from .geometry import PolygonMask, Region, SectorMask
+    from .spec import spec_from_dict
+
+    d = run.summary.get("data", {})
+    raw = d.get("spec_content")
+    if not isinstance(raw, dict):
+        raise InputError(f"{run.path / 'summary.json'}: no 'data.spec_content'; re-run `sceneprior fit`")
+    space = spec_from_dict(raw, base_dir=Path(str(d.get("spec", "."))).parent,
+                           source=f"{run.path / 'summary.json'} (spec content)").space
+    # The mapping of fitting.region_from_spec, repeated here because importing fitting loads
+    # the model stack (jax, numpyro) that export, report and simulate --from do not need;
+    # tests/test_export.py checks that both give the same Region.
+    masks = tuple(PolygonMask(vertices=np.asarray(m.polygon, dtype=float), name=m.name) if m.polygon is not None
+                  else SectorMask(range=m.range, bearing=m.bearing, name=m.name) for m in space.masks)
+    return Region(frame=space.frame, bounds0=space.bounds0, bounds1=space.bounds1, masks=masks)
+
+
+def run_grid(run):
+    """The run's :class:`~sceneprior.geometry.Grid` from intensity.nc's cell edges."""
+    from .geometry import Grid
+
+    ds = run.intensity
+    frame = run.summary["space"]["frame"]
+    a0, a1 = ("x", "y") if frame == "cartesian" else ("range", "bearing")
+    return Grid(frame, np.asarray(ds[f"{a0}_edges"].values, float), np.asarray(ds[f"{a1}_edges"].values, float))
+
+
+def run_geometry(run):
+    """(region, grid, window_area (n0, n1) [m²]) of a run; checks that they agree."""
+    region = run_region(run)
+    grid = run_grid(run)
+    ref = region.grid(grid.shape)
+    if not (np.allclose(ref.edges0, grid.edges0, rtol=1e-12, atol=0)
+            and np.allclose(ref.edges1, grid.edges1, rtol=1e-12, atol=0)):
+        raise InputError(f"{run.path}: intensity.nc's grid does not match the run's space specification; "
+                         "re-run `sceneprior fit`")
+    w = np.asarray(run.intensity["window_area"].values, dtype=float)
+    return region, grid, w
+
+
+def region_dict(region) -> dict:
+    """The region section of the file (bounds, masks with their geometry)."""
+    from .geometry import PolygonMask
+
+    frame = region.frame
+    masks = []
+    for m in region.masks:
+        if isinstance(m, PolygonMask):
+            masks.append({"name": m.name, "kind": "polygon", "vertices": np.asarray(m.vertices).tolist()})
+        else:
+            masks.append({"name": m.name, "kind": "sector", "range": list(m.range), "bearing": list(m.bearing)})
+    return {
+        "frame": frame,
+        "axes": ["x", "y"] if frame == "cartesian" else ["range", "bearing"],
+        "axis_units": ["m", "m"] if frame == "cartesian" else ["m", "degree"],
+        "bounds": [list(region.bounds0), list(region.bounds1)],
+        "masks": masks,
+        "region_area_m2": float(region.area()),
+        "window_area_m2": float(region.window_area()),
+        "conventions": CONVENTIONS,
+    }
+
+
+# ----------------------------------------------------------------------- helpers
+def check_quantile(quantile) -> float | None:
+    """None, or a float strictly inside (0, 1); InputError (a ValueError) otherwise."""
+    if quantile is None:
+        return None
+    try:
+        q = float(quantile)
+    except (TypeError, ValueError):
+        raise InputError(f"--quantile must be a number strictly between 0 and 1, got {quantile!r}") from None
+    if not (math.isfinite(q) and 0.0 < q < 1.0):
+        raise InputError(f"--quantile must lie strictly between 0 and 1 (e.g. 0.95 for a conservative "
+                         f"clutter map), got {quantile!r}")
+    return q
+
+
+def _grid_list(a: np.ndarray, masked: np.ndarray) -> list:
+    out = np.where(masked, np.nan, a).astype(float)
+    return [[None if not math.isfinite(v) else float(v) for v in row] for row in out]
+
+
+def _versions() -> dict:
+    import platform
+
+    return {"sceneprior": __version__, "python": platform.python_version(), "numpy": np.__version__}
+
+
+def _model_entry(summary: dict, key: str):
+    """``summary[key]``, or the model kind's own summary section's ``key``."""
+    if isinstance(summary.get(key), dict):
+        return summary[key]
+    own = summary.get(summary.get("model", {}).get("kind", ""))
+    return own.get(key) if isinstance(own, dict) else None
+
+
+def _cardinality(summary: dict, rate: float) -> dict:
+    od = _model_entry(summary, "overdispersion")
+    if isinstance(od, dict) and isinstance(od.get("phi"), dict) and od["phi"].get("mean", 0) > 0:
+        phi = float(od["phi"]["mean"])
+        return {
+            "distribution": "negative_binomial",
+            "mean": rate,
+            "phi": phi,
+            "phi_posterior": od["phi"],
+            "variance": rate + phi * rate * rate,
+            "scipy_nbinom": {"n": 1.0 / phi, "p": 1.0 / (1.0 + phi * rate)},
+            "note": "per-scan count of clutter detections: a per-scan factor u ~ Gamma(1/φ, 1/φ) "
+                    "multiplies the intensity; integrated out, the count is negative binomial with "
+                    "mean = rate, variance = rate + φ·rate² (point value: posterior mean of φ)",
+        }
+    return {"distribution": "poisson", "mean": rate,
+            "note": "per-scan count of clutter detections given the exported map: Poisson(rate) "
+                    "(the model has no over-dispersion term)"}
+
+
+def _birth(summary: dict, region_sec: dict):
+    b = _model_entry(summary, "birth")
+    if not isinstance(b, dict) or not b.get("components"):
+        return None
+    comps = []
+    for c in b["components"]:
+        comps.append({k: c[k] for k in ("weight", "weight_sd", "weight_in_region", "mass_in_region",
+                                        "mean", "cov") if k in c})
+    out = {
+        "model": "gaussian_mixture",
+        "units": b.get("units", "expected new objects per step"),
+        "state_axes": list(b.get("state_axes", ["x", "y"])),
+        "state_units": list(b.get("state_units", ["m", "m"])),
+        "weights": "untruncated",
+        "weights_note": "'weight' is the untruncated w_j (expected count per step over the whole "
+                        "plane); 'weight_in_region' = w_j·P_j(R) is what falls inside the region",
+        "components": comps,
+        "region": b.get("region") or _birth_region(region_sec),
+    }
+    for k in ("rate_per_step", "labelling", "step_duration_s"):
+        if k in b:
+            out[k] = b[k]
+    return out
+
+
+def _birth_region(region_sec: dict) -> dict:
+    if region_sec["frame"] != "cartesian":
+        raise InputError("summary.json 'birth' has no state-space 'region' and the clutter region is polar; "
+                         "the birth model must record the region its positions live in")
+    return region_sec
+
+
+# ----------------------------------------------------------------------- main
+def build_config(run, quantile: float | None = None, override_gate: bool = False) -> dict:
+    """The tracker configuration (a dict) of a loaded run. Raises ConvergenceGateError when
+    the gate fails and ``override_gate`` is false; InputError on a bad quantile."""
+    from .gate import require
+
+    q = check_quantile(quantile)
+    g = require(run, quantile=q is not None, override=override_gate)
+    s = run.summary
+    region, grid, w = run_geometry(run)
+    ds = run.intensity
+    n0, n1 = grid.shape
+    masked = ~(w > 0)
+    if q is None:
+        lam = np.asarray(ds["intensity_mean"].values, dtype=float)
+        estimate = {"kind": "posterior_mean", "quantile": None,
+                    "source": "intensity.nc 'intensity_mean' (all posterior draws, float64)",
+                    "draws_used": int(s["diagnostics"]["chains"] * s["diagnostics"]["draws"]),
+                    "note": "per-cell posterior mean of the intensity; its integral is the posterior "
+                            "mean of the rate"}
+    else:
+        cd = run.cell_draws
+        draws = np.asarray(cd["intensity"].values, dtype=np.float64)
+        if draws.shape[1] != n0 * n1:
+            raise InputError(f"{run.path / 'cell_draws.nc'}: {draws.shape[1]} cells, the grid has {n0 * n1}")
+        lam = np.quantile(draws, q, axis=0).reshape(n0, n1)
+        estimate = {"kind": "quantile", "quantile": q,
+                    "source": f"cell_draws.nc 'intensity': per-cell {q:g} quantile over "
+                              f"{draws.shape[0]} kept draws (thinning {int(cd.attrs.get('thinning', 1))}, "
+                              "float32 draws, quantile in float64)",
+                    "draws_used": int(draws.shape[0]),
+                    "note": "per-cell quantile map (conservative clutter map for q > 0.5); its integral is "
+                            "NOT a quantile of the rate — the rate's own posterior is given beside it"}
+    lam = np.where(masked, np.nan, lam)
+    rate_value = float(np.sum(np.where(masked, 0.0, lam) * w))
+    if not rate_value > 0:
+        raise InputError(f"{run.path}: the exported map integrates to {rate_value}; nothing to export")
+    density = lam / rate_value
+    post = {k: s["rate"][k] for k in ("mean", "sd", "q05", "q50", "q95")}
+    vals = lam[~masked]
+    uniform = None
+    if vals.size and np.ptp(vals) == 0:
+        uniform = {"intensity": float(vals[0]), "intensity_units": "m-2 scan-1",
+                   "density": float(1.0 / float(np.sum(w))), "density_units": "m-2"}
+    reg = region_dict(region)
+    clutter = {
+        "spatial_model": "uniform" if uniform is not None else "grid",
+        "model_kind": s["model"]["kind"],
+        "rate": {
+            "value": rate_value,
+            "units": "detections per scan",
+            "definition": "integral of the exported intensity map over the window: Σ_c λ_c·|c ∩ W|",
+            "posterior": post,
+            "interval_90": [post["q05"], post["q95"]],
+            "interval_note": "5–95 % posterior interval of the rate itself (summary.json), not the "
+                             "integral of per-cell interval maps",
+        },
+        "uniform": uniform,
+        "grid": {
+            "frame": grid.frame,
+            "axes": list(grid.axes),
+            "edge_units": ["m", "m"] if grid.frame == "cartesian" else ["m", "degree"],
+            "shape": [n0, n1],
+            "edges": [np.asarray(grid.edges0).tolist(), np.asarray(grid.edges1).tolist()],
+            "cell_order": "values[i0][i1]: i0 along axes[0] (x or range), i1 along axes[1] (y or "
+                          "bearing); cells half-open [lo, hi), the last one closed",
+            "window_area_m2": np.asarray(w, float).tolist(),
+            "cell_area_m2": np.asarray(ds["cell_area"].values, float).tolist(),
+            "masked": masked.tolist(),
+            "masked_note": "true: no area inside the window (permanent mask); values are null there. "
+                           "A cell cut by a mask applies its value to its part inside the window only",
+        },
+        "intensity": {"units": "m-2 scan-1", "values": _grid_list(lam, masked)},
+        "density": {"units": "m-2", "values": _grid_list(density, masked)},
+        "intensity_sd": {"units": "m-2 scan-1", "values": _grid_list(np.asarray(ds["intensity_sd"].values, float), masked),
+                         "note": "per-cell posterior sd of the intensity (all draws)"},
+        "interpolation": dict(INTERPOLATION),
+    }
+    if grid.frame == "polar":
+        r_mid = 0.5 * (grid.edges0[:-1] + grid.edges0[1:])
+        clutter["intensity_polar"] = {
+            "units": "m-1 rad-1 scan-1", "values": _grid_list(lam * r_mid[:, None], masked),
+            "note": "cell average per m of range per rad of bearing, λ_c·(r1 + r2)/2; pointwise the "
+                    "intensity per m·rad is λ_c·r (what the evaluator returns for polar points)"}
+    doc = {
+        "schema": TRACKER_SCHEMA,
+        "generator": {"name": "sceneprior", "version": __version__},
+        "caution": CAUTION,
+        "quantities": dict(QUANTITIES),
+        "estimate": estimate,
+        "region": reg,
+        "clutter": clutter,
+        "cardinality": _cardinality(s, rate_value),
+        "birth": _birth(s, reg),
+        "gate": {**g.to_dict(), "overridden": bool(override_gate and not g.passed)},
+        "provenance": {
+            "run": s["run"],
+            "run_dir": str(Path(run.path).resolve()),
+            "model": s["model"],
+            "spec": s["data"].get("spec"),
+            "spec_sha256": s["data"].get("spec_sha256"),
+            "inputs_sha256": s["data"].get("inputs_sha256", {}),
+            "seed": s["sampler"]["seed"],
+            "sampler": s["sampler"],
+            "data": {k: s["data"][k] for k in ("scans", "empty_scans", "detections_used", "dropped_in_masks",
+                                               "dropped_outside_bounds") if k in s["data"]},
+            "fit_versions": s.get("versions", {}),
+            "export_versions": _versions(),
+            "summary_written_utc": s.get("written_utc"),
+            "exported_utc": datetime.now(timezone.utc).isoformat(timespec="seconds"),
+        },
+    }
+    if doc["gate"]["overridden"]:
+        doc["gate"]["override_note"] = ("exported with --override-gate although the convergence gate "
+                                        "failed; do not use operationally before the fit converges")
+    return doc
+
+
+def _write_json(doc: dict, path: Path) -> None:
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent)
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8") as fh:
+            json.dump(doc, fh, indent=1, ensure_ascii=False, allow_nan=False)
+            fh.write("\n")
+        os.chmod(tmp, 0o644)
+        os.replace(tmp, path)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+
+
+def export_run(run, quantile: float | None = None, override_gate: bool = False,
+               out: str | Path | None = None) -> tuple[dict, list[Path]]:
+    """Export a run (a path or a loaded Run): writes RUN/tracker.json and, with ``out``, a
+    copy there. Returns (document, paths written)."""
+    if not hasattr(run, "summary"):
+        run = load_run(run)
+    check_quantile(quantile)
+    doc = build_config(run, quantile=quantile, override_gate=override_gate)
+    paths = [Path(run.path) / TRACKER_FILE]
+    if out is not None:
+        paths.append(Path(out))
+    for p in paths:
+        _write_json(doc, p)
+    return doc, paths
+
+
+def describe(doc: dict, paths) -> str:
+    """Short human summary of an export (the CLI prints it)."""
+    c = doc["clutter"]
+    r = c["rate"]
+    est = doc["estimate"]
+    what = "posterior mean" if est["kind"] == "posterior_mean" else f"per-cell {est['quantile']:g} quantile"
+    lines = [f"tracker configuration of run {doc['provenance']['run']} written to "
+             + ", ".join(str(p) for p in paths),
+             f"  map: {what} ({c['spatial_model']}, {doc['region']['frame']} frame); "
+             f"rate = its integral {r['value']:.4g} detections/scan; rate posterior 90 % interval "
+             f"[{r['interval_90'][0]:.4g}, {r['interval_90'][1]:.4g}]",
+             f"  cardinality: {doc['cardinality']['distribution']}; birth: "
+             + ("yes" if doc.get("birth") else "none in this run")]
+    g = doc["gate"]
+    lines.append("  convergence gate: " + ("passed" if g["passed"] else
+                 "FAILED, overridden (recorded in the file): " + "; ".join(g["failures"])))
+    lines.append(f"  caution: {doc['caution']}")
+    return "\n".join(lines)
