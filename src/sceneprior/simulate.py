@@ -194,3 +194,126 @@ def simulate_lowmarsh(out_dir: Path, n_scans: int = 600, seed: int = 20261201,
 
 __all__ = ["Lowmarsh", "sample_homogeneous", "sample_thinning", "simulate_lowmarsh",
            "uniform_in_bounds", "cartesian_to_polar"]
+
+
+# --------------------------------------------------------------------------- posterior predictive
+def sample_thinning_by_scan(rng, region: Region, intensity, lam_max: float, n_scans: int):
+    """Inhomogeneous PPP by thinning (Lewis & Shedler 1979) whose intensity may differ per
+    scan: ``intensity(scan, c0, c1)`` gives λ [m⁻² scan⁻¹] of each candidate point's scan,
+    bounded by ``lam_max`` (checked). The candidates are drawn in one batch as in
+    :func:`sample_thinning` (Poisson total split uniformly over scans). Returns
+    (scan, c0, c1) sorted by scan."""
+    total = rng.poisson(lam_max * region.area() * n_scans)
+    c0, c1 = uniform_in_bounds(rng, region, total)
+    scan = rng.integers(0, n_scans, size=total)
+    lam = intensity(scan, c0, c1)
+    if lam.size and (lam.max() > lam_max * (1 + 1e-12) or lam.min() < 0):
+        raise ValueError("thinning bound violated: intensity exceeds lam_max or is negative")
+    keep = rng.uniform(0.0, lam_max, size=total) < lam
+    order = np.argsort(scan[keep], kind="stable")
+    return scan[keep][order], c0[keep][order], c1[keep][order]
+
+
+def simulate_from_run(run, out_dir: Path, recordings: int = 1, per_scan_draw: bool = False,
+                      n_scans: int | None = None, seed: int = 20261201, fmt: str = "csv",
+                      log=print) -> dict:
+    """Posterior-predictive recordings of a fitted run, in the input table contract.
+
+    For each recording: by default ONE posterior draw of the cell intensities (from the
+    run's ``cell_draws.nc``) and ``n_scans`` scans i.i.d. given it — the realistic case, in
+    which a whole recording shares one clutter level; with ``per_scan_draw`` a fresh draw
+    for every scan. Given the draw, each scan is a Poisson point process with the
+    piecewise-constant intensity λ_c on the cells' window parts (zero in permanent masks),
+    sampled by thinning (:func:`sample_thinning` / :func:`sample_thinning_by_scan`).
+
+    Writes OUT/recording-NNNN/{detections,scans}.{csv,parquet} (detections: scan and the
+    run frame's coordinates — range [m], bearing [deg], x, y [m] for polar runs; scans:
+    scan and the posterior draw used) and OUT/predictive.json (run, mode, draws, seed).
+    Births are not simulated: runs do not carry a fitted birth intensity yet.
+    """
+    from .export import run_geometry
+    from .results import CAUTION, load_run
+
+    if not hasattr(run, "summary"):
+        run = load_run(run)
+    if isinstance(recordings, bool) or int(recordings) != recordings or recordings < 1:
+        raise InputError(f"--recordings must be a whole number ≥ 1, got {recordings!r}")
+    K = int(run.summary["data"]["scans"]) if n_scans is None else n_scans
+    if isinstance(K, bool) or int(K) != K or K < 1:
+        raise InputError(f"--scans must be a whole number ≥ 1, got {n_scans!r}")
+    if fmt not in ("csv", "parquet"):
+        raise InputError(f"--format must be csv or parquet, got {fmt!r}")
+    region, grid, w = run_geometry(run)
+    cd = run.cell_draws
+    lam = np.asarray(cd["intensity"].values, dtype=np.float64)  # (S, n_cells), m⁻² scan⁻¹
+    if lam.shape[1] != grid.n_cells:
+        raise InputError(f"{run.path / 'cell_draws.nc'}: {lam.shape[1]} cells, the grid has {grid.n_cells}")
+    w_flat = w.reshape(-1)
+    lam = np.where(w_flat > 0, lam, 0.0)  # no intensity where the window has no area
+    draw_rates = lam @ w_flat  # Σ_c λ_c |c ∩ W| per draw
+    S = lam.shape[0]
+    rng = np.random.default_rng(seed)
+    out_dir = Path(out_dir)
+    out_dir.mkdir(parents=True, exist_ok=True)
+    ext = "csv" if fmt == "csv" else "parquet"
+    write = (lambda t, p: pacsv.write_csv(t, p)) if fmt == "csv" else (lambda t, p: pq.write_table(t, p))
+
+    def cell_value(draw_idx, c0, c1):
+        idx = grid.locate(c0, c1)
+        val = np.where(idx >= 0, lam[draw_idx, np.clip(idx, 0, None)], 0.0)
+        if region.masks:
+            val = np.where(region.in_mask(c0, c1), 0.0, val)
+        return val
+
+    recs = []
+    for r in range(int(recordings)):
+        if per_scan_draw:
+            draws = rng.integers(0, S, size=K)
+            lam_max = float(lam[np.unique(draws)].max())
+            scan, c0, c1 = sample_thinning_by_scan(rng, region, lambda k, a, b: cell_value(draws[k], a, b),
+                                                   lam_max, K)
+        else:
+            d = int(rng.integers(0, S))
+            draws = np.full(K, d)
+            lam_max = float(lam[d].max())
+            scan, c0, c1 = sample_thinning(rng, region, lambda a, b: cell_value(d, a, b), lam_max, K)
+        if region.frame == "polar":
+            x, y = polar_to_cartesian(c0, c1)
+            det = pa.table({"scan": scan.astype(np.int64), "range": c0, "bearing": c1, "x": x, "y": y})
+        else:
+            det = pa.table({"scan": scan.astype(np.int64), "x": c0, "y": c1})
+        scans = pa.table({"scan": np.arange(K, dtype=np.int64), "posterior_draw": draws.astype(np.int64)})
+        folder = out_dir / f"recording-{r + 1:04d}"
+        folder.mkdir(parents=True, exist_ok=True)
+        write(det, folder / f"detections.{ext}")
+        write(scans, folder / f"scans.{ext}")
+        entry = {"folder": folder.name, "scans": K, "detections": int(scan.size)}
+        if per_scan_draw:
+            entry["posterior_draws"] = "one per scan: see the scans table's posterior_draw column"
+        else:
+            entry["posterior_draw"] = d
+            entry["rate_of_draw"] = float(draw_rates[d])
+        recs.append(entry)
+    info = {
+        "run": run.summary["run"],
+        "run_dir": str(Path(run.path).resolve()),
+        "mode": ("a fresh posterior draw per scan" if per_scan_draw else
+                 "one posterior draw per recording, its scans i.i.d. given it"),
+        "seed": seed,
+        "scans_per_recording": K,
+        "frame": region.frame,
+        "columns": list(det.column_names),
+        "cell_draws": {"samples": S, "thinning": int(cd.attrs.get("thinning", 1)),
+                       "source": "cell_draws.nc 'intensity' (per-cell posterior draws, m-2 scan-1)"},
+        "rate_units": "detections per scan over the window",
+        "births": "not simulated: the run has no fitted birth intensity",
+        "recordings": recs,
+        "caution": CAUTION,
+    }
+    (out_dir / "predictive.json").write_text(json.dumps(info, indent=2) + "\n", encoding="utf-8")
+    log(f"simulated {recordings} posterior-predictive recording(s) of run {info['run']} "
+        f"({K} scans each, {info['mode']}) into {out_dir}")
+    return info
+
+
+__all__ += ["sample_thinning_by_scan", "simulate_from_run"]
