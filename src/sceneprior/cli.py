@@ -70,10 +70,20 @@ def build_parser() -> argparse.ArgumentParser:
         "over the window, true intensity in m⁻² scan⁻¹).",
         epilog=UNITS_EPILOG, formatter_class=argparse.RawDescriptionHelpFormatter,
     )
-    s.add_argument("--out", metavar="DIR", default="runs/demo-data", help="output folder (default %(default)s)")
-    s.add_argument("--scans", type=int, default=600, help="number of scans, 2.4 s apart (default %(default)s)")
+    s.add_argument("--out", metavar="DIR", default=None,
+                   help="output folder (default runs/demo-data; required with --from)")
+    s.add_argument("--scans", type=int, default=None,
+                   help="number of scans, 2.4 s apart (default 600; with --from: the run's number of scans)")
     s.add_argument("--seed", type=int, default=20261201, help="random seed (default %(default)s)")
     s.add_argument("--format", choices=("csv", "parquet"), default="csv", help="table format (default %(default)s)")
+    s.add_argument("--from", dest="from_run", metavar="RUN",
+                   help="draw posterior-predictive recordings from a fitted run directory instead of the "
+                   "demo scenario (same table contract: detections + scans per recording)")
+    s.add_argument("--recordings", type=int, default=None,
+                   help="with --from: number of recordings (default 1), each from one posterior draw, its "
+                   "scans i.i.d. given it")
+    s.add_argument("--per-scan-draw", action="store_true",
+                   help="with --from: a fresh posterior draw for every scan instead of one per recording")
 
     d = sub.add_parser(
         "demo", help="simulate the Lowmarsh demo and fit it (about a minute)",
@@ -85,6 +95,33 @@ def build_parser() -> argparse.ArgumentParser:
     d.add_argument("--runs", metavar="DIR", default="runs", help="folder for data and runs (default %(default)s)")
     d.add_argument("--seed", type=int, default=20261201, help="simulation seed (default %(default)s)")
     d.add_argument("--quiet", action="store_true", help="no progress bar")
+
+    e = sub.add_parser(
+        "export", help="write the tracker configuration (tracker.json) of a run",
+        description="Write a schema-versioned JSON tracker configuration of RUN: the clutter intensity "
+        "map (per-cell posterior mean, or --quantile Q per cell), the rate = its integral over the window "
+        "with the rate's own 90 %% interval beside it, the spatial density = map / rate, masks, "
+        "provenance and the caution. Also written into RUN/tracker.json. Refuses (exit 3) a run that "
+        "fails the convergence gate unless --override-gate.",
+        epilog=UNITS_EPILOG, formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    e.add_argument("run", metavar="RUN", help="run directory (runs/NAME)")
+    e.add_argument("--quantile", type=float, metavar="Q",
+                   help="export the per-cell posterior Q-quantile map, 0 < Q < 1 (e.g. 0.95 for a conservative "
+                   "clutter map); default: posterior mean")
+    e.add_argument("--override-gate", action="store_true",
+                   help="export even if the convergence gate fails (written into the file)")
+    e.add_argument("--out", metavar="FILE", help="also write the configuration to FILE")
+
+    r = sub.add_parser(
+        "report", help="write report.html (maps, counts, rate, sampler diagnostics) of a run",
+        description="Write a self-contained HTML report of RUN: intensity mean and sd maps, exceedance "
+        "maps when present, per-scan counts against the posterior predictive, the rate posterior, trace "
+        "and rank plots, the diagnostics and convergence gate, and the caution.",
+        epilog=UNITS_EPILOG, formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    r.add_argument("run", metavar="RUN", help="run directory (runs/NAME)")
+    r.add_argument("--out", metavar="FILE", help="where to write the page (default RUN/report.html)")
     return p
 
 
@@ -97,13 +134,48 @@ def cmd_fit(args) -> int:
     result = fit(spec, progress=not args.quiet, log=_log)
     path = write_run(result, Path(args.out) if args.out else None)
     print(human_summary(result, path))
+    import json
+
+    gate = json.loads((path / "summary.json").read_text(encoding="utf-8"))["gate"]
+    if not gate["converged"]:  # the run is kept, marked unconverged (exit 3)
+        raise ConvergenceGateError(
+            f"run written to {path} but marked unconverged in summary.json: "
+            + "; ".join(gate["failures"]) + "; `sceneprior export` refuses it unless --override-gate")
     return 0
 
 
 def cmd_simulate(args) -> int:
+    if args.from_run is not None:
+        from .simulate import simulate_from_run
+
+        if args.out is None:
+            raise InputError("simulate --from RUN needs --out DIR (a folder for the predictive recordings)")
+        simulate_from_run(args.from_run, Path(args.out), recordings=1 if args.recordings is None else args.recordings,
+                          per_scan_draw=args.per_scan_draw, n_scans=args.scans, seed=args.seed,
+                          fmt=args.format, log=_log)
+        return 0
+    if args.recordings is not None or args.per_scan_draw:
+        raise InputError("--recordings and --per-scan-draw need --from RUN (a fitted run to draw from)")
     from .simulate import simulate_lowmarsh
 
-    simulate_lowmarsh(Path(args.out), n_scans=args.scans, seed=args.seed, fmt=args.format, log=_log)
+    simulate_lowmarsh(Path(args.out or "runs/demo-data"), n_scans=600 if args.scans is None else args.scans,
+                      seed=args.seed, fmt=args.format, log=_log)
+    return 0
+
+
+def cmd_export(args) -> int:
+    from .export import describe, export_run
+
+    doc, paths = export_run(args.run, quantile=args.quantile, override_gate=args.override_gate, out=args.out)
+    print(describe(doc, paths))
+    return 0
+
+
+def cmd_report(args) -> int:
+    from .report import write_report
+
+    path = write_report(args.run, out=args.out)
+    print(f"report of run {Path(args.run).name} written to {path}")
     return 0
 
 
@@ -155,11 +227,15 @@ def human_summary(result, path: Path) -> str:
     min_ess = min(v["ess_bulk"] for v in dg["variables"].values())
     lines.append(f"  diagnostics: max R-hat {worst_rhat:.4f}, min bulk ESS {min_ess:.0f}, "
                  f"divergences {dg['divergences']} ({dg['chains']} chains × {dg['draws']} draws)")
+    g = s["gate"]
+    lines.append("  convergence gate: " + ("passed" if g["converged"] else
+                 f"FAILED ({len(g['failures'])} check(s)); run marked unconverged"))
     lines.append(f"  caution: {CAUTION}")
     return "\n".join(lines)
 
 
-COMMANDS = {"fit": cmd_fit, "simulate": cmd_simulate, "demo": cmd_demo}
+COMMANDS = {"fit": cmd_fit, "simulate": cmd_simulate, "demo": cmd_demo, "export": cmd_export,
+            "report": cmd_report}
 
 
 def main(argv=None) -> int:
