@@ -100,3 +100,159 @@ def demo_run(tmp_path_factory):
 @pytest.fixture
 def rng():
     return np.random.default_rng(12345)
+
+
+# --------------------------------------------------------------------------- export / report
+# A test-only model kind with a spatially varying posterior and no MCMC: independent
+# conjugate Gamma–Poisson cells, λ_c ~ Gamma(a, b·|c|) a priori, Gamma(a + N_c, b·|c| + E_c)
+# a posteriori (Gelman et al., BDA3 §2.6, cell by cell). It gives export, the evaluator, the
+# gate's per-cell checks and the report non-uniform maps in seconds.
+def cellwise_kind():
+    from sceneprior.models.registry import ModelKind, ModelSetup
+
+    def setup(stats, prior, model_spec):
+        return ModelSetup(inputs={})
+
+    def exact(stats, prior, rng, chains, draws):
+        a = prior["shape"] + stats.counts
+        b = prior["rate"] * stats.cell_area + stats.exposure
+        lam = rng.gamma(a, 1.0 / b, size=(chains, draws, stats.grid.n_cells))
+        return {"intensity": lam, "rate": lam @ stats.window_area}
+
+    def cell_intensity(posterior, stats, setup):
+        return np.asarray(posterior["intensity"])
+
+    def describe(prior, stats):
+        return {"intensity": f"independent Gamma(shape={prior['shape']:g}, rate={prior['rate']:g}·|c| m²·scan) "
+                             "per cell (test model)", "parameters": dict(prior)}
+
+    return ModelKind(name="cellwise", fn=None, default_prior={"shape": 1.0, "rate": 0.1}, setup=setup,
+                     cell_intensity=cell_intensity, describe_prior=describe, hyper=(), exact=exact)
+
+
+def fit_cellwise(spec):
+    """FitResult of the cellwise test model for a spec (exact draws, sampler chains × draws)."""
+    from sceneprior.fitting import FitResult, prepare
+    from sceneprior.inference import diagnostics, exact_idata
+
+    kind = cellwise_kind()
+    prior = dict(kind.default_prior)
+    _, rec, stats = prepare(spec)
+    draws = kind.exact(stats, prior, np.random.default_rng(spec.sampler.seed), spec.sampler.chains,
+                       spec.sampler.draws)
+    idata = exact_idata(draws)
+    return FitResult(spec=spec, recording=rec, stats=stats, model=kind, prior=prior,
+                     setup=kind.setup(stats, prior, spec.model), idata=idata,
+                     diagnostics=diagnostics(idata, ("rate",) + kind.hyper))
+
+
+@pytest.fixture(scope="session")
+def cellwise_polar_run(demo_run, tmp_path_factory):
+    """(run path, FitResult): the cellwise model on the demo's Lowmarsh recording (polar,
+    land sector masked, cells cut by the mask)."""
+    from sceneprior.results import write_run
+    from sceneprior.spec import load_spec
+
+    out = tmp_path_factory.mktemp("cellwise")
+    data = demo_run / "demo-data"
+    spec = load_spec(REPO / "src" / "sceneprior" / "specs" / "lowmarsh-uniform.toml", overrides={
+        "name": "cellwise-polar",
+        "data": {"detections": str(data / "detections.csv"), "scans": str(data / "scans.csv")},
+        "sampler": {"method": "exact", "chains": 4, "draws": 500, "seed": 5, "progress": False},
+        "output": {"dir": str(out)},
+    })
+    res = fit_cellwise(spec)
+    return write_run(res), res
+
+
+@pytest.fixture(scope="session")
+def cellwise_cartesian_run(tmp_path_factory):
+    """Run path: the cellwise model on a Cartesian 1000 m × 500 m box (100 m cells) with a
+    triangular polygon mask, 40 scans of uniform points (rate 25 per scan over the box)."""
+    from sceneprior.results import write_run
+    from sceneprior.spec import load_spec
+
+    tmp = tmp_path_factory.mktemp("cartesian")
+    rng = np.random.default_rng(2024)
+    K = 40
+    n = rng.poisson(25.0, K)
+    scans = np.repeat(np.arange(K), n)
+    xs, ys = rng.uniform(0, 1000, n.sum()), rng.uniform(0, 500, n.sum())
+    spec_path = box_case(tmp, scans, xs, ys, n_scans_table=K, name="cellwise-box",
+                         space={"masks": [{"name": "pier", "polygon": TRIANGLE_MASK}]},
+                         sampler={"method": "exact", "chains": 4, "draws": 1000, "seed": 8, "progress": False},
+                         output={"dir": str(tmp / "runs")})
+    return write_run(fit_cellwise(load_spec(spec_path)))
+
+
+TRIANGLE_MASK = [[250.0, 120.0], [720.0, 180.0], [430.0, 420.0]]  # m, sloped edges across cells
+
+
+@pytest.fixture(scope="session")
+def weak_uniform_run(tmp_path_factory):
+    """(run path, N, K, |W|): the uniform model, exact conjugate draws, on only K = 4 scans
+    of a 1000 m × 500 m box (rate 3 per scan), so the rate posterior is wide."""
+    from sceneprior.results import write_run
+    from sceneprior.spec import load_spec
+
+    tmp = tmp_path_factory.mktemp("weak")
+    rng = np.random.default_rng(77)
+    K = 4
+    n = rng.poisson(3.0, K)
+    scans = np.repeat(np.arange(K), n)
+    xs, ys = rng.uniform(0, 1000, n.sum()), rng.uniform(0, 500, n.sum())
+    spec_path = box_case(tmp, scans, xs, ys, n_scans_table=K, name="weak-uniform",
+                         sampler={"method": "exact", "chains": 4, "draws": 2500, "seed": 21, "progress": False},
+                         output={"dir": str(tmp / "runs")})
+    from sceneprior.fitting import fit
+
+    path = write_run(fit(load_spec(spec_path), progress=False, log=lambda m: None))
+    return path, int(n.sum()), K, 1000.0 * 500.0
+
+
+# --------------------------------------------------------------------------- criticism / comparison
+def box_recording(tmp: Path, n, name="case", scans_columns: dict | None = None, rng=None, **over) -> Path:
+    """A Cartesian 1000 m × 500 m box recording with per-scan counts ``n`` (positions
+    uniform), a scans table with the extra ``scans_columns`` (name → per-scan values), and
+    its spec (conftest.box_case); returns the spec path."""
+    rng = rng or np.random.default_rng(0)
+    n = np.asarray(n, int)
+    K = n.size
+    scans = np.repeat(np.arange(K), n)
+    path = box_case(tmp, scans, np.round(rng.uniform(0, 1000, n.sum()), 3),
+                    np.round(rng.uniform(0, 500, n.sum()), 3), n_scans_table=K, name=name, **over)
+    cols = {"scan": np.arange(K), **(scans_columns or {})}
+    write_csv(tmp / "scans.csv", list(cols), zip(*cols.values()))
+    return path
+
+
+def quick_fit(spec_path, **over):
+    """fit() of a spec file with optional overrides, quietly."""
+    from sceneprior.fitting import fit
+    from sceneprior.spec import load_spec
+
+    return fit(load_spec(spec_path, overrides=over or None), progress=False, log=lambda m: None)
+
+
+@pytest.fixture(scope="session")
+def rain_runs(tmp_path_factory):
+    """The Lowmarsh recording with rain episodes (`simulate --rain`, 600 scans) fitted with
+    models/lowmarsh-rain.toml (uniform + over-dispersion + rain and sea state; NUTS, 2 chains
+    × (300 + 600)) and models/lowmarsh-rain-poisson.toml (plain, exact). Returns
+    {"data": folder, "od": run path, "plain": run path, "od_result": FitResult}."""
+    from sceneprior.fitting import fit
+    from sceneprior.results import write_run
+    from sceneprior.simulate import simulate_scene
+    from sceneprior.spec import load_spec
+
+    tmp = tmp_path_factory.mktemp("rain")
+    data = tmp / "rain-data"
+    simulate_scene(data, rain=True, second_mast=False, log=lambda m: None)
+    over = {"data": {"detections": str(data / "detections.csv"), "scans": str(data / "scans.csv")},
+            "output": {"dir": str(tmp / "runs")}}
+    od = fit(load_spec(REPO / "models" / "lowmarsh-rain.toml", overrides={
+        **over, "sampler": {"chains": 2, "warmup": 300, "draws": 600, "seed": 4, "progress": False}}),
+        progress=False, log=lambda m: None)
+    plain = fit(load_spec(REPO / "models" / "lowmarsh-rain-poisson.toml", overrides=over),
+                progress=False, log=lambda m: None)
+    return {"data": data, "od": write_run(od), "plain": write_run(plain), "od_result": od}
