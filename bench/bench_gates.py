@@ -14,7 +14,7 @@ the machine inflates wall time but much less CPU time), the peak memory (peak RS
 resource.getrusage minus the RSS before the call; with --tracemalloc also the peak of
 traced allocations, numpy's included), and the ratio of the wall time to the 30 s target.
 
-    python bench/bench_gates.py [--scans 100000] [--gates 10] [--threads 2] [--polar]
+    python bench/bench_gates.py [--scans 100000] [--gates 10] [--threads 1] [--polar] [--polar-tol 2e-3]
 """
 
 from __future__ import annotations
@@ -73,7 +73,7 @@ def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--scans", type=int, default=100_000)
     ap.add_argument("--gates", type=int, default=10, help="gates per scan")
-    ap.add_argument("--threads", type=int, default=2)
+    ap.add_argument("--threads", type=int, default=1)
     ap.add_argument("--block-pairs", type=int, default=None)
     ap.add_argument("--polar", action="store_true")
     ap.add_argument("--polar-tol", type=float, default=None, help="removed_area polar_tol")

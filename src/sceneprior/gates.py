@@ -685,9 +685,9 @@ def _box_areas(gates: Gates, rec, p: _Pieces):
         # vertices (i, j, k) of each record's box, mapped once to the unit-disc frame
         rv, dv0, dv1, sV = _grid_expand(n0 + 1, n1 * s1)
         v = (f0[rv] + dv0) * s0 + f1[rv] * s1 + dv1
-        gv = g_r[rv]
-        ux, uy = _to_unit(gates.x[gv], gates.y[gv], gates.l11[gv], gates.l21[gv], gates.l22[gv],
-                          p.lat_x[v], p.lat_y[v])
+        cnt = (n0 + 1) * n1 * s1  # vertices per record: repeat the gate's parameters
+        par = [np.repeat(a[g_r], cnt) for a in (gates.x, gates.y, gates.l11, gates.l21, gates.l22)]
+        ux, uy = _to_unit(*par, p.lat_x[v], p.lat_y[v])
         # arc chords (i, j, k) → (i, j, k+1): consecutive vertices; the "chord" from k = N to
         # the next column's k = 0 is evaluated too (contiguous slices, no gather) and dropped
         FA, WA, DA = _edge_fast(ux[:-1], uy[:-1], ux[1:], uy[1:])
