@@ -11,6 +11,9 @@ import numpy as np
 import pytest
 
 os.environ.setdefault("JAX_PLATFORMS", "cpu")
+# the suite runs in one process and re-uses compiled kernels in memory; a persistent cache
+# shared with other processes is not needed here
+os.environ.setdefault("SCENEPRIOR_JAX_CACHE", "")
 
 from sceneprior.inference import configure_jax  # noqa: E402
 

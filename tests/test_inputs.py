@@ -69,12 +69,12 @@ def test_empty_files(tmp_path, capsys, which):
 
 def test_outside_bounds_error_then_drop(tmp_path, capsys):
     spec = box_case(tmp_path, [0, 1, 2], [10.0, 1500.0, 20.0], [10.0, 10.0, -5.0], n_scans_table=3,
-                    sampler={"method": "exact", "chains": 2, "draws": 100, "seed": 0, "progress": False})
+                    sampler={"method": "exact", "chains": 2, "draws": 400, "seed": 0, "progress": False})
     code, err = run_cli(capsys, "fit", str(spec), "--out", str(tmp_path / "runs"))
     assert code == 2 and "2 detection(s) outside the region's bounds" in err[0] and "rows 2, 3" in err[0]
     spec = box_case(tmp_path, [0, 1, 2], [10.0, 1500.0, 20.0], [10.0, 10.0, -5.0], n_scans_table=3,
                     data={"detections": "det.csv", "scans": "scans.csv", "outside": "drop"},
-                    sampler={"method": "exact", "chains": 2, "draws": 100, "seed": 0, "progress": False})
+                    sampler={"method": "exact", "chains": 2, "draws": 400, "seed": 0, "progress": False})
     code, _ = run_cli(capsys, "fit", str(spec), "--out", str(tmp_path / "runs"))
     assert code == 0
     import json
@@ -87,7 +87,7 @@ def test_detections_in_mask_are_dropped_and_counted(tmp_path, capsys):
     spec = box_case(tmp_path, [0, 1, 2], [100.0, 700.0, 750.0], [100.0, 220.0, 300.0], n_scans_table=3,
                     space={"frame": "cartesian", "x": [0.0, 1000.0], "y": [0.0, 500.0], "cells": [10, 5],
                            "masks": [{"name": "pier", "polygon": [[500.0, 200.0], [800.0, 200.0], [800.0, 400.0]]}]},
-                    sampler={"method": "exact", "chains": 2, "draws": 100, "seed": 0, "progress": False})
+                    sampler={"method": "exact", "chains": 2, "draws": 400, "seed": 0, "progress": False})
     code, _ = run_cli(capsys, "fit", str(spec), "--out", str(tmp_path / "runs"))
     assert code == 0
     import json

@@ -35,6 +35,11 @@ class BinnedStats:
     scan_ids: np.ndarray  # (K,)
     scan_counts: np.ndarray  # (K,) int64: n_k
     scan_cell: sp.csr_matrix  # (K, n_cells) per-scan cell counts
+    # the kept detections themselves, for point-level models (Gaussian mixtures use the
+    # points, not the bins: binning inflates covariances by about h²/12 per axis)
+    points0: np.ndarray | None = None  # (n,) x [m] or range [m]
+    points1: np.ndarray | None = None  # (n,) y [m] or bearing [deg]
+    point_scan: np.ndarray | None = None  # (n,) scan index
 
     @property
     def n_detections(self) -> int:
@@ -84,4 +89,7 @@ def bin_recording(rec: Recording, region: Region, grid: Grid) -> BinnedStats:
         scan_ids=rec.scan_ids,
         scan_counts=scan_counts,
         scan_cell=scan_cell,
+        points0=rec.c0,
+        points1=rec.c1,
+        point_scan=rec.scan_index,
     )

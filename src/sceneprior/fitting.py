@@ -57,6 +57,26 @@ class FitResult:
         return np.asarray(self.idata.posterior["rate"])
 
 
+def _check_memory(setup, stats, smp, source: str) -> None:
+    """Refuse fits whose kept draws would not fit in memory (say what would)."""
+    import os
+
+    n_latent = int(setup.extra.get("n_latent", 0))
+    if not n_latent:
+        return
+    need = smp.chains * smp.draws * (n_latent + stats.grid.n_cells) * 8.0
+    try:
+        total = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
+    except (ValueError, OSError, AttributeError):
+        return
+    if need > 0.6 * total:
+        fit_draws = int(0.6 * total / (smp.chains * (n_latent + stats.grid.n_cells) * 8.0))
+        raise InputError(
+            f"{source}: {smp.chains} chains × {smp.draws} draws of {n_latent} field coefficients and "
+            f"{stats.grid.n_cells} cells need about {need / 1e9:.1f} GB, more than this machine can hold "
+            f"({total / 1e9:.0f} GB); use at most {fit_draws} draws per chain or a coarser grid")
+
+
 def prepare(spec: FitSpec) -> tuple[Region, Recording, BinnedStats]:
     """Read, validate and bin the data named by a spec (no sampling)."""
     region = region_from_spec(spec.space)
@@ -79,8 +99,13 @@ def fit(spec: FitSpec, progress: bool = True, log=print) -> FitResult:
         f"dropped {rec.n_masked} in masks and {rec.n_outside} outside the bounds; "
         f"binned on {stats.grid.shape[0]}×{stats.grid.shape[1]} {region.frame} cells"
     )
+    if spec.zones:  # refuse zones outside the window before any sampling
+        from .zones import zone_cell_areas
+
+        zone_cell_areas(region, stats.grid, spec.zones, spec.source)
     setup = kind.setup(stats, prior, spec.model)
     smp = spec.sampler
+    _check_memory(setup, stats, smp, spec.source)
     if smp.method == "exact":
         if kind.exact is None:
             raise InputError(f"{spec.source}: sampler.method = \"exact\" needs a conjugate model; "
@@ -96,12 +121,14 @@ def fit(spec: FitSpec, progress: bool = True, log=print) -> FitResult:
         log(f"sampling {kind.name} with NUTS: {smp.chains} chains × ({smp.warmup} warmup + "
             f"{smp.draws} draws), seed {smp.seed}")
         idata = run_nuts(kind.fn, setup.inputs, smp, progress=progress,
+                         dense_mass=setup.extra.get("dense_mass", False),
+                         init_strategy=setup.extra.get("init_strategy"),
                          dims=setup.extra.get("dims"), coords=setup.extra.get("coords"))
     t_mcmc = time.perf_counter()
     from .inference import diagnostics
 
     diag = diagnostics(idata, ("rate",) + kind.hyper)
-    return FitResult(
+    result = FitResult(
         spec=spec,
         recording=rec,
         stats=stats,
@@ -112,3 +139,10 @@ def fit(spec: FitSpec, progress: bool = True, log=print) -> FitResult:
         diagnostics=diag,
         timing={"read_and_bin_s": t_bin - t0, "sampling_s": t_mcmc - t_bin},
     )
+    if kind.per_cell:
+        from .inference import cell_diagnostics
+
+        lam = result.cell_intensity()
+        inside = stats.window_area > 0
+        diag["cells"] = cell_diagnostics(np.log(lam[..., inside]))
+    return result

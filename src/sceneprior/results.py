@@ -85,6 +85,17 @@ def intensity_dataset(result):
                  "long_name": f"clutter intensity, posterior {name}, per m of range per rad of "
                               "bearing (cell average; = per-m² value × mid-cell range)"},
             )
+    for i, t in enumerate(result.spec.thresholds):
+        prob = (flat > t).mean(axis=0)
+        data_vars[f"exceedance_{i}"] = (
+            (a0, a1), np.where(outside, np.nan, prob).reshape(n0, n1),
+            {"units": "1", "threshold": t, "threshold_units": "m-2 scan-1",
+             "long_name": f"posterior probability that the intensity exceeds {t:g} per m² per scan"},
+        )
+    if result.stats.exposure.size and (unobserved := (stats.exposure <= 0) & ~outside).any():
+        data_vars["extrapolated"] = ((a0, a1), unobserved.reshape(n0, n1).astype(np.int8),
+                                     {"units": "1", "long_name": "1 where the cell has window area but "
+                                      "no exposure: its intensity is predicted from neighbours"})
     data_vars["counts"] = ((a0, a1), stats.counts.reshape(n0, n1),
                            {"units": "1", "long_name": "detections summed over scans (N_c)"})
     data_vars["exposure"] = ((a0, a1), stats.exposure.reshape(n0, n1),
@@ -137,6 +148,32 @@ def cell_draws_dataset(result):
     )
 
 
+def scans_dataset(result):
+    """Per-scan data kept in the run (scans.nc): scan ids, per-scan totals n_k, scans-table
+    metadata, and the sparse scan × cell counts as COO triplets — what leave-one-scan-out,
+    predictive checks and drift/persistence checks need without re-reading the tables."""
+    import xarray as xr
+
+    stats, rec = result.stats, result.recording
+    coo = stats.scan_cell.tocoo()
+    ids = np.asarray(stats.scan_ids)
+    data = {
+        "scan_id": (("scan",), ids.astype(str) if ids.dtype.kind not in "iu" else ids.astype(np.int64),
+                    {"long_name": "scan id as in the scans table"}),
+        "n": (("scan",), stats.scan_counts, {"units": "1", "long_name": "detections in the scan (n_k), window only"}),
+        "entry_scan": (("entry",), coo.row.astype(np.int64), {"long_name": "scan index of a non-zero (scan, cell) count"}),
+        "entry_cell": (("entry",), coo.col.astype(np.int64), {"long_name": "flat cell index (C order)"}),
+        "entry_count": (("entry",), coo.data.astype(np.int64), {"units": "1"}),
+    }
+    for name, values in rec.scans_meta.items():
+        v = np.asarray(values)
+        if v.dtype.kind in "biuf":
+            data[f"meta_{name}"] = (("scan",), v, {"long_name": f"scans-table column '{name}'"})
+        else:
+            data[f"meta_{name}"] = (("scan",), v.astype(str), {"long_name": f"scans-table column '{name}'"})
+    return xr.Dataset(data, attrs={"n_cells": stats.grid.n_cells, "n_scans": stats.n_scans})
+
+
 def _versions() -> dict:
     import arviz
     import jax
@@ -158,6 +195,27 @@ def _gate_entry(result) -> dict:
     from .gate import summary_entry
 
     return summary_entry(result)
+
+
+def _zone_rates(result) -> dict:
+    """Rate posterior per named zone: Σ_c λ_c |c ∩ W ∩ Z| per draw (DESIGN.md §4)."""
+    if not result.spec.zones:
+        return {}
+    from .zones import zone_cell_areas
+
+    za = zone_cell_areas(result.stats.region, result.stats.grid, result.spec.zones, result.spec.source)
+    lam = result.cell_intensity()
+    out = {}
+    for z, area in zip(result.spec.zones, za):
+        draws = (lam * area).sum(axis=-1)
+        import arviz as az
+
+        out[z.name] = {"units": "detections per scan in the zone (inside the window)",
+                       "area_m2": float(area.sum()), **_interval(draws),
+                       "r_hat": float(az.rhat(draws)) if draws.shape[0] > 1 else None,
+                       "ess_bulk": float(az.ess(draws, method="bulk")),
+                       "ess_tail": float(az.ess(draws, method="tail"))}
+    return out
 
 
 def summary_dict(result) -> dict:
@@ -196,6 +254,7 @@ def summary_dict(result) -> dict:
                  **_interval(rate)},
         "mean_intensity": {"units": "m-2 scan-1 (rate / window area)",
                            **_interval(rate / stats.window_total)},
+        "zones": _zone_rates(result),
         "sampler": {"method": spec.sampler.method, "chains": spec.sampler.chains,
                     "warmup": spec.sampler.warmup, "draws": spec.sampler.draws,
                     "seed": spec.sampler.seed},
@@ -234,10 +293,17 @@ def write_run(result, runs_dir: Path | None = None) -> Path:
     target = runs_dir / result.spec.name
     tmp = Path(tempfile.mkdtemp(prefix=f".{result.spec.name}.partial-", dir=runs_dir))
     try:
-        result.idata.to_netcdf(str(tmp / "posterior.nc"), engine="h5netcdf")
+        idata = result.idata
+        drop = [v for v in getattr(result.setup, "extra", {}).get("drop_from_posterior", [])
+                if v in idata.posterior]
+        if drop:  # large latent vectors (LGCP Fourier coefficients): cells are in cell_draws.nc
+            idata = idata.copy()
+            idata.posterior = idata.posterior.drop_vars(drop)
+        idata.to_netcdf(str(tmp / "posterior.nc"), engine="h5netcdf")
         intensity_dataset(result).to_netcdf(tmp / "intensity.nc", engine="h5netcdf")
         cd = cell_draws_dataset(result)
         cd.to_netcdf(tmp / "cell_draws.nc", engine="h5netcdf")
+        scans_dataset(result).to_netcdf(tmp / "scans.nc", engine="h5netcdf")
         summary = summary_dict(result)
         (tmp / "summary.json").write_text(json.dumps(summary, indent=2, ensure_ascii=False) + "\n",
                                           encoding="utf-8")
@@ -255,7 +321,7 @@ def write_run(result, runs_dir: Path | None = None) -> Path:
     return target
 
 
-RUN_FILES = ("posterior.nc", "intensity.nc", "cell_draws.nc", "summary.json")
+RUN_FILES = ("posterior.nc", "intensity.nc", "cell_draws.nc", "scans.nc", "summary.json")
 
 
 class Run:
@@ -299,6 +365,18 @@ class Run:
     @property
     def cell_draws(self):
         return self._open("cell_draws.nc")
+
+    @property
+    def scans(self):
+        return self._open("scans.nc")
+
+    def scan_cell(self):
+        """(K, n_cells) scipy.sparse CSR matrix of per-scan cell counts."""
+        import scipy.sparse as sp
+
+        ds = self.scans
+        return sp.csr_matrix((ds["entry_count"].values, (ds["entry_scan"].values, ds["entry_cell"].values)),
+                             shape=(ds.sizes["scan"], int(ds.attrs["n_cells"])))
 
     @property
     def posterior(self):

@@ -41,6 +41,9 @@ _SCHEMA: dict[str, Any] = {
         "prior": None,  # free table: each model kind checks its own prior keys
         "covariates": None,  # loglinear
         "rasters": None,  # loglinear: [[model.rasters]] name, file
+        "kernel": None,  # lgcp
+        "components": None,  # mixture
+        "diagonal": None,  # mixture
     },
     "sampler": {
         "method": None,
@@ -55,10 +58,19 @@ _SCHEMA: dict[str, Any] = {
 }
 _MASK_KEYS = {"name": None, "polygon": None, "range": None, "bearing": None}
 
-MODEL_KINDS = ("uniform", "loglinear")
+MODEL_KINDS = ("uniform", "loglinear", "lgcp", "mixture")
 # model-table keys each kind accepts besides kind and prior
-MODEL_OPTIONS = {"uniform": (), "loglinear": ("covariates", "rasters")}
+MODEL_OPTIONS = {"uniform": (), "loglinear": ("covariates", "rasters"), "lgcp": ("kernel",), "mixture": ("components", "diagonal")}
 FRAMES = ("cartesian", "polar")
+
+# Per-scan terms (any binned kind), the sites model and the sensor's placement (issue 6).
+SCAN_OPTIONS = ("overdispersion", "scan_covariates", "time")
+_SCHEMA["model"].update({"overdispersion": None, "scan_covariates": None, "site_column": None,
+                         "time": {"bins": None, "width_s": None, "column": None}})
+_SCHEMA["sensor"] = {"x": None, "y": None, "heading": None, "frame": None}
+MODEL_KINDS = MODEL_KINDS + ("sites",)
+MODEL_OPTIONS = {k: tuple(v) + SCAN_OPTIONS for k, v in MODEL_OPTIONS.items()}
+MODEL_OPTIONS["sites"] = ("site_column",)
 
 
 def _suggest(key: str, allowed) -> str:
@@ -153,6 +165,7 @@ class FitSpec:
     zones: tuple[MaskSpec, ...] = ()  # named sub-areas with their own rate posterior
     thresholds: tuple[float, ...] = ()  # intensities [m⁻² scan⁻¹] for exceedance maps
     raw: dict = field(default_factory=dict, compare=False, repr=False)
+    sensor: SensorSpec | None = None  # placement in a shared Cartesian frame (compare)
 
 
 def _pair(value, key: str, source: str) -> tuple[float, float]:
@@ -342,6 +355,7 @@ def spec_from_dict(
         cov = options["covariates"]
         if not isinstance(cov, list) or not all(isinstance(c, str) for c in cov):
             raise InputError(f"{source}: 'model.covariates' must be a list of names, e.g. [\"log_range\", \"bearing\"]")
+    kind, options = _per_scan_options(kind, options, data, source)
     model = ModelSpec(kind=kind, prior=prior, options=options)
 
     # --- sampler ---
@@ -389,6 +403,7 @@ def spec_from_dict(
         thresholds=tuple(float(t) for t in thresholds),
         source=source,
         raw=raw,
+        sensor=_sensor(raw.get("sensor"), source),
     )
 
 
@@ -401,3 +416,84 @@ def _flat_paths(over: dict, prefix: str = "") -> set[str]:
         else:
             keys.add(key)
     return keys
+
+
+# ----------------------------------------------------------------------------- issue 6
+@dataclass(frozen=True)
+class SensorSpec:
+    """Where the sensor stands in a shared Cartesian frame (x east, y north, metres) and
+    where its local north (bearing 0, the local y axis) points: ``heading`` in degrees
+    clockwise from the shared frame's north. Runs with the same ``frame`` name can be
+    compared on a common grid."""
+
+    x: float = 0.0
+    y: float = 0.0
+    heading: float = 0.0
+    frame: str = "shared"
+
+
+def _sensor(raw, source: str) -> SensorSpec | None:
+    if raw is None:
+        return None
+    vals = {}
+    for k in ("x", "y", "heading"):
+        v = raw.get(k, 0.0)
+        if not isinstance(v, (int, float)) or isinstance(v, bool) or v != v or abs(v) == float("inf"):
+            raise InputError(f"{source}: 'sensor.{k}' must be a finite number "
+                             f"({'degrees clockwise from north' if k == 'heading' else 'metres'}), got {v!r}")
+        vals[k] = float(v)
+    frame = raw.get("frame", "shared")
+    if not isinstance(frame, str) or not frame:
+        raise InputError(f"{source}: 'sensor.frame' must be the name of the shared frame (a string)")
+    return SensorSpec(frame=frame, **vals)
+
+
+def composite_kind(kind: str, options: dict) -> str:
+    """Model kind with its per-scan terms, e.g. "uniform+overdispersion+time"."""
+    tokens = [t for t in SCAN_OPTIONS if options.get(t) not in (None, False, [])]
+    return "+".join([kind] + tokens)
+
+
+def _per_scan_options(kind: str, options: dict, data: DataSpec, source: str):
+    """Validate the per-scan options, stash the scans table for the model's setup and
+    return (composite kind, options)."""
+    od = options.get("overdispersion", False)
+    if not isinstance(od, bool):
+        raise InputError(f"{source}: 'model.overdispersion' must be true or false")
+    cov = options.get("scan_covariates")
+    if cov is not None and (not isinstance(cov, list) or not all(isinstance(c, str) and c for c in cov)):
+        raise InputError(f"{source}: 'model.scan_covariates' must be a list of scans-table column "
+                         "names, e.g. [\"rain\", \"sea_state\"]")
+    if cov is not None and len(set(cov)) != len(cov):
+        raise InputError(f"{source}: 'model.scan_covariates' lists a column twice")
+    t = options.get("time")
+    if t is not None:
+        bins = t.get("bins", "calendar")
+        if bins not in ("calendar", "hour_of_day"):
+            raise InputError(f"{source}: 'model.time.bins' must be \"calendar\" or \"hour_of_day\", got {bins!r}")
+        w = t.get("width_s", 3600.0)
+        if not isinstance(w, (int, float)) or isinstance(w, bool) or not w > 0:
+            raise InputError(f"{source}: 'model.time.width_s' must be a positive number of seconds")
+        if bins == "hour_of_day" and "width_s" in t:
+            raise InputError(f"{source}: 'model.time.width_s' applies to calendar bins; hour-of-day bins are 1 h")
+        col = t.get("column", "time")
+        if not isinstance(col, str) or not col:
+            raise InputError(f"{source}: 'model.time.column' must be a column name (a string)")
+    if kind == "sites":
+        sc = options.get("site_column", "site")
+        if not isinstance(sc, str) or not sc:
+            raise InputError(f"{source}: 'model.site_column' must be a column name (a string)")
+    needs_table = bool(cov) or t is not None or kind == "sites"
+    if needs_table:
+        if data.scans is None:
+            what = "the sites model" if kind == "sites" else "model.scan_covariates / [model.time]"
+            raise InputError(f"{source}: {what} reads columns of the scans table; set data.scans "
+                             "(data.n_scans has no columns)")
+        options = {**options, "_scans": {"path": str(data.scans), "scan": data.columns["scan"]}}
+    if t is not None and not t:
+        options = {**options, "time": {"bins": "calendar"}}  # an empty [model.time]: defaults
+    if not od:
+        options.pop("overdispersion", None)
+    if not cov:
+        options.pop("scan_covariates", None)
+    return composite_kind(kind, options), options

@@ -11,7 +11,7 @@ from dataclasses import dataclass, field
 from typing import Callable
 
 from ..errors import InputError
-from . import loglinear, uniform
+from . import lgcp, loglinear, mixture_kind, uniform
 
 
 @dataclass(frozen=True)
@@ -36,6 +36,8 @@ class ModelKind:
     hyper: tuple[str, ...]
     exact: Callable | None = None
     summary: Callable | None = None
+    optional_prior: tuple[str, ...] = ()  # prior keys without a default
+    per_cell: bool = False  # cell-level parameters: per-cell R-hat/ESS are computed and gated
 
 
 @dataclass
@@ -65,10 +67,50 @@ MODELS: dict[str, ModelKind] = {
         hyper=("alpha", "beta_std"),
         summary=loglinear.summary,
     ),
+    "mixture": ModelKind(
+        name="mixture",
+        fn=mixture_kind.mixture.mixture_model,
+        default_prior=mixture_kind.DEFAULT_PRIOR,
+        setup=mixture_kind.setup,
+        cell_intensity=mixture_kind.cell_intensity,
+        describe_prior=mixture_kind.describe_prior,
+        hyper=("weight", "weight_in", "mean", "scale"),
+        summary=mixture_kind.summary,
+    ),
+    "lgcp": ModelKind(
+        name="lgcp",
+        fn=lgcp.lgcp_model,
+        default_prior=lgcp.DEFAULT_PRIOR,
+        setup=lgcp.setup,
+        cell_intensity=lgcp.cell_intensity,
+        describe_prior=lgcp.describe_prior,
+        hyper=("mu", "sigma", "length_scale"),
+        summary=lgcp.summary,
+        optional_prior=lgcp._LS_KEYS,
+        per_cell=True,
+    ),
 }
 
 
+from . import hierarchical  # noqa: E402  (partially pooled site rates, issue 6)
+
+MODELS["sites"] = ModelKind(
+    name="sites",
+    fn=hierarchical.sites_model,
+    default_prior=hierarchical.DEFAULT_PRIOR,
+    setup=hierarchical.setup,
+    cell_intensity=hierarchical.cell_intensity,
+    describe_prior=hierarchical.describe_prior,
+    hyper=("log_mu", "cv", "site_rate"),
+    summary=hierarchical.summary,
+)
+
+
 def get_model(kind: str) -> ModelKind:
+    if "+" in kind:  # a base kind with per-scan terms, e.g. "uniform+overdispersion"
+        from .variants import variant_kind
+
+        return variant_kind(kind)
     try:
         return MODELS[kind]
     except KeyError:
@@ -76,8 +118,14 @@ def get_model(kind: str) -> ModelKind:
 
 
 def resolve_prior(kind: ModelKind, given: dict, source: str) -> dict:
-    unknown = set(given) - set(kind.default_prior)
+    allowed = set(kind.default_prior) | set(kind.optional_prior)
+    unknown = set(given) - allowed
     if unknown:
-        raise InputError(f"{source}: unknown prior parameter(s) {sorted(unknown)} for model "
-                         f"'{kind.name}'; allowed: {sorted(kind.default_prior)}")
+        import difflib
+
+        bad = sorted(unknown)[0]
+        close = difflib.get_close_matches(bad, sorted(allowed), n=1)
+        hint = f" (did you mean '{close[0]}'?)" if close else ""
+        raise InputError(f"{source}: unknown prior parameter '{bad}'{hint} for model "
+                         f"'{kind.name}'; allowed: {', '.join(sorted(allowed))}")
     return {**kind.default_prior, **given}

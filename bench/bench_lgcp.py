@@ -1,0 +1,220 @@
+"""LGCP benchmark (not a test): prints, in one run, side-by-side figures for
+
+  (a) the Fourier-domain LGCP against a dense-covariance formulation of the same model
+      (same kernel, priors, float64, NUTS) at 16² and 32² cells: wall time, minimum bulk
+      ESS over cells, ESS per second, and the ratio;
+  (b) scaling at 32², 64², 128², 256² cells for a squared-exponential and a Matérn 3/2
+      field, with weak (≈ 0.3 detections per cell in total) and strong (≥ 50 per cell)
+      data: wall time including compilation, leapfrog steps per draw, minimum bulk ESS,
+      maximum R-hat, divergences, peak memory;
+  (c) fit time at 1× and 10× the number of scans on the same grid.
+
+Usage:
+    python bench/bench_lgcp.py                 # the full issue set-up (hours on 2 cores)
+    python bench/bench_lgcp.py --quick         # 1 chain × (200 + 200), small grids only
+    python bench/bench_lgcp.py --sizes 32 64 --kernels matern32 --chains 4 --warmup 1000 --draws 1000
+
+Data are simulated from the model's own prior-shaped field (our own numbers) on a
+Cartesian box of side 1000 m. Peak memory is the process's maximum resident set size
+(resource.getrusage), so run one configuration per process for clean memory figures
+(--one SIZE KERNEL REGIME does that).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import resource
+import subprocess
+import sys
+import time
+from functools import partial
+
+import numpy as np
+
+
+def _setup(n, kernel, per_cell, K, seed=0):
+    import jax
+    import scipy.sparse as sp
+
+    from sceneprior.binning import BinnedStats
+    from sceneprior.geometry import Region
+    from sceneprior.models import lgcp
+    from sceneprior.models.registry import get_model, resolve_prior
+    from sceneprior.spec import ModelSpec
+
+    reg = Region("cartesian", (0.0, 1000.0), (0.0, 1000.0))
+    g = reg.grid((n, n))
+    area = g.cell_area().ravel()
+    kind = get_model("lgcp")
+    h = 1000.0 / n
+    prior = resolve_prior(kind, {"rate_median": per_cell * n * n / K, "rate_log_sd": 1.0,
+                                 "length_scale_min": max(2 * h, 50.0), "length_scale_max": 250.0}, "bench")
+
+    def stats_for(counts):
+        return BinnedStats(reg, g, np.asarray(counts, np.int64), K * area, area, area, K, np.arange(K),
+                           np.zeros(K, np.int64), sp.csr_matrix((K, g.n_cells)))
+
+    setup = kind.setup(stats_for(np.zeros(n * n)), prior, ModelSpec("lgcp", {}, {"kernel": kernel}))
+    rng = np.random.default_rng(seed)
+    kern = setup.inputs["kernels"]
+    ls = np.array([150.0, 150.0])
+    amp = kern.spectrum.amplitudes(kern.modes, ls, 1.0)
+    f = np.asarray(kern.modes.coefficients_to_field(amp * rng.standard_normal(kern.modes.n_params))).ravel()
+    counts = rng.poisson(np.exp(np.log(per_cell / (K * area[0])) + f) * K * area)
+    setup = kind.setup(stats_for(counts), prior, ModelSpec("lgcp", {}, {"kernel": kernel}))
+    return kind, setup, counts
+
+
+def _run(kind, setup, chains, warmup, draws, dense_baseline=False):
+    import arviz as az
+    import jax
+    from numpyro.infer import MCMC, NUTS, init_to_median
+
+    from sceneprior.models import lgcp
+
+    if dense_baseline:
+        fn, inputs = dense_model_inputs(setup)
+        kernel = NUTS(fn, init_strategy=init_to_median(num_samples=15))
+    else:
+        fn, inputs = kind.fn, setup.inputs
+        kernel = NUTS(fn, init_strategy=init_to_median(num_samples=15), dense_mass=setup.extra["dense_mass"])
+    mcmc = MCMC(kernel, num_warmup=warmup, num_samples=draws, num_chains=chains,
+                chain_method="vectorized", progress_bar=False)
+    t = time.perf_counter()
+    mcmc.run(jax.random.PRNGKey(1), extra_fields=("num_steps", "diverging"), **inputs)
+    samples = mcmc.get_samples(group_by_chain=True)
+    jax.block_until_ready(samples)
+    wall = time.perf_counter() - t
+    if dense_baseline:
+        log_lam = np.asarray(samples["log_lam"])
+    else:
+        log_lam = lgcp.cell_log_intensity({k: np.asarray(v) for k, v in samples.items()}, setup)
+    ds = az.convert_to_dataset({"x": log_lam.astype(float)}, dims={"x": ["cell"]})
+    ess = np.asarray(az.ess(ds, method="bulk")["x"])
+    rhat = np.asarray(az.rhat(ds)["x"]) if chains > 1 else np.full(ess.shape, np.nan)
+    ex = mcmc.get_extra_fields()
+    return {"wall_s": wall, "steps_per_draw": float(np.mean(ex["num_steps"])),
+            "min_ess_bulk": float(ess.min()), "max_rhat": float(np.nanmax(rhat)) if chains > 1 else None,
+            "divergences": int(np.sum(ex["diverging"])), "ess_per_s": float(ess.min() / wall),
+            "peak_rss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024}
+
+
+def dense_model_inputs(setup):
+    """The same model with the field's covariance as a dense matrix (Cholesky per
+    gradient), the baseline of part (a): same kernel (planar, on cell centres), priors."""
+    import jax.numpy as jnp
+    import numpyro
+    import numpyro.distributions as dist
+
+    from sceneprior.fields.kernels import anisotropic_kernel
+    from sceneprior.models.likelihood import binned_loglik
+
+    inp = setup.inputs
+    geom = inp["kernels"].spectrum.geom
+    n0, n1 = geom.grid_shape
+    h0, h1 = geom.spacing
+    i0, i1 = np.meshgrid(np.arange(n0), np.arange(n1), indexing="ij")
+    d0 = np.abs(i0.ravel()[:, None] - i0.ravel()[None, :]) * h0
+    d1 = np.abs(i1.ravel()[:, None] - i1.ravel()[None, :]) * h1
+    kernel = geom.kernel
+
+    def model(counts, exposure, window_area, obs, mu_loc, mu_scale, sigma_scale, ls_lo, ls_hi):
+        mu = numpyro.sample("mu", dist.Normal(mu_loc, mu_scale))
+        sigma = numpyro.sample("sigma", dist.HalfNormal(sigma_scale))
+        u = numpyro.sample("ls_unit", dist.Beta(2.0, 2.0).expand([ls_lo.shape[0]]).to_event(1))
+        ls = ls_lo * (ls_hi / ls_lo) ** u
+        ls2 = jnp.resize(ls, 2)
+        C = anisotropic_kernel(kernel, (jnp.asarray(d0), jnp.asarray(d1)), sigma**2, ls2)
+        L = jnp.linalg.cholesky(C + 1e-8 * jnp.eye(C.shape[0]))
+        z = numpyro.sample("z", dist.Normal(0.0, 1.0).expand([C.shape[0]]).to_event(1))
+        log_lam = numpyro.deterministic("log_lam", mu + L @ z)
+        numpyro.factor("loglik", binned_loglik(log_lam[obs], counts, exposure))
+
+    keys = ("counts", "exposure", "window_area", "obs", "mu_loc", "mu_scale", "sigma_scale", "ls_lo", "ls_hi")
+    return model, {k: inp[k] for k in keys}
+
+
+def one(args):
+    from sceneprior.inference import configure_jax
+
+    configure_jax()
+    size, kernel, regime = args.one
+    size = int(size)
+    per_cell = {"weak": 0.3, "weak10": 3.0, "strong": 60.0}[regime]
+    K = int(args.scans)
+    kind, setup, counts = _setup(size, kernel, per_cell, K)
+    res = _run(kind, setup, args.chains, args.warmup, args.draws, dense_baseline=args.dense)
+    res.update({"cells": f"{size}²", "kernel": kernel, "regime": regime, "scans": K,
+                "detections": int(counts.sum()), "modes": setup.extra["modes_report"]["n_modes"],
+                "torus": setup.extra["embedding"]["torus_shape"],
+                "formulation": "dense" if args.dense else "fourier"})
+    print(json.dumps(res))
+
+
+def main():
+    ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    ap.add_argument("--quick", action="store_true")
+    ap.add_argument("--sizes", type=int, nargs="+")
+    ap.add_argument("--kernels", nargs="+", default=["squared_exponential", "matern32"])
+    ap.add_argument("--chains", type=int, default=4)
+    ap.add_argument("--warmup", type=int, default=1000)
+    ap.add_argument("--draws", type=int, default=1000)
+    ap.add_argument("--scans", type=int, default=100)
+    ap.add_argument("--one", nargs=3, metavar=("SIZE", "KERNEL", "REGIME"))
+    ap.add_argument("--dense", action="store_true")
+    ap.add_argument("--parts", default="abc")
+    args = ap.parse_args()
+    if args.one:
+        return one(args)
+    if args.quick:
+        args.chains, args.warmup, args.draws = 1, 200, 200
+        sizes = args.sizes or [16, 32]
+    else:
+        sizes = args.sizes or [32, 64, 128, 256]
+    base = [sys.executable, __file__, "--chains", str(args.chains), "--warmup", str(args.warmup),
+            "--draws", str(args.draws)]
+
+    def call(*extra, scans=None):
+        cmd = base + ["--scans", str(scans or args.scans)] + list(extra)
+        out = subprocess.run(cmd, capture_output=True, text=True)
+        line = [ln for ln in out.stdout.splitlines() if ln.startswith("{")]
+        if not line:
+            return {"error": (out.stderr.strip().splitlines() or ["failed"])[-1]}
+        return json.loads(line[-1])
+
+    cols = ("cells", "kernel", "regime", "formulation", "modes", "wall_s", "steps_per_draw", "min_ess_bulk",
+            "max_rhat", "divergences", "ess_per_s", "peak_rss_mb")
+
+    def show(rows):
+        print(" | ".join(cols))
+        for r in rows:
+            print(" | ".join(f"{r.get(c):.4g}" if isinstance(r.get(c), float) else str(r.get(c, r.get("error", "")))
+                             for c in cols))
+
+    print(f"chains {args.chains} × ({args.warmup} warmup + {args.draws} draws), 2 cores, float64")
+    if "a" in args.parts:
+        print("\n(a) Fourier-domain vs dense covariance, Matérn 3/2, weak data")
+        rows = []
+        for n in (16, 32):
+            f = call("--one", str(n), "matern32", "weak")
+            d = call("--one", str(n), "matern32", "weak", "--dense")
+            rows += [f, d]
+            if "ess_per_s" in f and "ess_per_s" in d:
+                print(f"  {n}²: ESS/s ratio fourier/dense = {f['ess_per_s'] / d['ess_per_s']:.3g}")
+        show(rows)
+    if "b" in args.parts:
+        print("\n(b) scaling")
+        rows = [call("--one", str(n), k, reg) for n in sizes for k in args.kernels for reg in ("weak", "strong")]
+        show(rows)
+    if "c" in args.parts:
+        print("\n(c) 1× vs 10× scans (32², Matérn 3/2, strong data per scan fixed)")
+        r1 = call("--one", "32", "matern32", "weak", scans=args.scans)
+        r10 = call("--one", "32", "matern32", "weak10", scans=10 * args.scans)  # same rate per scan
+        show([r1, r10])
+        if "wall_s" in r1 and "wall_s" in r10:
+            print(f"  time ratio 10×/1× = {r10['wall_s'] / r1['wall_s']:.3g}")
+
+
+if __name__ == "__main__":
+    main()
