@@ -122,6 +122,7 @@ def build_parser() -> argparse.ArgumentParser:
     )
     r.add_argument("run", metavar="RUN", help="run directory (runs/NAME)")
     r.add_argument("--out", metavar="FILE", help="where to write the page (default RUN/report.html)")
+    _add_criticism_parsers(sub, s)
     return p
 
 
@@ -156,10 +157,10 @@ def cmd_simulate(args) -> int:
         return 0
     if args.recordings is not None or args.per_scan_draw:
         raise InputError("--recordings and --per-scan-draw need --from RUN (a fitted run to draw from)")
-    from .simulate import simulate_lowmarsh
+    from .simulate import simulate_scene
 
-    simulate_lowmarsh(Path(args.out or "runs/demo-data"), n_scans=600 if args.scans is None else args.scans,
-                      seed=args.seed, fmt=args.format, log=_log)
+    simulate_scene(Path(args.out or "runs/demo-data"), n_scans=600 if args.scans is None else args.scans,
+                   seed=args.seed, fmt=args.format, rain=args.rain, second_mast=not args.no_second_mast, log=_log)
     return 0
 
 
@@ -184,13 +185,13 @@ def cmd_demo(args) -> int:
 
     from .fitting import fit
     from .results import write_run
-    from .simulate import simulate_lowmarsh
+    from .simulate import simulate_scene
     from .spec import load_spec
 
     t0 = time.perf_counter()
     runs = Path(args.runs)
     data_dir = runs / "demo-data"
-    info = simulate_lowmarsh(data_dir, seed=args.seed, log=_log)
+    info = simulate_scene(data_dir, seed=args.seed, log=_log)  # breakwater (fitted) + quay mast
     spec_file = resources.files("sceneprior") / "specs" / "lowmarsh-uniform.toml"
     with resources.as_file(spec_file) as sf:
         spec = load_spec(sf, overrides={
@@ -236,6 +237,90 @@ def human_summary(result, path: Path) -> str:
 
 COMMANDS = {"fit": cmd_fit, "simulate": cmd_simulate, "demo": cmd_demo, "export": cmd_export,
             "report": cmd_report}
+
+
+# --------------------------------------------------------------------------- criticism, comparison
+def _add_criticism_parsers(sub, simulate_parser) -> None:
+    """check, rank, compare, and the simulate options for weather and the second mast (issue 6)."""
+    simulate_parser.add_argument("--rain", action="store_true",
+                                 help="add rain episodes, sea state and per-scan gusts (over-dispersed counts); "
+                                 "the scans table gains rain, sea_state and weather_episode columns")
+    simulate_parser.add_argument("--no-second-mast", action="store_true",
+                                 help="do not write the quay mast's recording (DIR/quay)")
+    c = sub.add_parser(
+        "check", help="posterior/prior predictive checks and prior sensitivity of a run (RUN/check.json)",
+        description="Check a fitted RUN: dispersion index of the per-scan counts with its posterior "
+        "predictive p-value, LOO-PIT of the per-scan counts, standardised residuals per zone, drift over "
+        "time, scan-to-scan persistence, the prior predictive, and prior sensitivity (refits with every "
+        "prior scale ×10 and ÷10). Each check is a test at level 0.01; results go to RUN/check.json.",
+        epilog=UNITS_EPILOG, formatter_class=argparse.RawDescriptionHelpFormatter)
+    c.add_argument("run", metavar="RUN", help="run directory (runs/NAME)")
+    c.add_argument("--no-sensitivity", action="store_true", help="skip the prior-sensitivity refits")
+    c.add_argument("--no-prior", action="store_true", help="skip the prior predictive check")
+    c.add_argument("--zones", type=int, default=4, help="zones per grid axis for the residuals (default %(default)s)")
+    c.add_argument("--seed", type=int, default=0, help="seed of the replications (default %(default)s)")
+    c.add_argument("--json", action="store_true", help="print check.json instead of the table")
+    k = sub.add_parser(
+        "rank", help="rank runs fitted to the same data by PSIS-LOO over scans",
+        description="PSIS-LOO with the per-scan set log-density (point-process measure, per m²) and "
+        "leave-block-out of consecutive scans; prints elpd differences to the best run with their standard "
+        "errors and Pareto-k warnings. Refuses runs fitted to different data or windows, or whose "
+        "likelihoods are in measures that cannot be reconciled.",
+        epilog=UNITS_EPILOG, formatter_class=argparse.RawDescriptionHelpFormatter)
+    k.add_argument("runs", metavar="RUN", nargs="+", help="run directories")
+    k.add_argument("--blocks", default="25", metavar="B",
+                   help="leave-block-out blocks: N consecutive scans, 'hour', 'day', or 'column:NAME' "
+                   "(episodes of a scans-table column) (default %(default)s)")
+    k.add_argument("--json", action="store_true", help="print the result as JSON")
+    m = sub.add_parser(
+        "compare", help="compare two runs (sites, sensors, periods) on a common grid",
+        description="Rate ratio of RUN_A to RUN_B over the overlap of their windows in a shared frame "
+        "([sensor] x, y, heading in the specs), P(rate_A > rate_B), and the per-cell log-ratio map on a "
+        "common Cartesian grid (intensities per m² per scan; polar per m·rad intensities are converted "
+        "with the Jacobian 1/r) with cells marked where the difference is credible at a Bayesian "
+        "false-discovery rate.",
+        epilog=UNITS_EPILOG, formatter_class=argparse.RawDescriptionHelpFormatter)
+    m.add_argument("run_a", metavar="RUN_A")
+    m.add_argument("run_b", metavar="RUN_B")
+    m.add_argument("--cell", type=float, metavar="M", help="common grid cell size in m (default: the coarser "
+                   "of the two runs' median cell sizes)")
+    m.add_argument("--fdr", type=float, default=0.05, help="Bayesian false-discovery rate (default %(default)s)")
+    m.add_argument("--min-ratio", type=float, default=1.0, metavar="R",
+                   help="a cell is different when its ratio exceeds R or is below 1/R (default %(default)s: sign)")
+    m.add_argument("--out", metavar="DIR", help="write DIR/comparison.json and DIR/log_ratio.nc")
+
+
+def cmd_check(args) -> int:
+    import json
+
+    from .checks import check_run, format_check
+
+    rep = check_run(args.run, prior_side=not args.no_prior, sensitivity=not args.no_sensitivity,
+                    seed=args.seed, zones=args.zones, log=_log)
+    print(json.dumps(rep, indent=2, default=str) if args.json else format_check(rep))
+    return 0
+
+
+def cmd_rank(args) -> int:
+    import json
+
+    from .loo import format_rank, rank_runs
+
+    res = rank_runs(args.runs, blocks=args.blocks)
+    print(json.dumps(res, indent=2) if args.json else format_rank(res))
+    return 0
+
+
+def cmd_compare(args) -> int:
+    from .compare import compare_runs, format_compare
+
+    res = compare_runs(args.run_a, args.run_b, out=Path(args.out) if args.out else None, cell_m=args.cell,
+                       fdr=args.fdr, min_ratio=args.min_ratio)
+    print(format_compare(res))
+    return 0
+
+
+COMMANDS.update({"check": cmd_check, "rank": cmd_rank, "compare": cmd_compare})
 
 
 def main(argv=None) -> int:

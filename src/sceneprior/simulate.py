@@ -317,3 +317,299 @@ def simulate_from_run(run, out_dir: Path, recordings: int = 1, per_scan_draw: bo
 
 
 __all__ += ["sample_thinning_by_scan", "simulate_from_run"]
+
+
+# --------------------------------------------------------------------------- weather, second mast
+# Rain episodes and a second mast on the quay (issue 6). Everything here is new: the
+# default `simulate_lowmarsh` output is unchanged (its random stream is not touched; the
+# quay and the weather use their own streams derived from the seed).
+@dataclass(frozen=True)
+class RainEpisodes:
+    """Weather of the invented Lowmarsh recording (our numbers). Rain starts with
+    probability ``start_prob`` per dry scan and lasts a geometric number of scans of mean
+    ``mean_length_scans``; while it rains the sea clutter intensity is × ``factor``.
+    Sea state (Douglas scale) steps by ±1 with probability ``sea_state_step_prob`` per
+    scan within [2, 5], × exp(``sea_state_effect``·(state − 3)). Every scan also gets an
+    independent gust factor u_k ~ Gamma(1/``gust_phi``, 1/``gust_phi``) (mean 1, variance φ)."""
+
+    start_prob: float = 1.0 / 120.0
+    mean_length_scans: float = 45.0
+    factor: float = 2.5
+    sea_state_step_prob: float = 1.0 / 150.0
+    sea_state_start: int = 3
+    sea_state_effect: float = 0.15
+    gust_phi: float = 0.12
+
+    def draw(self, rng: np.random.Generator, n_scans: int) -> dict:
+        rain = np.zeros(n_scans, np.int64)
+        sea = np.zeros(n_scans, np.int64)
+        r, s = 0, self.sea_state_start
+        u_start = rng.uniform(size=n_scans)
+        u_stop = rng.uniform(size=n_scans)
+        u_sea = rng.uniform(size=n_scans)
+        for k in range(n_scans):  # a two-state Markov chain: one cheap pass over the scans
+            r = (u_start[k] < self.start_prob) if r == 0 else (u_stop[k] >= 1.0 / self.mean_length_scans)
+            if u_sea[k] < self.sea_state_step_prob:
+                s = int(np.clip(s + (1 if u_sea[k] < self.sea_state_step_prob / 2 else -1), 2, 5))
+            rain[k], sea[k] = int(r), s
+        gust = rng.gamma(1.0 / self.gust_phi, self.gust_phi, size=n_scans)
+        episode = np.concatenate([[0], np.cumsum(rain[1:] != rain[:-1])])
+        mult = gust * self.factor ** rain * np.exp(self.sea_state_effect * (sea - 3))
+        return {"rain": rain, "sea_state": sea, "episode": episode, "gust": gust, "multiplier": mult}
+
+
+@dataclass(frozen=True)
+class QuayMast:
+    """The second Lowmarsh mast (invented): on the quay, 1.5 km east of the breakwater
+    radar, looking north-north-west; it sees the same sea and the same shoal (a fixed place
+    in the shared frame) from elsewhere, with its own range fall-off and land sector.
+    Shared frame: the breakwater radar at (0, 0), heading 0 (its bearings are compass
+    bearings)."""
+
+    x_m: float = 1500.0
+    y_m: float = -200.0
+    heading_deg: float = -20.0
+    range_m: tuple[float, float] = (200.0, 5000.0)
+    bearing_deg: tuple[float, float] = (-60.0, 60.0)  # local, clockwise from the mast's heading
+    land_bearing_deg: tuple[float, float] = (48.0, 60.0)  # local
+    sea_peak: float = 5.0e-7
+    sea_falloff_m: float = 900.0
+    floor: float = 2.0e-8
+    land: float = 2.0e-7
+    scan_period_s: float = 2.4
+
+    def region(self) -> Region:
+        return Region(frame="polar", bounds0=self.range_m, bounds1=self.bearing_deg,
+                      masks=(SectorMask(range=self.range_m, bearing=self.land_bearing_deg, name="land"),))
+
+    def to_shared(self, r, b):
+        x, y = polar_to_cartesian(r, np.asarray(b, float) + self.heading_deg)
+        return x + self.x_m, y + self.y_m
+
+    def sea_intensity(self, r, b, scene: Lowmarsh | None = None):
+        sc = scene or Lowmarsh()
+        r = np.asarray(r, float)
+        X, Y = self.to_shared(r, b)
+        sx, sy = polar_to_cartesian(sc.shoal_range_m, sc.shoal_bearing_deg)
+        d2 = (X - sx) ** 2 + (Y - sy) ** 2
+        return (self.sea_peak * np.exp(-(r - self.range_m[0]) / self.sea_falloff_m)
+                + sc.shoal_peak * np.exp(-0.5 * d2 / sc.shoal_radius_m**2) + self.floor)
+
+    def intensity(self, r, b, scene: Lowmarsh | None = None):
+        b = np.asarray(b, float)
+        on_land = (b >= self.land_bearing_deg[0]) & (b <= self.land_bearing_deg[1])
+        return np.where(on_land, self.land + self.floor, self.sea_intensity(r, b, scene))
+
+    def lam_max(self, scene: Lowmarsh | None = None) -> float:
+        sc = scene or Lowmarsh()
+        return self.sea_peak + sc.shoal_peak + self.floor + self.land
+
+    def window_rate(self, scene: Lowmarsh | None = None, order: int = 64) -> tuple[float, float]:
+        reg = self.region()
+
+        def integral(n):
+            c0, c1, w = reg.quadrature(n)
+            return float(np.sum(w * self.sea_intensity(c0, c1, scene)))
+
+        lo, hi = integral(order), integral(2 * order)
+        return hi, abs(hi - lo)
+
+
+def sample_thinning_scaled(rng, region: Region, intensity, lam_max: float, multipliers):
+    """Thinning (Lewis & Shedler 1979) with a per-scan factor: scan k has intensity
+    m_k·λ(z). Candidates: a homogeneous PPP of rate max(m)·λ_max per scan (Poisson total
+    split uniformly over scans), kept with probability m_k λ(z) / (max(m) λ_max)."""
+    m = np.asarray(multipliers, float)
+    top = float(m.max()) * lam_max
+    K = m.size
+    total = rng.poisson(top * region.area() * K)
+    c0, c1 = uniform_in_bounds(rng, region, total)
+    scan = rng.integers(0, K, size=total)
+    lam = intensity(c0, c1) * m[scan]
+    if lam.size and (lam.max() > top * (1 + 1e-12) or lam.min() < 0):
+        raise ValueError("thinning bound violated")
+    keep = rng.uniform(0.0, top, size=total) < lam
+    order = np.argsort(scan[keep], kind="stable")
+    return scan[keep][order], c0[keep][order], c1[keep][order]
+
+
+def _write_mast(out_dir: Path, scan, r, b, n_scans, period, site, weather, fmt, extra_truth, region,
+                rate, err, seed, params, log, masked_land: str) -> dict:
+    x, y = polar_to_cartesian(r, b)
+    out_dir.mkdir(parents=True, exist_ok=True)
+    det = pa.table({"scan": scan.astype(np.int64), "range": np.round(r, 3), "bearing": np.round(b, 5),
+                    "x": np.round(x, 3), "y": np.round(y, 3)})
+    cols = {"scan": np.arange(n_scans, dtype=np.int64), "time": np.round(np.arange(n_scans) * period, 3),
+            "site": np.full(n_scans, site)}
+    if weather is not None:
+        cols.update({"rain": weather["rain"], "sea_state": weather["sea_state"],
+                     "weather_episode": weather["episode"]})
+    ext = "csv" if fmt == "csv" else "parquet"
+    write = (lambda t, p: pacsv.write_csv(t, p)) if fmt == "csv" else (lambda t, p: pq.write_table(t, p))
+    write(det, out_dir / f"detections.{ext}")
+    write(pa.table(cols), out_dir / f"scans.{ext}")
+    in_window = ~region.in_mask(r, b)
+    info = {"site": site, "seed": seed, "scans": n_scans, "detections": int(scan.size),
+            "detections_in_window": int(in_window.sum()), "true_rate_per_scan": rate,
+            "true_rate_quadrature_error": err,
+            "true_rate_note": "expected clutter detections per scan over the window without weather "
+                              "(∫_W λ dA, Gauss–Legendre quadrature)" + (
+                                  "; with weather each scan's rate is this × its multiplier" if weather else ""),
+            "window_area_m2": float(region.window_area()), "parameters": params,
+            "files": {"detections": f"detections.{ext}", "scans": f"scans.{ext}"}, **extra_truth}
+    (out_dir / "truth.json").write_text(json.dumps(info, indent=2) + "\n")
+    log(f"simulated {n_scans} scans at the {site} mast, {scan.size} detections "
+        f"({int(in_window.sum())} over sea, {int((~in_window).sum())} on the masked {masked_land}) into "
+        f"{out_dir}; true rate {rate:.4f} detections/scan over the window"
+        + (" before weather" if weather else ""))
+    return info
+
+
+def simulate_quay(out_dir: Path, n_scans: int = 600, seed: int = 20261201, fmt: str = "csv",
+                  weather: dict | None = None, mast: QuayMast | None = None, log=print) -> dict:
+    """The quay mast's recording (same scans and times as the breakwater's, its own random
+    stream), into ``out_dir``; ``weather`` (from :meth:`RainEpisodes.draw`) shared with the
+    breakwater when given."""
+    q = mast or QuayMast()
+    sc = Lowmarsh()
+    rng = np.random.default_rng([seed, 2])
+    region = q.region()
+    mult = np.ones(n_scans) if weather is None else weather["multiplier"]
+
+    def lam(r, b):
+        return q.intensity(r, b, sc)
+
+    # weather acts on the sea; land returns stay (they are dropped as masked anyway)
+    if weather is None:
+        scan, r, b = sample_thinning(rng, region, lam, q.lam_max(sc), n_scans)
+    else:
+        scan, r, b = sample_thinning_scaled(rng, region, lam, q.lam_max(sc), mult)
+    rate, err = q.window_rate(sc)
+    sensor = {"x": q.x_m, "y": q.y_m, "heading": q.heading_deg, "frame": "lowmarsh"}
+    return _write_mast(Path(out_dir), scan, r, b, n_scans, q.scan_period_s, "quay", weather, fmt,
+                       {"sensor": sensor, "scenario": "Lowmarsh quay mast (invented)"}, region, rate, err,
+                       seed, asdict(q), log, "quay land sector")
+
+
+def simulate_scene(out_dir: Path, n_scans: int = 600, seed: int = 20261201, fmt: str = "csv",
+                   rain: bool = False, second_mast: bool = True, log=print) -> dict:
+    """The Lowmarsh demo data: the breakwater recording in ``out_dir`` and, with
+    ``second_mast``, the quay mast's in ``out_dir/quay``.
+
+    Without ``rain`` the breakwater files are exactly those of :func:`simulate_lowmarsh`
+    (same seed, same numbers). With ``rain`` the weather (:class:`RainEpisodes`, its own
+    random stream) multiplies the sea clutter of every scan at both masts, and the scans
+    tables gain ``rain`` (0/1), ``sea_state`` and ``weather_episode`` columns; truth.json
+    records the weather's parameters and the per-scan multipliers' mean."""
+    out_dir = Path(out_dir)
+    weather = None
+    if not rain:
+        info = simulate_lowmarsh(out_dir, n_scans=n_scans, seed=seed, fmt=fmt, log=log)
+    else:
+        if n_scans < 1:
+            raise InputError(f"--scans must be ≥ 1, got {n_scans}")
+        if fmt not in ("csv", "parquet"):
+            raise InputError(f"--format must be csv or parquet, got {fmt!r}")
+        rp = RainEpisodes()
+        weather = rp.draw(np.random.default_rng([seed, 1]), n_scans)
+        sc = Lowmarsh()
+        rng = np.random.default_rng(seed)
+        region = sc.region()
+        is_land = lambda b: (np.asarray(b) >= sc.land_bearing_deg[0]) & (np.asarray(b) <= sc.land_bearing_deg[1])  # noqa: E731
+        scan, r, b = sample_thinning_scaled(rng, region, sc.sea_intensity, sc.lam_max(), weather["multiplier"])
+        keep = ~is_land(b)  # sea clutter (× weather) outside the land sector ...
+        ls, lr, lb = sample_thinning(rng, region, lambda r_, b_: np.where(is_land(b_), sc.land + sc.floor, 0.0),
+                                     sc.land + sc.floor, n_scans)  # ... land returns unchanged
+        scan, r, b = (np.concatenate([scan[keep], ls]), np.concatenate([r[keep], lr]),
+                      np.concatenate([b[keep], lb]))
+        o = np.argsort(scan, kind="stable")
+        scan, r, b = scan[o], r[o], b[o]
+        rate, err = sc.window_rate()
+        extra = {"scenario": "Lowmarsh breakwater radar with rain episodes (invented)",
+                 "sensor": {"x": 0.0, "y": 0.0, "heading": 0.0, "frame": "lowmarsh"},
+                 "weather": {"parameters": asdict(rp), "rain_scans": int(weather["rain"].sum()),
+                             "episodes": int(weather["episode"].max()) + 1,
+                             "mean_multiplier": float(weather["multiplier"].mean()),
+                             "expected_rate_this_recording": rate * float(weather["multiplier"].mean())}}
+        info = _write_mast(out_dir, scan, r, b, n_scans, sc.scan_period_s, "breakwater", weather, fmt, extra,
+                           region, rate, err, seed, asdict(sc), log, "land")
+        import xarray as xr
+
+        grid = region.grid((58, 56))
+        rr, bb = np.meshgrid(grid.centres0, grid.centres1, indexing="ij")
+        xr.Dataset({"intensity": (("range", "bearing"), sc.intensity(rr, bb),
+                                  {"units": "m-2 scan-1", "long_name": "true clutter intensity at cell centres "
+                                                                       "before weather"})},
+                   coords={"range": ("range", grid.centres0, {"units": "m"}),
+                           "bearing": ("bearing", grid.centres1, {"units": "degree"})},
+                   attrs={"scenario": "Lowmarsh (invented)", "seed": seed}).to_netcdf(out_dir / "truth.nc",
+                                                                                      engine="h5netcdf")
+    info["births"] = simulate_births(out_dir / "births", n_steps=n_scans, seed=seed, log=log)
+    if second_mast:
+        info["quay"] = simulate_quay(out_dir / "quay", n_scans=n_scans, seed=seed, fmt=fmt, weather=weather, log=log)
+    return info
+
+
+__all__ += ["RainEpisodes", "QuayMast", "sample_thinning_scaled", "simulate_quay", "simulate_scene"]
+
+
+@dataclass(frozen=True)
+class LowmarshBirths:
+    """Where new vessels appear at Lowmarsh (invented numbers), Cartesian metres from the
+    breakwater radar (x east, y north): the harbour mouth and the ferry slip."""
+
+    box_x: tuple[float, float] = (-2000.0, 2000.0)
+    box_y: tuple[float, float] = (0.0, 3000.0)
+    weights: tuple[float, ...] = (0.12, 0.08)  # untruncated expected births per step
+    means: tuple[tuple[float, float], ...] = ((-350.0, 1500.0), (600.0, 800.0))
+    sds: tuple[tuple[float, float], ...] = ((180.0, 90.0), (70.0, 70.0))
+    corr: tuple[float, ...] = (0.4, 0.0)
+    step_s: float = 2.4
+
+    def covs(self) -> np.ndarray:
+        out = []
+        for (sx, sy), r in zip(self.sds, self.corr):
+            out.append([[sx * sx, r * sx * sy], [r * sx * sy, sy * sy]])
+        return np.asarray(out)
+
+
+def simulate_births(out_dir: Path, n_steps: int = 600, seed: int = 20261201, log=print) -> dict:
+    """Birth events of the Lowmarsh demo: births.csv (step, x [m], y [m]), steps.csv
+    (step, duration [s]) and truth.json (the mixture, its in-box masses and rate).
+
+    A PPP with Gaussian-mixture intensity restricted to the box, sampled by restriction
+    (Kingman 1993, §2.2: keep the mixture's points that fall inside), in one batch over
+    steps; its own random stream, so the clutter tables do not change."""
+    from scipy.stats import multivariate_normal
+
+    from .mixture_mass import box_mass
+
+    b = LowmarshBirths()
+    rng = np.random.default_rng([seed, 7])
+    w, m, c = np.asarray(b.weights), np.asarray(b.means), b.covs()
+    steps, xs, ys = [], [], []
+    for j in range(len(w)):
+        n = rng.poisson(w[j] * n_steps)
+        pts = multivariate_normal(m[j], c[j]).rvs(size=n, random_state=rng).reshape(-1, 2)
+        steps.append(rng.integers(0, n_steps, size=n))
+        xs.append(pts[:, 0])
+        ys.append(pts[:, 1])
+    step, x, y = (np.concatenate(v) for v in (steps, xs, ys))
+    inside = (x >= b.box_x[0]) & (x <= b.box_x[1]) & (y >= b.box_y[0]) & (y <= b.box_y[1])
+    step, x, y = step[inside], x[inside], y[inside]
+    o = np.argsort(step, kind="stable")
+    out_dir = Path(out_dir)
+    out_dir.mkdir(parents=True, exist_ok=True)
+    pacsv.write_csv(pa.table({"step": step[o].astype(np.int64), "x": np.round(x[o], 3), "y": np.round(y[o], 3)}),
+                    out_dir / "births.csv")
+    pacsv.write_csv(pa.table({"step": np.arange(n_steps, dtype=np.int64),
+                              "duration": np.full(n_steps, b.step_s)}), out_dir / "steps.csv")
+    mass = box_mass(m, c, (b.box_x, b.box_y)).mass
+    info = {"scenario": "Lowmarsh births (invented)", "seed": seed, "steps": n_steps,
+            "births": int(step.size), "weights_untruncated": list(b.weights),
+            "in_box_mass": [float(v) for v in np.asarray(mass)],
+            "true_rate_per_step": float(np.sum(w * np.asarray(mass))),
+            "means_m": [list(v) for v in b.means], "covs_m2": c.tolist(), "step_s": b.step_s}
+    (out_dir / "truth.json").write_text(json.dumps(info, indent=2) + "\n")
+    log(f"simulated {step.size} births over {n_steps} steps into {out_dir}")
+    return info

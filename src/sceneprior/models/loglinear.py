@@ -37,8 +37,9 @@ DEFAULT_PRIOR = {"rate_median": 10.0, "rate_log_sd": 3.0, "coef_sd": 2.5}
 
 
 def loglinear_model(Z, counts, exposure, window_area, alpha_loc, alpha_scale, coef_sd,
-                    means, scales, flat=False):
-    """numpyro model; Z (n_obs, p) standardised covariates of the observed cells."""
+                    means, scales, flat=False, scan_terms=None):
+    """numpyro model; Z (n_obs, p) standardised covariates of the observed cells;
+    scan_terms: per-scan terms (``models.scanterms``) or None."""
     p = Z.shape[1]
     alpha = numpyro.sample("alpha", dist.Normal(alpha_loc, alpha_scale))
     if flat:
@@ -46,8 +47,14 @@ def loglinear_model(Z, counts, exposure, window_area, alpha_loc, alpha_scale, co
     else:
         beta = numpyro.sample("beta_std", dist.Normal(0.0, coef_sd).expand([p]).to_event(1))
     log_lam = alpha + Z @ beta
-    numpyro.factor("loglik", binned_loglik(log_lam, counts, exposure))
-    numpyro.deterministic("rate", jnp.sum(jnp.exp(log_lam) * window_area))
+    if scan_terms is not None:
+        from .scanterms import ppp_factor
+
+        base = jnp.sum(jnp.exp(log_lam) * window_area)
+        numpyro.deterministic("rate", base * ppp_factor(jnp.sum(counts * log_lam), base, scan_terms))
+    else:
+        numpyro.factor("loglik", binned_loglik(log_lam, counts, exposure))
+        numpyro.deterministic("rate", jnp.sum(jnp.exp(log_lam) * window_area))
     numpyro.deterministic("coef", beta / scales)
     numpyro.deterministic("intercept", alpha - jnp.sum(beta * means / scales))
 

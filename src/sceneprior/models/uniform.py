@@ -20,14 +20,22 @@ import numpyro.distributions as dist
 DEFAULT_PRIOR = {"shape": 1.0, "rate": 0.1}
 
 
-def uniform_model(total_count, total_exposure, window_total, shape, rate):
+def uniform_model(total_count, total_exposure, window_total, shape, rate, scan_terms=None):
     """numpyro model of a homogeneous PPP from its sufficient statistics.
 
     total_count: N = Σ_c N_c; total_exposure: E = Σ_c E_c [m²·scan];
     window_total: |W| [m²]; shape, rate: Gamma prior on the rate per scan (rate in scans).
+    scan_terms: per-scan terms (over-dispersion, scan covariates, time bins;
+    ``models.scanterms``) or None.
     Sites: ``intensity`` ρ [m⁻² scan⁻¹], deterministic ``rate`` ρ|W| [detections/scan].
     """
     rho = numpyro.sample("intensity", dist.Gamma(shape, rate * window_total))
+    if scan_terms is not None:
+        from .scanterms import ppp_factor
+
+        mean_mult = ppp_factor(total_count * jnp.log(rho), rho * window_total, scan_terms)
+        numpyro.deterministic("rate", rho * window_total * mean_mult)
+        return
     # log L = N log ρ − E ρ (DESIGN.md §2, piecewise constant with one level)
     numpyro.factor("loglik", total_count * jnp.log(rho) - total_exposure * rho)
     numpyro.deterministic("rate", rho * window_total)
