@@ -32,6 +32,7 @@ def birth_run(tmp_path_factory):
         "sampler": {"chains": 2, "warmup": 400, "draws": 600, "progress": False}})
     res = fit(spec, progress=False, log=lambda m: None)
     path = write_run(res, tmp / "runs")
+    res._written = path
     return truth, res, json.loads((path / "summary.json").read_text())
 
 
@@ -63,3 +64,18 @@ def test_mixture_bad_input(tmp_path, capsys):
                     model={"kind": "mixture", "components": 0})
     assert main(["fit", str(spec), "--quiet"]) == 2
     assert "model.components must be a whole number ≥ 1" in capsys.readouterr().err
+
+
+def test_birth_mixture_exports_to_the_tracker_file(birth_run):
+    """The run's birth mixture reaches tracker.json with untruncated and in-region weights;
+    their in-region sum is the summary's rate per step (a sum of posterior means)."""
+    truth, res, summary = birth_run
+    from sceneprior.export import build_config
+    from sceneprior.results import load_run
+
+    doc = build_config(load_run(res._written), override_gate=True)  # short test chains
+    b = doc["birth"]
+    assert b["weights"] == "untruncated" and len(b["components"]) == 2
+    w_in = sum(c["weight_in_region"] for c in b["components"])
+    assert w_in == pytest.approx(summary["mixture"]["rate_per_step"]["mean"], rel=1e-9)
+    assert b["step_duration_s"] == pytest.approx(2.4)

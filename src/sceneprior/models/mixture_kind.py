@@ -191,6 +191,17 @@ def summary(result) -> dict:
                           "units": "expected new objects per step inside the window"},
         "warnings": warnings,
     }
+    # the form the tracker export takes (DEVELOPERS.md, "Tracker export")
+    out["birth"] = {
+        "components": [{"weight": c["weight_untruncated"]["mean"], "weight_sd": c["weight_untruncated"]["sd"],
+                        "weight_in_region": c["weight_in_region"]["mean"], "mass_in_region": c["in_region_mass"],
+                        "mean": c["mean_m"], "cov": c["cov_m2"]} for c in comps],
+        "state_axes": ["x", "y"], "state_units": ["m", "m"],
+        "units": "expected new objects per step",
+        "rate_per_step": out["rate_per_step"], "labelling": mixture.LABELLING,
+    }
+    if per_second is not None:
+        out["birth"]["step_duration_s"] = 1.0 / per_second
     if per_second is not None:
         out["rate_per_second"] = {"mean": float(total_in.mean() * per_second),
                                   "sd": float(total_in.std(ddof=1) * per_second),
