@@ -273,6 +273,9 @@ def summary_dict(result) -> dict:
     }
     if result.model.summary is not None:
         out[result.model.name] = result.model.summary(result)
+        for key in ("cardinality", "overdispersion"):  # read by the tracker export
+            if key in out[result.model.name]:
+                out[key] = out[result.model.name][key]
     if result.model.name == "uniform":
         from .models.uniform import exact_posterior
 
