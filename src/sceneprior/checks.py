@@ -45,10 +45,7 @@ from __future__ import annotations
 
 import copy
 import dataclasses
-import json
 import math
-import os
-import tempfile
 from pathlib import Path
 
 import numpy as np
@@ -499,16 +496,9 @@ def check_run(path, prior_side: bool = True, sensitivity: bool = True, seed: int
 
 
 def _write_json(path: Path, obj) -> None:
-    fd, tmp = tempfile.mkstemp(prefix=".check-", suffix=".json", dir=path.parent)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as fh:
-            json.dump(obj, fh, indent=2, ensure_ascii=False, default=_json_default)
-            fh.write("\n")
-        os.chmod(tmp, 0o644)
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
+    from .jsonio import write_json_atomic
+
+    write_json_atomic(path, obj, indent=2, default=_json_default)
 
 
 def _json_default(o):

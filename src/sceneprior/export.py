@@ -34,8 +34,6 @@ from __future__ import annotations
 
 import json
 import math
-import os
-import tempfile
 from datetime import datetime, timezone
 from importlib import resources
 from pathlib import Path
@@ -348,18 +346,9 @@ def build_config(run, quantile: float | None = None, override_gate: bool = False
 
 
 def _write_json(doc: dict, path: Path) -> None:
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as fh:
-            json.dump(doc, fh, indent=1, ensure_ascii=False, allow_nan=False)
-            fh.write("\n")
-        os.chmod(tmp, 0o644)
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
+    from .jsonio import write_json_atomic
+
+    write_json_atomic(path, doc, indent=1, allow_nan=False)
 
 
 def export_run(run, quantile: float | None = None, override_gate: bool = False,
