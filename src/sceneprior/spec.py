@@ -72,6 +72,13 @@ MODEL_KINDS = MODEL_KINDS + ("sites",)
 MODEL_OPTIONS = {k: tuple(v) + SCAN_OPTIONS for k, v in MODEL_OPTIONS.items()}
 MODEL_OPTIONS["sites"] = ("site_column",)
 
+# Known objects and their gates (issue 7): an objects table named in [data], gate options in
+# [data.gates], its column names in [data.columns] beside the detections' ones.
+OBJECT_COLUMNS = ("object", "gate_radius", "cov_xx", "cov_xy", "cov_yy")
+_SCHEMA["data"]["objects"] = None
+_SCHEMA["data"]["gates"] = {"radius": None, "probability": None}
+_SCHEMA["data"]["columns"].update({k: None for k in OBJECT_COLUMNS})
+
 
 def _suggest(key: str, allowed) -> str:
     close = difflib.get_close_matches(key, list(allowed), n=1, cutoff=0.5)
@@ -116,6 +123,9 @@ class DataSpec:
     n_scans: int | None
     outside: str  # "error" | "drop"
     columns: dict[str, str]
+    objects: Path | None = None  # known objects per scan (issue 7): their gates leave the window
+    gate_radius: float | None = None  # m: disc gates of this radius (unless a gate_radius column)
+    gate_probability: float | None = None  # P_G: ellipse gates from covariance columns
 
 
 @dataclass(frozen=True)
@@ -281,17 +291,22 @@ def spec_from_dict(
             "scans included) or 'data.n_scans' (scan ids 0..n-1); without it empty scans are "
             "invisible and the rate would be biased upward"
         )
-    columns = {k: k for k in ("scan", "x", "y", "range", "bearing")}
+    columns = {k: k for k in ("scan", "x", "y", "range", "bearing") + OBJECT_COLUMNS}
     for k, v in (d.get("columns") or {}).items():
         if not isinstance(v, str) or not v:
             raise InputError(f"{source}: 'data.columns.{k}' must be a column name (a string)")
         columns[k] = v
+    objects = resolve("data.objects", d["objects"]) if "objects" in d else None
+    gate_radius, gate_probability = _gate_options(d.get("gates"), objects, source)
     data = DataSpec(
         detections=resolve("data.detections", d["detections"]),
         scans=scans,
         n_scans=n_scans,
         outside=outside,
         columns=columns,
+        objects=objects,
+        gate_radius=gate_radius,
+        gate_probability=gate_probability,
     )
 
     # --- space ---
@@ -405,6 +420,25 @@ def spec_from_dict(
         raw=raw,
         sensor=_sensor(raw.get("sensor"), source),
     )
+
+
+def _gate_options(g, objects, source: str) -> tuple[float | None, float | None]:
+    """[data.gates]: ``radius`` (m, disc gates) or ``probability`` (P_G, ellipse gates from the
+    objects table's covariance columns), not both; only with ``data.objects``."""
+    g = g or {}
+    if g and objects is None:
+        raise InputError(f"{source}: [data.gates] needs 'data.objects' (a table of known objects per scan)")
+    radius, prob = g.get("radius"), g.get("probability")
+    if radius is not None and prob is not None:
+        raise InputError(f"{source}: give either 'data.gates.radius' (disc gates, m) or "
+                         "'data.gates.probability' (ellipse gates from covariance columns), not both")
+    num = lambda v: isinstance(v, (int, float)) and not isinstance(v, bool)  # noqa: E731
+    if radius is not None and not (num(radius) and 0 < radius < float("inf")):
+        raise InputError(f"{source}: 'data.gates.radius' must be a positive number of metres, got {radius!r}")
+    if prob is not None and not (num(prob) and 0 < prob < 1):
+        raise InputError(f"{source}: 'data.gates.probability' must lie strictly between 0 and 1 "
+                         f"(the gate probability P_G), got {prob!r}")
+    return (None if radius is None else float(radius)), (None if prob is None else float(prob))
 
 
 def _flat_paths(over: dict, prefix: str = "") -> set[str]:
