@@ -123,6 +123,7 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("run", metavar="RUN", help="run directory (runs/NAME)")
     r.add_argument("--out", metavar="FILE", help="where to write the page (default RUN/report.html)")
     _add_criticism_parsers(sub, s)
+    _add_tracklog_parsers(sub)
     return p
 
 
@@ -167,7 +168,8 @@ def cmd_simulate(args) -> int:
 def cmd_export(args) -> int:
     from .export import describe, export_run
 
-    doc, paths = export_run(args.run, quantile=args.quantile, override_gate=args.override_gate, out=args.out)
+    doc, paths = export_run(args.run, quantile=args.quantile, override_gate=args.override_gate, out=args.out,
+                            detection=args.detection, birth=args.birth)
     print(describe(doc, paths))
     return 0
 
@@ -321,6 +323,92 @@ def cmd_compare(args) -> int:
 
 
 COMMANDS.update({"check": cmd_check, "rank": cmd_rank, "compare": cmd_compare})
+
+
+
+# --------------------------------------------------------------------------- track log (issue 7)
+def _add_tracklog_parsers(sub) -> None:
+    """births, detection, and the export options that combine runs."""
+    e = sub.choices["export"]
+    e.add_argument("--detection", metavar="PD_RUN",
+                   help="add the detection probability P_D(range) of a detection run (sceneprior detection); "
+                   "its region must be the clutter run's")
+    e.add_argument("--birth", metavar="BIRTH_RUN",
+                   help="add the birth mixture of a birth run (a mixture fit to `sceneprior births` output); "
+                   "both runs must place the sensor alike")
+    b = sub.add_parser(
+        "births", help="derive birth events and exposed steps from a track log (objects table)",
+        description="Read the recording named by SPEC (its scans table and data.objects: scan, object id, "
+        "position) and derive the birth events — the first appearance of each object id — and the steps at "
+        "which a birth could be seen. Objects at the start of the recording or right after a data gap (a time "
+        "jump > GAP_FACTOR × the median scan period, or a missing scan id) are left-censored: not births, and "
+        "those steps leave the exposure. An id unseen for more than --max-unseen scans that reappears is a new "
+        "object. Writes births.csv (step, x, y [m], vx, vy [m/s]; polar positions converted to Cartesian), "
+        "steps.csv (exposed steps with their duration [s]) and births.json (counts, rules, the birth rate per "
+        "step with its conjugate Gamma posterior) — the input of a birth-mixture fit "
+        "(models/lowmarsh-birth.toml).",
+        epilog=UNITS_EPILOG, formatter_class=argparse.RawDescriptionHelpFormatter)
+    b.add_argument("spec", metavar="SPEC.toml", help="the recording's fit specification, with data.objects")
+    b.add_argument("--out", metavar="DIR", required=True, help="folder for births.csv, steps.csv, births.json")
+    b.add_argument("--gap-factor", type=float, default=1.5,
+                   help="a data gap is a scan-time jump above this × the median scan period (default %(default)s)")
+    b.add_argument("--max-unseen", type=int, default=3,
+                   help="an id unseen for more than this many scans that reappears is a new object; set it to "
+                   "your tracker's track-deletion threshold (default %(default)s)")
+    b.add_argument("--detection-probability", type=float, metavar="P",
+                   help="the log was built from detections with this P_D: censor the first scans after the start "
+                   "and each gap until a present object is listed with 99 %% probability, and back-propagate "
+                   "birth positions by the expected detection lag (1 − P)/P scans (default: off, the log lists "
+                   "objects from their appearance)")
+    b.add_argument("--settle-scans", type=int, metavar="H",
+                   help="censor H scans after the start and each gap besides the first (default 0, or from "
+                   "--detection-probability)")
+    b.add_argument("--position-sd", type=float, default=0.0, metavar="M",
+                   help="position noise sd of the log [m], for the lag correction's variance (default 0)")
+    b.add_argument("--time-column", default="time",
+                   help="scans-table column with scan times, seconds or ISO-8601 (default %(default)s)")
+    b.add_argument("--format", choices=("csv", "parquet"), default="csv", help="table format (default %(default)s)")
+    d = sub.add_parser(
+        "detection", help="fit the detection probability P_D(range) of known objects (run directory)",
+        description="For each known object of the recording and each scan, detected or not (a detection of "
+        "that scan inside the object's gate), fit P_D as a logit-linear function of range with NUTS, and write "
+        "runs/NAME/ (posterior.nc, detection.nc with P_D per range bin, per grid cell and on a range curve — "
+        "posterior mean, sd, 5/50/95 % — and summary.json). SPEC is a detection spec naming the recording's "
+        "fit spec (see models/lowmarsh-detection.toml). Export it with `sceneprior export CLUTTER_RUN "
+        "--detection RUN`.",
+        epilog=UNITS_EPILOG, formatter_class=argparse.RawDescriptionHelpFormatter)
+    d.add_argument("spec", metavar="SPEC.toml", help="detection specification")
+    d.add_argument("--out", metavar="DIR", help="folder for run directories (default: the spec's output.dir)")
+    d.add_argument("--quiet", action="store_true", help="no progress bar")
+
+
+def cmd_births(args) -> int:
+    from .tracklog import births_from_spec
+
+    births_from_spec(args.spec, args.out, time_column=args.time_column, fmt=args.format, log=print,
+                     gap_factor=args.gap_factor, max_unseen=args.max_unseen,
+                     detection_probability=args.detection_probability, settle_scans=args.settle_scans,
+                     position_sd=args.position_sd)
+    return 0
+
+
+def cmd_detection(args) -> int:
+    import json
+
+    from .detprob import describe, fit_detection, load_detection_spec, write_detection_run
+
+    spec = load_detection_spec(args.spec)
+    res = fit_detection(spec, progress=not args.quiet, log=_log)
+    path = write_detection_run(res, Path(args.out) if args.out else None)
+    print(describe(res, path))
+    gate = json.loads((path / "summary.json").read_text(encoding="utf-8"))["gate"]
+    if not gate["converged"]:
+        raise ConvergenceGateError(f"run written to {path} but marked unconverged in summary.json: "
+                                   + "; ".join(gate["failures"]))
+    return 0
+
+
+COMMANDS.update({"births": cmd_births, "detection": cmd_detection})
 
 
 def main(argv=None) -> int:

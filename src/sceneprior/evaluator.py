@@ -10,6 +10,7 @@ use it without the fitting stack.
     cfg.clutter_intensity(z_xy)                 # per m² per scan at Cartesian points (n, 2)
     cfg.clutter_intensity(z_rb, frame="polar", per="m_rad")   # per m per rad per scan
     cfg.clutter_density(z_xy)                   # per m², integrates to 1 over the window
+    cfg.detection_probability(z_xy)             # P_D (exported with --detection PD_RUN)
 
 Coordinates (the project's conventions): Cartesian x east, y north in metres; polar range
 in metres and bearing in DEGREES clockwise from north, x = r·sin θ, y = r·cos θ, with the
@@ -50,6 +51,7 @@ SUPPORTED_SCHEMA = "sceneprior.tracker/1"
 INTERPOLATIONS = ("nearest", "bilinear")
 FRAMES = ("cartesian", "polar")
 PER = ("m2", "m_rad")
+PD_ESTIMATES = ("mean", "q05", "q50", "q95")
 
 
 def _region(sec: dict, what: str) -> Region:
@@ -118,6 +120,18 @@ class TrackerConfig:
             if self._birth["P"].shape[1:] != (d, d):
                 raise ValueError(f"{source}: birth covariances must be {d}×{d}")
             self._birth["L"] = np.linalg.cholesky(self._birth["P"])
+        self._pd = None
+        pd = doc.get("detection_probability")
+        if pd:
+            try:
+                c = pd["curve"]
+                self._pd = {"r": np.asarray(c["range_m"], float),
+                            **{k: np.asarray(c[k], float) for k in PD_ESTIMATES},
+                            "region": _region(pd["region"], f"{source}: detection_probability.region")}
+            except (KeyError, TypeError, ValueError) as exc:
+                raise ValueError(f"{source}: malformed detection_probability section ({exc})") from None
+            if self._pd["r"].ndim != 1 or self._pd["r"].size < 2 or np.any(np.diff(self._pd["r"]) <= 0):
+                raise ValueError(f"{source}: detection_probability.curve.range_m must increase")
 
     # ------------------------------------------------------------------ inputs
     @staticmethod
@@ -240,6 +254,42 @@ class TrackerConfig:
         val = pdf @ b["w"]
         inside = self._inside(b["region"], a[..., 0], a[..., 1])
         return np.where(inside, val, 0.0)
+
+    @property
+    def has_detection_probability(self) -> bool:
+        return self._pd is not None
+
+    def detection_probability(self, points, frame: str = "cartesian", estimate: str = "mean") -> np.ndarray:
+        """P_D at ``points`` (array (..., 2): x, y [m], or with frame="polar" range [m],
+        bearing [deg]), vectorised; shape (...). Dimensionless probability per scan that an
+        object there yields a detection in its gate.
+
+        ``estimate``: "mean" (posterior mean of P_D(r), default), "q05", "q50" or "q95"
+        (per-range posterior quantiles). Linear interpolation in range r = √(x² + y²) on the
+        exported curve; 0 outside the detection run's region and inside its permanent masks
+        (the sensor does not see there), like the clutter intensity. ValueError for bad
+        shapes, non-finite points, an unknown frame or estimate, or a file without the section."""
+        if self._pd is None:
+            raise ValueError(f"{self.source}: this configuration has no detection_probability section "
+                             "(export with --detection PD_RUN)")
+        if estimate not in PD_ESTIMATES:
+            raise ValueError(f"estimate must be one of {', '.join(PD_ESTIMATES)}, got {estimate!r}")
+        if frame not in FRAMES:
+            raise ValueError(f"frame must be 'cartesian' or 'polar', got {frame!r}")
+        what = "points (x, y in m)" if frame == "cartesian" else "points (range in m, bearing in degrees)"
+        a = self._points(points, 2, what)
+        reg = self._pd["region"]
+        if frame == "cartesian":
+            x, y = a[..., 0], a[..., 1]
+            r = np.hypot(x, y)
+            u, v = (x, y) if reg.frame == "cartesian" else cartesian_to_polar(x, y)
+        else:
+            r, b = a[..., 0], a[..., 1]
+            if (r < 0).any():
+                raise ValueError("points: range must be ≥ 0 m")
+            u, v = (r, b) if reg.frame == "polar" else polar_to_cartesian(r, b)
+        val = np.interp(r, self._pd["r"], self._pd[estimate])
+        return np.where(self._inside(reg, u, v), val, 0.0)
 
     def cardinality_pmf(self, n) -> np.ndarray:
         """P(n clutter detections in a scan) under the exported cardinality: Poisson(rate),

@@ -228,9 +228,15 @@ def _birth_region(region_sec: dict) -> dict:
 
 
 # ----------------------------------------------------------------------- main
-def build_config(run, quantile: float | None = None, override_gate: bool = False) -> dict:
+def build_config(run, quantile: float | None = None, override_gate: bool = False,
+                 detection=None, birth=None) -> dict:
     """The tracker configuration (a dict) of a loaded run. Raises ConvergenceGateError when
-    the gate fails and ``override_gate`` is false; InputError on a bad quantile."""
+    the gate fails and ``override_gate`` is false; InputError on a bad quantile.
+
+    ``detection``: a detection run (path or :class:`~sceneprior.detprob.DetectionRun`)
+    whose P_D(range) goes into ``detection_probability``; ``birth``: a birth-mixture run
+    (path or Run) whose mixture goes into ``birth``. Both must pass their own convergence
+    gate (or ``override_gate``); see :func:`_combine`."""
     from .gate import require
 
     q = check_quantile(quantile)
@@ -342,6 +348,7 @@ def build_config(run, quantile: float | None = None, override_gate: bool = False
     if doc["gate"]["overridden"]:
         doc["gate"]["override_note"] = ("exported with --override-gate although the convergence gate "
                                         "failed; do not use operationally before the fit converges")
+    _combine(doc, run, reg, detection, birth, override_gate)
     return doc
 
 
@@ -352,13 +359,14 @@ def _write_json(doc: dict, path: Path) -> None:
 
 
 def export_run(run, quantile: float | None = None, override_gate: bool = False,
-               out: str | Path | None = None) -> tuple[dict, list[Path]]:
+               out: str | Path | None = None, detection=None, birth=None) -> tuple[dict, list[Path]]:
     """Export a run (a path or a loaded Run): writes RUN/tracker.json and, with ``out``, a
-    copy there. Returns (document, paths written)."""
+    copy there; ``detection`` / ``birth`` add the P_D and birth sections of other runs
+    (:func:`build_config`). Returns (document, paths written)."""
     if not hasattr(run, "summary"):
         run = load_run(run)
     check_quantile(quantile)
-    doc = build_config(run, quantile=quantile, override_gate=override_gate)
+    doc = build_config(run, quantile=quantile, override_gate=override_gate, detection=detection, birth=birth)
     paths = [Path(run.path) / TRACKER_FILE]
     if out is not None:
         paths.append(Path(out))
@@ -379,9 +387,117 @@ def describe(doc: dict, paths) -> str:
              f"rate = its integral {r['value']:.4g} detections/scan; rate posterior 90 % interval "
              f"[{r['interval_90'][0]:.4g}, {r['interval_90'][1]:.4g}]",
              f"  cardinality: {doc['cardinality']['distribution']}; birth: "
-             + ("yes" if doc.get("birth") else "none in this run")]
+             + ("yes" if doc.get("birth") else "none in this run")
+             + (f" (from run {doc['birth']['source_run']})" if (doc.get("birth") or {}).get("source_run") else "")]
+    pd = doc.get("detection_probability")
+    if pd:
+        c = pd["curve"]
+        lines.append(f"  detection probability (run {pd['provenance']['run']}): P_D {c['mean'][0]:.3f} at "
+                     f"{c['range_m'][0]:.0f} m … {c['mean'][-1]:.3f} at {c['range_m'][-1]:.0f} m (posterior mean)")
     g = doc["gate"]
     lines.append("  convergence gate: " + ("passed" if g["passed"] else
                  "FAILED, overridden (recorded in the file): " + "; ".join(g["failures"])))
     lines.append(f"  caution: {doc['caution']}")
     return "\n".join(lines)
+
+
+# ----------------------------------------------------------------------- combining runs
+def _spec_sensor(summary: dict):
+    raw = (summary.get("data") or {}).get("spec_content") or {}
+    return raw.get("sensor")
+
+
+def _combine(doc: dict, run, region_sec: dict, detection, birth, override_gate: bool) -> None:
+    """Add the detection-probability and birth sections of other runs to ``doc``.
+
+    Checks (InputError, exit 2, one line): the detection run's region (frame, bounds, masks)
+    is the clutter run's — P_D is a function on the same measurement space; the birth run
+    fits Cartesian state space, and both runs place the sensor alike (``[sensor]`` of both
+    specs equal, or absent in both), so that birth positions and the clutter map share one
+    frame; the clutter run has no birth mixture of its own. Each run passes its own
+    convergence gate, or ``override_gate`` is set (and recorded)."""
+    if detection is not None:
+        doc["detection_probability"] = detection_section(detection, region_sec, override_gate)
+    if birth is not None:
+        if doc.get("birth"):
+            raise InputError(f"{run.path}: the clutter run has a birth mixture of its own; export it without "
+                             "--birth, or export a clutter-only run with --birth")
+        from .gate import require
+
+        brun = birth if hasattr(birth, "summary") else load_run(birth)
+        g = require(brun, override=override_gate)
+        if _spec_sensor(brun.summary) != _spec_sensor(run.summary):
+            raise InputError(f"{brun.path}: the birth run's [sensor] placement {_spec_sensor(brun.summary)!r} differs "
+                             f"from the clutter run's {_spec_sensor(run.summary)!r}; fit both in one frame")
+        bregion = region_dict(run_region(brun))
+        if bregion["frame"] != "cartesian":
+            raise InputError(f"{brun.path}: a birth run must be fitted in Cartesian state space (x, y in m); "
+                             f"its space is {bregion['frame']}")
+        section = _birth(brun.summary, bregion)
+        if section is None:
+            raise InputError(f"{brun.path}: run {brun.name} has no birth mixture (fit a 'mixture' model to the "
+                             "birth events, e.g. models/lowmarsh-birth.toml)")
+        section["source_run"] = brun.name
+        section["convergence"] = {"passed": g.passed, "overridden": bool(override_gate and not g.passed),
+                                  "failures": [c.describe() for c in g.failures]}
+        section["provenance"] = _run_provenance(brun.summary, brun.path)
+        doc["birth"] = section
+
+
+def _run_provenance(summary: dict, path) -> dict:
+    d = summary.get("data", {})
+    return {"run": summary.get("run"), "run_dir": str(Path(path).resolve()), "spec": d.get("spec"),
+            "inputs_sha256": d.get("inputs_sha256", {}), "seed": summary.get("sampler", {}).get("seed")}
+
+
+def _same_region(a: dict, b: dict) -> bool:
+    keys = ("frame", "bounds", "masks")
+    return all(json.dumps(a[k], sort_keys=True) == json.dumps(b[k], sort_keys=True) for k in keys)
+
+
+def detection_section(detection, region_sec: dict | None, override_gate: bool = False) -> dict:
+    """The ``detection_probability`` section from a detection run (models/detection.py):
+    the posterior of P_D(r) on a fine range curve (mean, 5/50/95 %) and per range bin, the
+    coefficients, the association gate, and provenance. ``region_sec`` (the clutter
+    export's region) must equal the detection run's region (frame, bounds, masks)."""
+    from .detprob import DetectionRun, gate_entry
+
+    drun = detection if hasattr(detection, "dataset") else DetectionRun(detection)
+    s = drun.summary
+    if region_sec is not None and not _same_region(s["region"], region_sec):
+        raise InputError(f"{drun.path}: the detection run's region (frame {s['region']['frame']}, bounds "
+                         f"{s['region']['bounds']}) differs from the clutter run's (frame {region_sec['frame']}, "
+                         f"bounds {region_sec['bounds']}); fit P_D on the clutter run's recording spec")
+    g = gate_entry(s["diagnostics"], drun.posterior.posterior)
+    if not g["converged"] and not override_gate:
+        from .errors import ConvergenceGateError
+
+        raise ConvergenceGateError(f"detection run {drun.name}: {'; '.join(g['failures'])}; nothing exported "
+                                   "(--override-gate exports anyway and records it in the file)")
+    ds = drun.dataset
+    pick = ("mean", "q05", "q50", "q95")
+    curve = {"range_m": ds["curve_range"].values.tolist(),
+             **{k: ds[f"pd_curve_{k}"].values.tolist() for k in pick}}
+    bins = {"edges_m": ds["range_bin_edges"].values.tolist(),
+            **{k: ds[f"pd_bin_{k}"].values.tolist() for k in pick},
+            "object_scans": ds["bin_object_scans"].values.astype(int).tolist(),
+            "detected": ds["bin_detected"].values.astype(int).tolist()}
+    return {
+        "model": "logit_linear_range",
+        "quantity": "P_D: probability per scan that an object present in the window yields a detection inside "
+                    "its gate",
+        "units": "probability (dimensionless), per scan",
+        "link": "logit P_D(r) = a + b·r, r = range from the sensor (origin) in m",
+        "coefficients": {k: s["coefficients"][k] for k in ("intercept_at_0_m", "slope_per_km")},
+        "curve": curve,
+        "curve_note": "per range, the posterior mean and 5/50/95 % quantiles of P_D(r) (the mean is not the "
+                      "logistic of the mean coefficients); the evaluator interpolates linearly in range",
+        "range_bins": bins,
+        "association_gate": s["data"].get("gate"),
+        "clutter_in_gate": s["model"].get("clutter_in_gate"),
+        "region": s["region"],
+        "convergence": {"passed": g["converged"], "overridden": bool(override_gate and not g["converged"]),
+                        "failures": g["failures"]},
+        "provenance": {**_run_provenance(s, drun.path), "spec": s["data"].get("spec"),
+                       "recording_spec": s["data"].get("recording_spec")},
+    }
