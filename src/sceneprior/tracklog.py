@@ -54,8 +54,9 @@ annotated truth listing each object from its appearance):
    start is listed within the censored scans with probability ≥ 99 % (else it would be a
    false birth);
 2. birth positions are back-propagated by the expected lag with the differenced velocity:
-   x̂ = x_f − v̂·T·E[L], with per-axis variance T²·(v̂² Var[L] + E[L]²·Var(v̂)), Var(v̂) =
-   2σ²/Δt² for a position noise sd σ (``position_sd``); written as ``x_sd``, ``y_sd``.
+   x̂ = x_f − v̂·T·E[L], with per-axis error variance T²·(v̂² Var[L] + E[L]²·Var(v̂)) + σ²,
+   Var(v̂) = 2σ²/Δt² for a position noise sd σ (``position_sd``) and Δt the time to the
+   segment's next row (constant velocity assumed); written as ``x_sd``, ``y_sd``.
    The birth keeps the step of its first listing (the mean lag is not a whole step); the
    rate per step is unaffected apart from births in the last E[L] steps of the recording.
 
@@ -296,8 +297,9 @@ def derive_births(scan_ids, times, obj_scan_index, object_id, c0, c1, *, frame: 
             var_v[ok] = 2.0 * position_sd**2 / dt**2
         bx = np.where(have_v, bx - vx * T * m, bx)
         by = np.where(have_v, by - vy * T * m, by)
-        x_sd = np.where(have_v, T * np.sqrt(vx**2 * var_l + m * m * var_v), np.nan)
-        y_sd = np.where(have_v, T * np.sqrt(vy**2 * var_l + m * m * var_v), np.nan)
+        s2 = position_sd**2  # the first listed position's own noise
+        x_sd = np.where(have_v, np.sqrt(T * T * (vx**2 * var_l + m * m * var_v) + s2), np.nan)
+        y_sd = np.where(have_v, np.sqrt(T * T * (vy**2 * var_l + m * m * var_v) + s2), np.nan)
         lag = {"expected_missed_scans": m, "variance_missed_scans": var_l, "scan_period_s": T,
                "expected_shift": "v·T·(1 − P_D)/P_D along the track",
                "births_without_velocity_uncorrected": int((~have_v).sum())}
@@ -340,10 +342,12 @@ def derive_births(scan_ids, times, obj_scan_index, object_id, c0, c1, *, frame: 
                                                       "appearance)",
         "gaps_before_scans": [v.item() if hasattr(v, "item") else v for v in ids_t[st.gap_before]],
     }
-    return Births(step=ids_t[fs[born]], scan_pos=fs[born], object_id=oid[o[bi]], x=bx, y=by,
-                  x_raw=xo[bi], y_raw=yo[bi], vx=vx, vy=vy, reappearance=reappear[bi],
-                  steps=st, scan_ids=ids_t, counts=counts, rules=rules, x_sd=x_sd, y_sd=y_sd,
-                  censored_ids=censored_ids)
+    t_order = np.argsort(fs[born], kind="stable")  # births in time order (then by object)
+    x_sd, y_sd = (None, None) if x_sd is None else (x_sd[t_order], y_sd[t_order])
+    return Births(step=ids_t[fs[born]][t_order], scan_pos=fs[born][t_order], object_id=oid[o[bi]][t_order],
+                  x=bx[t_order], y=by[t_order], x_raw=xo[bi][t_order], y_raw=yo[bi][t_order], vx=vx[t_order],
+                  vy=vy[t_order], reappearance=reappear[bi][t_order], steps=st, scan_ids=ids_t, counts=counts,
+                  rules=rules, x_sd=x_sd, y_sd=y_sd, censored_ids=censored_ids)
 
 
 def birth_rate_posterior(n_births, n_exposed, shape: float = 1.0, rate: float = 0.1,
