@@ -161,9 +161,14 @@ def zone_residuals(rd, log_lam, lm, phi, n_zones: int = 4, level: float = LEVEL)
     Lz = np.zeros((lam.shape[0], Z))
     np.add.at(Lz.T, zone, (lam * w).T)  # base Λ_z per draw
     m = np.ones((1, rd.n_scans)) if lm is None else np.exp(lm)
+    m = np.broadcast_to(m, (lam.shape[0], rd.n_scans))
     sm, sm2 = m.sum(axis=1, keepdims=True), (m**2).sum(axis=1, keepdims=True)
-    mean_z = Lz * sm
-    var_z = mean_z + (0.0 if phi is None else phi[:, None] * Lz**2 * sm2)
+    if rd.removed is None:
+        mean_z = Lz * sm
+        nb_z = 0.0 if phi is None else phi[:, None] * Lz**2 * sm2
+    else:  # scan k sees W_k: μ_kz = m_k (Λ_z − R_kz), R_kz = Σ_{c∈z} λ_c removed[k, c]
+        mean_z, nb_z = _gated_zone_moments(rd.removed, lam, m, zone, Z, Lz, sm, sm2, phi)
+    var_z = mean_z + nb_z
     counts_cell = np.asarray(rd.scan_cell.sum(axis=0)).reshape(-1)
     Nz = np.bincount(zone, weights=counts_cell, minlength=Z)
     area_z = np.bincount(zone, weights=w, minlength=Z)
@@ -183,6 +188,24 @@ def zone_residuals(rd, log_lam, lm, phi, n_zones: int = 4, level: float = LEVEL)
             "bound": bound, "level": level, "bonferroni_over": len(rows), "table": rows,
             "flagged": bool(any(r["flagged"] for r in rows)),
             "max_abs_residual": float(max((abs(r["residual"]) for r in rows), default=0.0))}
+
+
+def _gated_zone_moments(removed, lam, m, zone, Z, Lz, sm, sm2, phi):
+    """Σ_k μ_kz and φ Σ_k μ_kz² (S, Z) with per-scan windows: μ_kz = m_k (Λ_z − R_kz)."""
+    import scipy.sparse as sp
+
+    onehot = sp.csr_matrix((np.ones(zone.size), (np.arange(zone.size), zone)), shape=(zone.size, Z))
+    mean_z = Lz * sm - np.asarray(onehot.T @ (np.asarray(removed.T @ m.T).T * lam).T).T  # Σ_k m_k R_kz
+    if phi is None:
+        return mean_z, 0.0
+    m2 = m**2
+    second = np.zeros_like(Lz)
+    for z in range(Z):  # a loop over the few zones: R_kz for every scan and draw, (K, S)
+        cells = np.flatnonzero(zone == z)
+        R = np.asarray(removed[:, cells] @ lam[:, cells].T)  # (K, S)
+        second[:, z] = (Lz[:, z] ** 2 * sm2[:, 0] - 2 * Lz[:, z] * np.einsum("sk,ks->s", m2, R)
+                        + np.einsum("sk,ks->s", m2, R**2))
+    return mean_z, phi[:, None] * second
 
 
 def drift_check(rd, rng, n_blocks: int | None = None, level: float = LEVEL) -> dict:
@@ -296,7 +319,7 @@ def rebuild(run) -> dict:
     want = dict(d.get("inputs_sha256") or {})
     hashes = set(want.values())
     over: dict = {"data": {}}
-    for key in ("detections", "scans"):
+    for key in ("detections", "scans", "objects"):
         v = (raw.get("data") or {}).get(key)
         if v is None:
             continue
@@ -361,6 +384,8 @@ def prior_predictive(rb: dict, n_obs, rng, draws: int = 1000, seed: int = 0, lev
         if design is not None and (design.names or design.n_bins):
             lm = design.log_multiplier(pd.get("scan_coef_std"), pd.get("time_effect"))
         mu = base[:, None] * (np.ones((1, K)) if lm is None else np.exp(lm))
+        if stats.has_gates:  # scan k sees W_k: exact for uniform maps, the area share for per-cell maps
+            mu = mu * (stats.scan_window_area / stats.window_total)[None, :]
         phi = pd.get("phi")
     with np.errstate(over="ignore", invalid="ignore"):
         mu = np.minimum(mu, 1e12)
@@ -370,7 +395,12 @@ def prior_predictive(rb: dict, n_obs, rng, draws: int = 1000, seed: int = 0, lev
     m_obs = float(n_obs.mean())
     q = float(np.mean(mean_rep < m_obs) + 0.5 * np.mean(mean_rep == m_obs))
     qs = np.quantile(rate, [0.05, 0.5, 0.95])
-    return {"statistic": "mean detections per scan: observed against its prior predictive distribution",
+    gated = {}
+    if stats.has_gates:
+        gated["gates"] = ("each scan's expected count scaled by its window share |W_k|/|W| (exact for a uniform "
+                          "map; for a per-cell map the gated share of the expected count is approximated by "
+                          "the area share)")
+    return {**gated, "statistic": "mean detections per scan: observed against its prior predictive distribution",
             "observed_mean_count": m_obs, "prior_rate_q05": float(qs[0]), "prior_rate_q50": float(qs[1]),
             "prior_rate_q95": float(qs[2]), "observed_quantile": q, "level": level,
             "flagged": bool(q < level / 2 or q > 1 - level / 2), "draws": int(draws),
@@ -463,7 +493,9 @@ def check_run(path, prior_side: bool = True, sensitivity: bool = True, seed: int
     log_lam, lm, phi_c, base_c = rd.at_cell_draws()
     ll = pointwise_loglik(run, rd)
     lw, k = psis_log_weights(ll)
-    mu_c = base_c[:, None] * (np.ones((1, rd.n_scans)) if lm is None else np.exp(lm))
+    R_c = rd.gated_integral(log_lam)  # gates: scan k sees W_k, Λ_k = Λ − R_k
+    mu_c = (base_c[:, None] - (0.0 if R_c is None else R_c)) * (np.ones((1, rd.n_scans)) if lm is None
+                                                                  else np.exp(lm))
     pit = loo_pit(rd.n, mu_c, phi_c, lw, rng)
     pit["pareto_k_over_0.7"] = int((k > 0.7).sum())
     pit.pop("values")

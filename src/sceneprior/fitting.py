@@ -16,7 +16,7 @@ from .errors import InputError
 from .geometry import PolygonMask, Region, SectorMask
 from .models.registry import ModelKind, get_model, resolve_prior
 from .spec import FitSpec, SpaceSpec
-from .tables import Recording, read_recording
+from .tables import Recording, read_objects, read_recording
 
 
 def region_from_spec(space: SpaceSpec) -> Region:
@@ -78,12 +78,57 @@ def _check_memory(setup, stats, smp, source: str) -> None:
 
 
 def prepare(spec: FitSpec) -> tuple[Region, Recording, BinnedStats]:
-    """Read, validate and bin the data named by a spec (no sampling)."""
+    """Read, validate and bin the data named by a spec (no sampling).
+
+    With an objects table (``data.objects``) the detections inside a gate of their scan are
+    dropped (``Recording.n_gated``) and the gated area leaves each scan's window
+    (``BinnedStats.removed``; exposure E_c = K·|c ∩ W| − Σ_k removed[k, c])."""
     region = region_from_spec(spec.space)
     grid = region.grid(spec.space.cells)
     rec = read_recording(spec.data, region)
-    stats = bin_recording(rec, region, grid)
+    objects = read_objects(spec.data, region, rec)
+    gates = None
+    if objects is not None:
+        from .gates import in_gates
+
+        gates = objects.gates()
+        rec = rec.drop_gated(in_gates(gates, rec.scan_index, rec.c0, rec.c1, frame=region.frame))
+    stats = bin_recording(rec, region, grid, gates=gates)
+    if objects is not None:
+        stats.gate_info.update(_gate_description(objects))
     return region, rec, stats
+
+
+def _gate_description(objects) -> dict:
+    out = {"objects_table": str(objects.path), "object_rows": objects.n_objects,
+           "objects": int(np.unique(objects.object_id.astype(str)).size)}
+    if objects.cov is not None:
+        out["shape"] = (f"ellipse {{d : dᵀP⁻¹d ≤ γ}}, P the objects' Cartesian position covariance, "
+                        f"γ = chi2.ppf({objects.p_gate:g}, 2) = {-2 * np.log1p(-objects.p_gate):.4g}")
+        out["gate_probability"] = objects.p_gate
+    else:
+        r = objects.radius
+        out["shape"] = "disc"
+        out["radius_m"] = ({"min": float(r.min()), "max": float(r.max()), "mean": float(r.mean())}
+                           if r.size else None)
+    return out
+
+
+# Kinds and options that cannot use per-scan windows yet (refused with one line when gated).
+def _refuse_gates(spec: FitSpec) -> None:
+    base, *tokens = spec.model.kind.split("+")
+    why = None
+    if base == "mixture":
+        why = ("the mixture kind fits points against the permanent window; it does not take "
+               "per-scan windows (gates) yet")
+    elif base == "sites":
+        why = "the sites kind does not take per-scan windows (gates) yet"
+    elif tokens and base != "uniform":
+        why = (f"per-scan terms ({', '.join(tokens)}) with gates are available for kind \"uniform\" "
+               f"only; the gated per-scan window integral of a '{base}' map is not implemented yet")
+    if why:
+        raise InputError(f"{spec.source}: data.objects (gates around known objects): {why}; "
+                         "drop data.objects or use kind = \"uniform\", \"loglinear\" or \"lgcp\"")
 
 
 def fit(spec: FitSpec, progress: bool = True, log=print) -> FitResult:
@@ -91,14 +136,22 @@ def fit(spec: FitSpec, progress: bool = True, log=print) -> FitResult:
     t0 = time.perf_counter()
     kind = get_model(spec.model.kind)
     prior = resolve_prior(kind, spec.model.prior, spec.source)
+    if spec.data.objects is not None:
+        _refuse_gates(spec)
     region, rec, stats = prepare(spec)
     t_bin = time.perf_counter()
+    gated = f", {rec.n_gated} inside gates" if stats.has_gates else ""
     log(
         f"read {rec.n_read} detections over {rec.n_scans} scans "
         f"({int((stats.scan_counts == 0).sum())} empty); kept {rec.n_detections}, "
-        f"dropped {rec.n_masked} in masks and {rec.n_outside} outside the bounds; "
+        f"dropped {rec.n_masked} in masks{gated} and {rec.n_outside} outside the bounds; "
         f"binned on {stats.grid.shape[0]}×{stats.grid.shape[1]} {region.frame} cells"
     )
+    if stats.has_gates:
+        g = stats.gate_info
+        log(f"gates: {g['gates']} around {g['objects']} known objects in {g['scans_with_gates']} scans "
+            f"remove {100 * g['mean_fraction_of_window']:.3g} % of the window per scan on average "
+            f"(exposure reduced accordingly)")
     if spec.zones:  # refuse zones outside the window before any sampling
         from .zones import zone_cell_areas
 

@@ -3,8 +3,9 @@
 Scans are the exchangeable units (not cells): the pointwise log-likelihood of scan k is
 its set log-density in the point-process measure (DESIGN.md §2, §7),
 
-    log f(Z_k | θ) = Σ_c n_kc log λ_c + n_k log m_k − m_k Λ       (Poisson)
-                     with −m_kΛ replaced by the negative-binomial term when over-dispersed
+    log f(Z_k | θ) = Σ_c n_kc log λ_c + n_k log m_k − m_k Λ_k     (Poisson)
+                     with −m_kΛ_k replaced by the negative-binomial term when over-dispersed,
+                     Λ_k = Σ_c λ_c |c ∩ W_k| (W_k: the window minus scan k's gates, if any)
 
 (``models.likelihood.per_scan_loglik_general``), evaluated at the run's kept cell draws.
 PSIS-LOO (Vehtari, Gelman & Gabry 2017; Vehtari et al. 2024) is computed by arviz
@@ -57,7 +58,8 @@ def pointwise_loglik(run, rd=None) -> np.ndarray:
 
     rd = rd or load_draws(run, max_draws=None)
     log_lam, lm, phi, base = rd.at_cell_draws()
-    return per_scan_loglik_general(log_lam, rd.scan_cell, rd.window_area, lm, phi, Lam=base)
+    return per_scan_loglik_general(log_lam, rd.scan_cell, rd.window_area, lm, phi, Lam=base,
+                                   removed=rd.removed)
 
 
 def _idata(ll: np.ndarray, run):

@@ -12,6 +12,11 @@ with Λ the base rate (``base_rate`` when the model has per-scan terms, else ``r
 m_sk the per-scan multiplier: scans-table covariates and time bins (``models.scanterms``)
 or, for the sites model, ρ_site(k)/μ. The per-scan design is rebuilt from scans.nc with
 the same function the fit used (``scanterms.build_design``).
+
+Runs with gates around known objects (issue 7) observed scan k over W_k ⊆ W only:
+μ_sk = (Λ_s − R_sk)·m_sk with R_sk = Σ_c λ_sc removed[k, c] (``likelihood.gated_integral``;
+``removed`` read back sparse from scans.nc). R needs the per-cell draws, so for such runs
+the count-level draws are taken among the kept cell draws (all draws unless thinned).
 """
 
 from __future__ import annotations
@@ -40,6 +45,8 @@ class RunDraws:
     phi: np.ndarray | None  # (S,)
     cell_index: np.ndarray  # (S_c,) flattened draw index of each kept cell draw
     n_draws_total: int
+    removed: object = None  # (K, C) scipy.sparse CSR gated area [m²], None without gates
+    gated: np.ndarray | None = None  # (S, K) R_sk at draw_index (None without gates)
 
     @property
     def n_scans(self) -> int:
@@ -49,23 +56,25 @@ class RunDraws:
         """(S, K) expected per-scan counts at the draws ``which`` (indices into draw_index)."""
         sel = slice(None) if which is None else which
         base = self.base_rate[sel][:, None]
+        if self.gated is not None:
+            base = base - self.gated[sel]
         return base if self.log_mult is None else base * np.exp(self.log_mult[sel])
+
+    def gated_integral(self, log_lam) -> np.ndarray | None:
+        """(S, K) R_sk = Σ_c λ_sc removed[k, c] for base log-intensity draws (S, C), or None
+        without gates."""
+        if self.removed is None:
+            return None
+        from .models.likelihood import gated_integral
+
+        return gated_integral(log_lam, self.removed)
 
     def at_cell_draws(self):
         """(base log λ (S_c, C), log m (S_c, K) or None, φ (S_c,) or None, Λ (S_c,)) for the
         kept cell draws (cell_draws.nc), aligned by their flattened draw index."""
         run = self.run
-        cd = run.cell_draws
-        lam = np.asarray(cd["intensity"].values, dtype=np.float64)
         post = run.posterior.posterior
-        flat = _flat(post, "rate")
-        rate = flat[self.cell_index]
-        if "rate" in cd and not np.allclose(np.asarray(cd["rate"].values), rate, rtol=1e-6):
-            raise InputError(f"{run.path}: cell_draws.nc and posterior.nc do not match (rate draws differ); "
-                             "re-run the fit")
-        base = _flat(post, "base_rate")[self.cell_index] if "base_rate" in post else rate
-        with np.errstate(divide="ignore"):
-            log_lam = np.log(lam) - np.log(rate / base)[:, None]
+        log_lam, base = _base_log_intensity(run, self.cell_index)
         lm = phi = None
         full = _log_mult_all(run, self.kind, post)
         if full is not None:
@@ -73,6 +82,24 @@ class RunDraws:
         if "phi" in post:
             phi = _flat(post, "phi")[self.cell_index]
         return log_lam, lm, phi, base
+
+
+def _base_log_intensity(run, cell_index, pick=None):
+    """(log λ of the base intensity (S_c, C), base rate Λ (S_c,)) at the kept cell draws
+    (``pick``: positions among them, default all): cell_draws.nc holds the
+    recording-average map λ·mean_k m_k, divided out here."""
+    cd = run.cell_draws
+    pick = slice(None) if pick is None else pick
+    lam = np.asarray(cd["intensity"].values, dtype=np.float64)[pick]
+    post = run.posterior.posterior
+    rate = _flat(post, "rate")[cell_index][pick]
+    if "rate" in cd and not np.allclose(np.asarray(cd["rate"].values)[pick], rate, rtol=1e-6):
+        raise InputError(f"{run.path}: cell_draws.nc and posterior.nc do not match (rate draws differ); "
+                         "re-run the fit")
+    base = _flat(post, "base_rate")[cell_index][pick] if "base_rate" in post else rate
+    with np.errstate(divide="ignore"):
+        log_lam = np.log(lam) - np.log(rate / base)[:, None]
+    return log_lam, base
 
 
 def _flat(post, name) -> np.ndarray:
@@ -134,10 +161,22 @@ def load_draws(run, max_draws: int | None = 1000) -> RunDraws:
     post = run.posterior.posterior
     kind = run.summary["model"]["kind"]
     S_total = int(post.sizes["chain"] * post.sizes["draw"])
-    if max_draws is None or max_draws >= S_total:
-        idx = np.arange(S_total)
+    cd = run.cell_draws
+    step = int(cd.attrs.get("thinning", 1))
+    cell_index = np.arange(cd.sizes["sample"]) * step
+    removed = run.removed()
+    pool = np.arange(S_total) if removed is None else cell_index  # gates: R needs cell draws
+    if max_draws is None or max_draws >= pool.size:
+        pick = np.arange(pool.size)
     else:
-        idx = np.unique(np.linspace(0, S_total - 1, max_draws).round().astype(int))
+        pick = np.unique(np.linspace(0, pool.size - 1, max_draws).round().astype(int))
+    idx = pool[pick]
+    gated = None
+    if removed is not None:
+        from .models.likelihood import gated_integral
+
+        log_lam, _ = _base_log_intensity(run, cell_index, pick)
+        gated = gated_integral(log_lam, removed)
     rate = _flat(post, "rate")
     base = _flat(post, "base_rate") if "base_rate" in post else rate
     lm_all = _log_mult_all(run, kind, post)
@@ -159,14 +198,11 @@ def load_draws(run, max_draws: int | None = 1000) -> RunDraws:
     inten = run.intensity
     wa = np.asarray(inten["window_area"].values, dtype=np.float64)
     ca = np.asarray(inten["cell_area"].values, dtype=np.float64)
-    cd = run.cell_draws
-    step = int(cd.attrs.get("thinning", 1))
-    cell_index = np.arange(cd.sizes["sample"]) * step
     return RunDraws(run=run, kind=kind, n=n, scan_cell=run.scan_cell(), window_area=wa.reshape(-1),
                     cell_area=ca.reshape(-1), shape=tuple(wa.shape), order=order, time_s=time_s,
                     draw_index=idx, base_rate=base[idx],
                     log_mult=None if lm_all is None else lm_all[idx], phi=phi,
-                    cell_index=cell_index, n_draws_total=S_total)
+                    cell_index=cell_index, n_draws_total=S_total, removed=removed, gated=gated)
 
 
 def simulate_counts(rng: np.random.Generator, mu: np.ndarray, phi: np.ndarray | None,

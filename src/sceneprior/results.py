@@ -165,6 +165,16 @@ def scans_dataset(result):
         "entry_cell": (("entry",), coo.col.astype(np.int64), {"long_name": "flat cell index (C order)"}),
         "entry_count": (("entry",), coo.data.astype(np.int64), {"units": "1"}),
     }
+    if stats.has_gates:  # per-scan windows (issue 7): |W_k| and the sparse area removed per (scan, cell)
+        rm = stats.removed.tocoo()
+        data["window_area"] = (("scan",), stats.scan_window_area,
+                               {"units": "m2", "long_name": "window of the scan |W_k| (window minus its gates)"})
+        data["gate_scan"] = (("gate_entry",), rm.row.astype(np.int64),
+                             {"long_name": "scan index of a non-zero gated (scan, cell) area"})
+        data["gate_cell"] = (("gate_entry",), rm.col.astype(np.int64), {"long_name": "flat cell index (C order)"})
+        data["gate_area"] = (("gate_entry",), rm.data.astype(np.float64),
+                             {"units": "m2", "long_name": "area of the cell inside the window removed by the "
+                                                         "scan's gates, |c ∩ W ∩ ∪ gates|"})
     for name, values in rec.scans_meta.items():
         v = np.asarray(values)
         if v.dtype.kind in "biuf":
@@ -245,6 +255,8 @@ def summary_dict(result) -> dict:
             "dropped_in_masks": rec.n_masked,
             "dropped_outside_bounds": rec.n_outside,
             "exposure_m2_scan": stats.total_exposure,
+            "exposure_note": ("E = Σ_k |W_k|: every scan's window minus the gates around its known objects"
+                              if stats.has_gates else "E = K·|W|: every scan observed the whole window"),
             "inputs_sha256": rec.inputs,
             "spec": spec.source,
             "spec_sha256": spec_hash(spec),
@@ -271,6 +283,18 @@ def summary_dict(result) -> dict:
         "timing_s": {k: round(v, 3) for k, v in result.timing.items()},
         "written_utc": datetime.now(timezone.utc).isoformat(timespec="seconds"),
     }
+    if stats.has_gates:
+        out["data"]["dropped_in_gates"] = rec.n_gated
+        out["gates"] = {
+            **stats.gate_info,
+            "units": "areas in m², per scan of the window (region minus permanent masks)",
+            "note": "each scan's gates (their union, cut at the region's edge and outside the masks) leave "
+                    "that scan's window: detections inside are dropped (dropped_in_gates) and the area leaves "
+                    "the exposure; the rate is still per scan over the whole window",
+            "residual_biases": "object detections outside their gate leak in as clutter (about P_D·(1 − P_G) "
+                               "per object per scan); gates placed from a tracker's own output depend on the "
+                               "data (clutter near tracks comes out low)",
+        }
     if result.model.summary is not None:
         out[result.model.name] = result.model.summary(result)
         for key in ("cardinality", "overdispersion"):  # read by the tracker export
@@ -372,6 +396,17 @@ class Run:
     @property
     def scans(self):
         return self._open("scans.nc")
+
+    def removed(self):
+        """(K, n_cells) scipy.sparse CSR of the window area [m²] each scan's gates remove from
+        each cell, or None when the run had no gates (every scan observed the whole window)."""
+        import scipy.sparse as sp
+
+        ds = self.scans
+        if "gate_area" not in ds:
+            return None
+        return sp.csr_matrix((ds["gate_area"].values, (ds["gate_scan"].values, ds["gate_cell"].values)),
+                             shape=(ds.sizes["scan"], int(ds.attrs["n_cells"])))
 
     def scan_cell(self):
         """(K, n_cells) scipy.sparse CSR matrix of per-scan cell counts."""

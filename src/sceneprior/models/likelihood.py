@@ -103,40 +103,56 @@ def nb_cardinality_logterm(n, mu, phi):
 
 
 def scan_loglik(sum_n_loglam, Lam, log_mult_rows, rows_count, rows_scans,
-                nb_n=None, nb_row=None, nb_weight=None, phi=None):
+                nb_n=None, nb_row=None, nb_weight=None, phi=None, rows_removed=None, nb_removed=None):
     """Total PPP log-likelihood over K scans with per-scan multipliers and optional
     over-dispersion — the one definition used by every binned model with per-scan terms.
 
     sum_n_loglam: Σ_c N_c log λ_c (the base intensity, cells summed over scans);
-    Lam: Λ = Σ_c λ_c |c ∩ W| (base rate per scan over the common window);
+    Lam: Λ = Σ_c λ_c |c ∩ W| (base rate per scan over the permanent window);
     log_mult_rows: (D,) log m_d for the D distinct per-scan designs (0 when none);
     rows_count: (D,) detections summed over the scans with design d; rows_scans: (D,)
     number of scans with design d.
-    Poisson (phi None): Σ_c N_c log λ_c + Σ_d [N_d log m_d − K_d m_d Λ].
-    Over-dispersed: the Poisson cardinality term −K_d m_d Λ is replaced by
-    Σ_u w_u · nb_cardinality_logterm(n_u, m_{row_u} Λ, φ) over the distinct (n_k, design)
-    pairs u (nb_n, nb_row, nb_weight = how many scans share the pair).
+    Per-scan windows W_k ⊆ W (gates): scan k's base integral is Λ_k = Λ − R_k,
+    R_k = Σ_c λ_c removed[k, c]; rows_removed: (D,) Σ_{k∈d} R_k; nb_removed: (U,) R_k of
+    each over-dispersed group's scans (None: no gates, Λ_k = Λ).
+    Poisson (phi None): Σ_c N_c log λ_c + Σ_d [N_d log m_d − m_d (K_d Λ − Σ_{k∈d} R_k)].
+    Over-dispersed: the Poisson cardinality term is replaced by
+    Σ_u w_u · nb_cardinality_logterm(n_u, m_{row_u} (Λ − R_u), φ) over the distinct
+    (n_k, design, R_k) groups u (nb_n, nb_row, nb_weight = how many scans share the group).
     """
     import jax.numpy as jnp
 
     ll = sum_n_loglam + jnp.sum(rows_count * log_mult_rows)
     if phi is None:
-        return ll - Lam * jnp.sum(rows_scans * jnp.exp(log_mult_rows))
-    mu = Lam * jnp.exp(log_mult_rows[nb_row])
+        exposure = Lam * rows_scans if rows_removed is None else Lam * rows_scans - rows_removed
+        return ll - jnp.sum(exposure * jnp.exp(log_mult_rows))
+    base = Lam if nb_removed is None else Lam - nb_removed
+    mu = base * jnp.exp(log_mult_rows[nb_row])
     return ll + jnp.sum(nb_weight * nb_cardinality_logterm(nb_n, mu, phi))
+
+
+def gated_integral(log_lam: np.ndarray, removed) -> np.ndarray:
+    """R_sk = Σ_c λ_sc removed[k, c] (S, K): the base intensity's expected count inside scan
+    k's gates; log_lam (S, n_cells) [log(m⁻² scan⁻¹)], removed (K, n_cells) sparse [m²].
+    Cells with non-finite log λ (masked) carry no removed area."""
+    lam = np.exp(np.asarray(log_lam, float))
+    lam = np.where(np.isfinite(lam), lam, 0.0)
+    return np.asarray(removed @ lam.T).T
 
 
 def per_scan_loglik_general(log_lam: np.ndarray, scan_cell, window_area: np.ndarray,
                             log_mult: np.ndarray | None = None, phi: np.ndarray | None = None,
-                            Lam: np.ndarray | None = None) -> np.ndarray:
+                            Lam: np.ndarray | None = None, removed=None) -> np.ndarray:
     """Pointwise per-scan set log-density (point-process measure) for LOO, shape (S, K).
 
     log_lam: (S, n_cells) base log-intensity draws [log(m⁻² scan⁻¹)]; scan_cell: (K, n_cells)
     sparse counts n_kc; log_mult: (S, K) log m_k or None; phi: (S,) or None; Lam: (S,) base
-    rate Σ_c λ_c|c ∩ W| (computed from log_lam when None).
-    Poisson: Σ_c n_kc log λ_c + n_k log m_k − m_k Λ; over-dispersed: −m_kΛ replaced by
-    ``nb_cardinality_logterm(n_k, m_kΛ, φ)``. With log_mult and phi None this equals
-    :func:`per_scan_loglik`.
+    rate Σ_c λ_c|c ∩ W| (computed from log_lam when None); removed: (K, n_cells) sparse area
+    [m²] of each scan's gates (None: every scan has the window W).
+    Poisson: Σ_c n_kc log λ_c + n_k log m_k − m_k Λ_k, Λ_k = Λ − Σ_c λ_c removed[k, c] the
+    integral over scan k's window W_k; over-dispersed: −m_kΛ_k replaced by
+    ``nb_cardinality_logterm(n_k, m_kΛ_k, φ)``. With log_mult, phi and removed None this
+    equals :func:`per_scan_loglik`.
     """
     log_lam = np.asarray(log_lam, float)
     safe = np.where(np.isfinite(log_lam), log_lam, 0.0)
@@ -145,6 +161,8 @@ def per_scan_loglik_general(log_lam: np.ndarray, scan_cell, window_area: np.ndar
     if Lam is None:
         Lam = (np.exp(log_lam) * window_area).sum(axis=-1)
     Lam = np.asarray(Lam, float).reshape(-1, 1)
+    if removed is not None:
+        Lam = Lam - gated_integral(log_lam, removed)
     lm = np.zeros((1, n.size)) if log_mult is None else np.asarray(log_mult, float)
     mu = Lam * np.exp(lm)
     if phi is None:

@@ -32,7 +32,15 @@ recording-average intensity λ_c · mean_k m_k, so it integrates to ``rate``.
 Cost: per-scan terms need the per-scan totals n_k only. Scans sharing a design row
 (covariates, time bin) are grouped: the Poisson form needs one term per distinct design,
 the over-dispersed form one per distinct (n_k, design) pair — no per-detection work.
-A common window for all scans is required (E_c = K·|c ∩ W|).
+
+Per-scan windows (gates around known objects, issue 7): scan k is observed over
+W_k = W minus its gates, so its expected count is m_k·Λ_k with Λ_k = Λ − Σ_c λ_c removed[k, c]
+(``BinnedStats.removed``). For a uniform base intensity ρ this is Λ − ρ·A_k, A_k the area
+the gates remove (``gated_area``): the Poisson form subtracts ρ·Σ_{k∈d} A_k per design row,
+the over-dispersed form keys its groups by (n_k, design, A_k), so ungated scans still share
+groups and each gated scan has its own term. Base kinds with a per-cell map would need
+Σ_c λ_c removed[k, c] per scan (a sparse product); they are refused with gates
+(``fitting._refuse_gates``) until their model functions pass their cell intensities.
 """
 
 from __future__ import annotations
@@ -203,9 +211,13 @@ def random_walk_basis(n_bins: int, cyclic: bool) -> np.ndarray:
 
 
 # ----------------------------------------------------------------------------- inputs
-def scan_inputs(design: ScanDesign, scan_counts: np.ndarray, prior: dict, tokens) -> dict:
+def scan_inputs(design: ScanDesign, scan_counts: np.ndarray, prior: dict, tokens,
+                gated_area: np.ndarray | None = None) -> dict:
     """Arrays for :func:`ppp_factor`: the distinct design rows and, when over-dispersed, the
-    distinct (n_k, row) pairs with their multiplicities (float64: counts of long recordings)."""
+    distinct (n_k, row) pairs with their multiplicities (float64: counts of long recordings).
+    ``gated_area`` (K,) [m²]: the area each scan's gates remove from the window (None or
+    zeros without gates); it becomes ``rows_gated`` (Σ over each row's scans) and, when
+    over-dispersed, part of the group key (``nb_gated``)."""
     K = design.n_scans
     cols = []
     if design.names:
@@ -236,12 +248,17 @@ def scan_inputs(design: ScanDesign, scan_counts: np.ndarray, prior: dict, tokens
         st["bin"] = uniq[:, -1].astype(np.int64)
         st["M"] = random_walk_basis(design.n_bins, design.cyclic)
         st["step_scale"] = float(prior["time_step_sd"]) * math.sqrt(design.bin_width_s / HOUR_S)
+    a = np.zeros(K) if gated_area is None else np.asarray(gated_area, float).reshape(-1)
+    if a.any():
+        st["rows_gated"] = np.bincount(row, weights=a, minlength=D)
     if st["od"]:
-        pairs, inv = np.unique(np.stack([n, row.astype(float)], axis=1), axis=0, return_inverse=True)
+        pairs, inv = np.unique(np.stack([n, row.astype(float), a], axis=1), axis=0, return_inverse=True)
         st["nb_n"] = pairs[:, 0]
         st["nb_row"] = pairs[:, 1].astype(np.int64)
         st["nb_weight"] = np.bincount(inv.reshape(-1), minlength=pairs.shape[0]).astype(float)
         st["phi_scale"] = float(prior["phi_scale"])
+        if a.any():
+            st["nb_gated"] = pairs[:, 2]
     return st
 
 
@@ -266,17 +283,26 @@ def scan_effects(st: dict):
     return log_m, phi
 
 
-def ppp_factor(sum_n_loglam, Lam, st: dict):
+def ppp_factor(sum_n_loglam, Lam, st: dict, intensity=None):
     """Add the per-scan PPP log-likelihood (``likelihood.scan_loglik``) as a factor and the
-    deterministic ``base_rate``; returns mean_k m_k (the caller's rate = Λ·mean_k m_k)."""
+    deterministic ``base_rate``; returns mean_k m_k (the caller's rate = Λ·mean_k m_k).
+    With gates (``st`` from ``scan_inputs(..., gated_area)``) the caller passes its uniform
+    base ``intensity`` ρ [m⁻² scan⁻¹]: Λ_k = Λ − ρ·A_k (module docstring)."""
     import jax.numpy as jnp
     import numpyro
 
     from .likelihood import scan_loglik
 
     log_m, phi = scan_effects(st)
+    rows_removed = nb_removed = None
+    if "rows_gated" in st:
+        if intensity is None:
+            raise ValueError("per-scan gates need the base intensity (uniform kinds only)")
+        rows_removed = intensity * st["rows_gated"]
+        nb_removed = intensity * st["nb_gated"] if "nb_gated" in st else None
     numpyro.factor("loglik", scan_loglik(sum_n_loglam, Lam, log_m, st["rows_count"], st["rows_scans"],
-                                         st.get("nb_n"), st.get("nb_row"), st.get("nb_weight"), phi))
+                                         st.get("nb_n"), st.get("nb_row"), st.get("nb_weight"), phi,
+                                         rows_removed=rows_removed, nb_removed=nb_removed))
     numpyro.deterministic("base_rate", Lam)
     if st["p"] or st["B"]:
         return jnp.sum(st["rows_scans"] * jnp.exp(log_m)) / st["K"]

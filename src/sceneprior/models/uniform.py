@@ -8,6 +8,10 @@ Gamma(a + N, b|W| + E) — conjugate Gamma–Poisson (Gelman et al., Bayesian Da
 
 Default prior (units only, never the counts): a = 1, b = 0.1 scans, i.e. an exponential
 prior on the rate per scan with mean 10 detections per scan, worth a tenth of a scan.
+
+With gates around known objects (issue 7) E = Σ_k |W_k| < K|W| is the gated exposure and N
+counts the detections outside the gates; the rate stays ρ|W|, the clutter rate over the
+permanent window (what a tracker's clutter model needs).
 """
 
 from __future__ import annotations
@@ -33,7 +37,7 @@ def uniform_model(total_count, total_exposure, window_total, shape, rate, scan_t
     if scan_terms is not None:
         from .scanterms import ppp_factor
 
-        mean_mult = ppp_factor(total_count * jnp.log(rho), rho * window_total, scan_terms)
+        mean_mult = ppp_factor(total_count * jnp.log(rho), rho * window_total, scan_terms, intensity=rho)
         numpyro.deterministic("rate", rho * window_total * mean_mult)
         return
     # log L = N log ρ − E ρ (DESIGN.md §2, piecewise constant with one level)

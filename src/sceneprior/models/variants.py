@@ -70,13 +70,12 @@ def variant_kind(name: str):
         hyper += ("time_step_sd",)
 
     def setup(stats, prior, model_spec):
-        if not np.allclose(stats.exposure, stats.n_scans * stats.window_area, rtol=1e-12, atol=0):
-            raise InputError("per-scan terms need one common window for every scan (no per-scan gates)")
         s = base.setup(stats, prior, model_spec)
         needs_meta = "scan_covariates" in tokens or "time" in tokens
         meta = read_scan_meta(stats, model_spec) if needs_meta else {}
         design = scanterms.build_design(meta, stats.n_scans, model_spec.options, "model")
-        s.inputs["scan_terms"] = scanterms.scan_inputs(design, stats.scan_counts, prior, tokens)
+        s.inputs["scan_terms"] = scanterms.scan_inputs(design, stats.scan_counts, prior, tokens,
+                                                       stats.gated_area)
         s.extra["scan_design"] = design
         dims = dict(s.extra.get("dims") or {})
         coords = dict(s.extra.get("coords") or {})
