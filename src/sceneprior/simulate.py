@@ -128,13 +128,18 @@ class Lowmarsh:
 
 
 def simulate_lowmarsh(out_dir: Path, n_scans: int = 600, seed: int = 20261201,
-                      fmt: str = "csv", scenario: Lowmarsh | None = None, log=print) -> dict:
+                      fmt: str = "csv", scenario: Lowmarsh | None = None, vessels: bool = True,
+                      log=print) -> dict:
     """Write the Lowmarsh demo recording: detections, scans, and the ground truth.
 
-    Files: detections.{csv,parquet} (scan, range [m], bearing [deg], x [m], y [m]),
-    scans.{csv,parquet} (scan, time [s], site), truth.json (true rate per scan over the
-    window and the scenario's parameters), truth.nc (true intensity at the cell centres of
-    a fine 58×56 polar grid, m⁻² scan⁻¹).
+    Files: detections.{csv,parquet} (scan, range [m], bearing [deg], x [m], y [m]; clutter
+    and, with ``vessels``, the vessels' detections, mixed and unlabeled), scans.{csv,parquet}
+    (scan, time [s], site), objects.{csv,parquet} (with ``vessels``: the vessels' true
+    positions per scan and their measurement covariance, :func:`simulate_vessels`),
+    truth.json (true clutter rate per scan over the window, the vessels' figures and the
+    scenario's parameters), truth.nc (true clutter intensity at the cell centres of a fine
+    58×56 polar grid, m⁻² scan⁻¹). The clutter is drawn from the seed's own stream, the
+    vessels from a stream of their own, so the clutter does not depend on ``vessels``.
     """
     if n_scans < 1:
         raise InputError(f"--scans must be ≥ 1, got {n_scans}")
@@ -144,15 +149,19 @@ def simulate_lowmarsh(out_dir: Path, n_scans: int = 600, seed: int = 20261201,
     rng = np.random.default_rng(seed)
     region = sc.region()
     scan, r, b = sample_thinning(rng, region, sc.intensity, sc.lam_max(), n_scans)
-    x, y = polar_to_cartesian(r, b)
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
+    clutter_in_window = int((~region.in_mask(r, b)).sum())
+    ext = "csv" if fmt == "csv" else "parquet"
+    vessel_info = None
+    if vessels:
+        scan, r, b, vessel_info = add_vessels(out_dir, scan, r, b, n_scans, seed, fmt, region, log=log)
+    x, y = polar_to_cartesian(r, b)
     det = pa.table({"scan": scan.astype(np.int64), "range": np.round(r, 3), "bearing": np.round(b, 5),
                     "x": np.round(x, 3), "y": np.round(y, 3)})
     scans = pa.table({"scan": np.arange(n_scans, dtype=np.int64),
                       "time": np.round(np.arange(n_scans) * sc.scan_period_s, 3),
                       "site": np.full(n_scans, "breakwater")})
-    ext = "csv" if fmt == "csv" else "parquet"
     write = (lambda t, p: pacsv.write_csv(t, p)) if fmt == "csv" else (lambda t, p: pq.write_table(t, p))
     write(det, out_dir / f"detections.{ext}")
     write(scans, out_dir / f"scans.{ext}")
@@ -177,6 +186,7 @@ def simulate_lowmarsh(out_dir: Path, n_scans: int = 600, seed: int = 20261201,
         "scans": n_scans,
         "detections": int(scan.size),
         "detections_in_window": int(in_window.sum()),
+        "clutter_detections_in_window": clutter_in_window,
         "true_rate_per_scan": rate,
         "true_rate_quadrature_error": err,
         "true_rate_note": "expected clutter detections per scan over the window (region minus "
@@ -185,9 +195,13 @@ def simulate_lowmarsh(out_dir: Path, n_scans: int = 600, seed: int = 20261201,
         "parameters": asdict(sc),
         "files": {"detections": f"detections.{ext}", "scans": f"scans.{ext}", "truth": "truth.nc"},
     }
+    if vessel_info is not None:
+        info["vessels"] = vessel_info
+        info["files"]["objects"] = vessel_info["file"]
     (out_dir / "truth.json").write_text(json.dumps(info, indent=2) + "\n")
-    log(f"simulated {n_scans} scans, {scan.size} detections ({int(in_window.sum())} over sea, "
-        f"{int((~in_window).sum())} on the masked land) into {out_dir}; true rate "
+    log(f"simulated {n_scans} scans, {scan.size} detections ({int(in_window.sum())} over sea"
+        + (f", of them {vessel_info['detections_in_window']} of vessels" if vessel_info else "")
+        + f", {int((~in_window).sum())} on the masked land) into {out_dir}; true clutter rate "
         f"{rate:.4f} detections/scan over the window")
     return info
 
@@ -492,7 +506,8 @@ def simulate_quay(out_dir: Path, n_scans: int = 600, seed: int = 20261201, fmt: 
 
 
 def simulate_scene(out_dir: Path, n_scans: int = 600, seed: int = 20261201, fmt: str = "csv",
-                   rain: bool = False, second_mast: bool = True, log=print) -> dict:
+                   rain: bool = False, second_mast: bool = True, vessels: bool | None = None,
+                   log=print) -> dict:
     """The Lowmarsh demo data: the breakwater recording in ``out_dir`` and, with
     ``second_mast``, the quay mast's in ``out_dir/quay``.
 
@@ -500,11 +515,18 @@ def simulate_scene(out_dir: Path, n_scans: int = 600, seed: int = 20261201, fmt:
     (same seed, same numbers). With ``rain`` the weather (:class:`RainEpisodes`, its own
     random stream) multiplies the sea clutter of every scan at both masts, and the scans
     tables gain ``rain`` (0/1), ``sea_state`` and ``weather_episode`` columns; truth.json
-    records the weather's parameters and the per-scan multipliers' mean."""
+    records the weather's parameters and the per-scan multipliers' mean.
+
+    ``vessels`` (default: on without ``rain``, off with it, so the weather recording stays
+    clutter only for the over-dispersion workflow) adds the vessels of
+    :class:`LowmarshVessels` to the breakwater recording: their detections mixed into
+    detections.csv and their positions per scan in objects.csv. The quay mast's recording
+    has no vessels (a simplification of the demo)."""
     out_dir = Path(out_dir)
     weather = None
+    vessels = (not rain) if vessels is None else bool(vessels)
     if not rain:
-        info = simulate_lowmarsh(out_dir, n_scans=n_scans, seed=seed, fmt=fmt, log=log)
+        info = simulate_lowmarsh(out_dir, n_scans=n_scans, seed=seed, fmt=fmt, vessels=vessels, log=log)
     else:
         if n_scans < 1:
             raise InputError(f"--scans must be ≥ 1, got {n_scans}")
@@ -524,13 +546,21 @@ def simulate_scene(out_dir: Path, n_scans: int = 600, seed: int = 20261201, fmt:
                       np.concatenate([b[keep], lb]))
         o = np.argsort(scan, kind="stable")
         scan, r, b = scan[o], r[o], b[o]
+        clutter_in_window = int((~region.in_mask(r, b)).sum())
+        vessel_info = None
+        if vessels:
+            out_dir.mkdir(parents=True, exist_ok=True)
+            scan, r, b, vessel_info = add_vessels(out_dir, scan, r, b, n_scans, seed, fmt, region, log=log)
         rate, err = sc.window_rate()
         extra = {"scenario": "Lowmarsh breakwater radar with rain episodes (invented)",
                  "sensor": {"x": 0.0, "y": 0.0, "heading": 0.0, "frame": "lowmarsh"},
                  "weather": {"parameters": asdict(rp), "rain_scans": int(weather["rain"].sum()),
                              "episodes": int(weather["episode"].max()) + 1,
                              "mean_multiplier": float(weather["multiplier"].mean()),
-                             "expected_rate_this_recording": rate * float(weather["multiplier"].mean())}}
+                             "expected_rate_this_recording": rate * float(weather["multiplier"].mean())},
+                 "clutter_detections_in_window": clutter_in_window}
+        if vessel_info is not None:
+            extra["vessels"] = vessel_info
         info = _write_mast(out_dir, scan, r, b, n_scans, sc.scan_period_s, "breakwater", weather, fmt, extra,
                            region, rate, err, seed, asdict(sc), log, "land")
         import xarray as xr
@@ -613,3 +643,146 @@ def simulate_births(out_dir: Path, n_steps: int = 600, seed: int = 20261201, log
     (out_dir / "truth.json").write_text(json.dumps(info, indent=2) + "\n")
     log(f"simulated {step.size} births over {n_steps} steps into {out_dir}")
     return info
+
+
+# --------------------------------------------------------------------------- vessels (issue 7)
+@dataclass(frozen=True)
+class LowmarshVessels:
+    """Vessels leaving Lowmarsh (invented numbers): they appear where the birth scenario
+    puts new objects (:class:`LowmarshBirths`: the harbour mouth and the ferry slip, with
+    its means, covariances and relative weights) and head out to sea on a course of their
+    origin, ``speed_mps`` uniform, with a white-noise acceleration of sd ``accel_sd``
+    [m/s²] per axis (a nearly-constant-velocity motion). Arrivals form a Poisson process of
+    ``arrival_per_scan`` vessels per scan, started ``lead_in_scans`` before the recording
+    so that vessels are already under way at its first scan. The breakwater radar
+    detects a vessel in view with probability ``p_detection`` per scan, at its position
+    plus Cartesian noise N(0, ``noise_sd_m``² I). Fewer vessels per step than the birth
+    scenario's 0.2: a realistic number of ships in view at once (about three)."""
+
+    arrival_per_scan: float = 0.008
+    course_deg: tuple[float, float] = (340.0, 318.0)  # clockwise from north: mouth, ferry slip
+    course_sd_deg: tuple[float, float] = (12.0, 6.0)
+    speed_mps: tuple[tuple[float, float], tuple[float, float]] = ((4.0, 8.0), (6.0, 9.0))
+    accel_sd: float = 0.03
+    p_detection: float = 0.9
+    noise_sd_m: float = 15.0
+    lead_in_scans: int = 1500
+    max_scans: int = 2500
+    scan_period_s: float = 2.4
+
+
+def simulate_vessels(rng: np.random.Generator, n_scans: int, region: Region,
+                     vessels: LowmarshVessels | None = None, births: LowmarshBirths | None = None) -> dict:
+    """Vessel tracks, their detections and their positions per scan (vectorised over
+    vessels and steps). A vessel is in view while its true position is inside the region's
+    bounds (from its appearance to its first exit). Returns arrays: ``obj_scan``,
+    ``obj_id``, ``obj_x``, ``obj_y`` (true positions [m] of the vessels in view per scan),
+    ``det_scan``, ``det_x``, ``det_y`` (their detections inside the bounds), and the
+    scenario."""
+    v = vessels or LowmarshVessels()
+    bs = births or LowmarshBirths()
+    w = np.asarray(bs.weights, float)
+    w = w / w.sum()
+    n_v = int(rng.poisson(v.arrival_per_scan * (v.lead_in_scans + n_scans)))
+    start = rng.integers(-v.lead_in_scans, n_scans, n_v)
+    comp = rng.choice(w.size, size=n_v, p=w)
+    chol = np.linalg.cholesky(bs.covs())
+    p0 = np.asarray(bs.means)[comp] + np.einsum("vij,vj->vi", chol[comp], rng.standard_normal((n_v, 2)))
+    course = np.deg2rad(np.asarray(v.course_deg)[comp] + rng.normal(0.0, 1.0, n_v) * np.asarray(v.course_sd_deg)[comp])
+    lo, hi = np.asarray(v.speed_mps)[comp].T
+    speed = rng.uniform(lo, hi)
+    vel0 = speed[:, None] * np.stack([np.sin(course), np.cos(course)], axis=1)
+    dt, T = v.scan_period_s, v.max_scans
+    acc = rng.normal(0.0, v.accel_sd, (n_v, T, 2))
+    vel = vel0[:, None, :] + dt * (np.cumsum(acc, axis=1) - acc)  # velocity at the start of each step
+    step = vel * dt + 0.5 * acc * dt * dt
+    pos = p0[:, None, :] + np.cumsum(step, axis=1) - step  # position at each step
+    rr, bb = cartesian_to_polar(pos[..., 0], pos[..., 1])
+    alive = np.cumprod(region.inside_bounds(rr.ravel(), bb.ravel()).reshape(n_v, T), axis=1).astype(bool)
+    scan = start[:, None] + np.arange(T)[None, :]
+    keep = alive & (scan >= 0) & (scan < n_scans)
+    vid, i = np.nonzero(keep)
+    obj_scan, obj_x, obj_y = scan[vid, i], pos[vid, i, 0], pos[vid, i, 1]
+    seen = rng.uniform(size=obj_scan.size) < v.p_detection
+    dx = obj_x[seen] + rng.normal(0.0, v.noise_sd_m, int(seen.sum()))
+    dy = obj_y[seen] + rng.normal(0.0, v.noise_sd_m, int(seen.sum()))
+    dr, db = cartesian_to_polar(dx, dy)
+    inb = region.inside_bounds(dr, db)
+    o = np.lexsort((vid, obj_scan))
+    return {"obj_scan": obj_scan[o], "obj_id": vid[o] + 1, "obj_x": obj_x[o], "obj_y": obj_y[o],
+            "det_scan": obj_scan[seen][inb], "det_x": dx[inb], "det_y": dy[inb],
+            "n_vessels": int(np.unique(vid).size), "present_at_start": int(np.unique(vid[obj_scan == 0]).size),
+            "scenario": v}
+
+
+def expected_in_window(region: Region, x, y, noise_sd: float, rng: np.random.Generator, draws: int = 200):
+    """(mean, Monte Carlo s.e.) over positions (x, y) [m] of P(position + N(0, σ²I) ∈ W),
+    W the region minus its masks, with ``draws`` noise draws per position."""
+    x = np.asarray(x, float)
+    if x.size == 0:
+        return np.zeros(0), np.zeros(0)
+    zx = x[:, None] + rng.normal(0.0, noise_sd, (x.size, draws))
+    zy = np.asarray(y, float)[:, None] + rng.normal(0.0, noise_sd, (x.size, draws))
+    c0, c1 = (zx, zy) if region.frame == "cartesian" else cartesian_to_polar(zx, zy)
+    c0, c1 = c0.ravel(), c1.ravel()
+    inside = region.inside_bounds(c0, c1)
+    if region.masks:
+        inside[inside] = ~region.in_mask(c0[inside], c1[inside])
+    p = inside.reshape(x.size, draws).mean(axis=1)
+    return p, np.sqrt(p * (1 - p) / draws)
+
+
+def add_vessels(out_dir: Path, scan, r, b, n_scans: int, seed: int, fmt: str, region: Region,
+                vessels: LowmarshVessels | None = None, log=print):
+    """Vessels into a polar Lowmarsh recording: returns (scan, range, bearing) of clutter and
+    vessel detections mixed (sorted by scan, unlabeled) and the vessels' truth, and writes
+    OUT/objects.{csv,parquet}: scan, object, range [m], bearing [deg], x, y [m] (true
+    positions), cov_xx, cov_xy, cov_yy [m²] (the Cartesian measurement covariance, for
+    ellipse gates). Own random stream (seed, 3)."""
+    v = vessels or LowmarshVessels()
+    rng = np.random.default_rng([seed, 3])
+    sim = simulate_vessels(rng, n_scans, region, v)
+    vr, vb = cartesian_to_polar(sim["det_x"], sim["det_y"])
+    all_scan = np.concatenate([scan, sim["det_scan"]])
+    o = np.argsort(all_scan, kind="stable")
+    r_all, b_all = np.concatenate([r, vr])[o], np.concatenate([b, vb])[o]
+    orng, obrg = cartesian_to_polar(sim["obj_x"], sim["obj_y"])
+    var = v.noise_sd_m**2
+    m = sim["obj_scan"].size
+    table = pa.table({"scan": sim["obj_scan"].astype(np.int64), "object": sim["obj_id"].astype(np.int64),
+                      "range": np.round(orng, 3), "bearing": np.round(obrg, 5),
+                      "x": np.round(sim["obj_x"], 3), "y": np.round(sim["obj_y"], 3),
+                      "cov_xx": np.full(m, var), "cov_xy": np.zeros(m), "cov_yy": np.full(m, var)})
+    ext = "csv" if fmt == "csv" else "parquet"
+    (pacsv.write_csv if fmt == "csv" else pq.write_table)(table, out_dir / f"objects.{ext}")
+    in_window_true = ~region.in_mask(orng, obrg) if region.masks else np.ones(m, bool)
+    p, se = expected_in_window(region, sim["obj_x"], sim["obj_y"], v.noise_sd_m, np.random.default_rng([seed, 4]))
+    det_in_window = int((~region.in_mask(vr, vb)).sum()) if region.masks else int(vr.size)
+    info = {
+        "file": f"objects.{ext}",
+        "note": "vessels appear at the birth scenario's harbour mouth and ferry slip and head out to sea; "
+                "their detections are mixed, unlabeled, into the detections table; the objects table holds "
+                "their true positions in every scan they are in view",
+        "vessels_in_recording": sim["n_vessels"],
+        "present_at_first_scan": sim["present_at_start"],
+        "object_rows": int(m),
+        "p_detection": v.p_detection,
+        "noise_sd_m": v.noise_sd_m,
+        "mean_objects_in_view_per_scan": m / n_scans,
+        "mean_objects_in_window_per_scan": float(in_window_true.sum() / n_scans),
+        "expected_object_detections_in_window_per_scan": float(v.p_detection * p.sum() / n_scans),
+        "expected_object_detections_mc_se": float(v.p_detection * np.sqrt((se**2).sum()) / n_scans),
+        "expected_note": "P_D × Σ over the vessels in view of P(its detection falls in the window), per scan "
+                         "(Monte Carlo over the measurement noise): what a fit of all detections adds to the "
+                         "clutter rate; a gate of probability P_G lets about P_D·(1 − P_G) per vessel leak in",
+        "object_detections": int(sim["det_scan"].size),
+        "detections_in_window": det_in_window,
+        "parameters": {**asdict(v)},
+    }
+    log(f"simulated {sim['n_vessels']} vessels ({sim['present_at_start']} under way at the first scan, "
+        f"{m / n_scans:.2f} in view per scan on average), {sim['det_scan'].size} vessel detections")
+    return all_scan[o], r_all, b_all, info
+
+
+__all__ += ["LowmarshBirths", "simulate_births", "LowmarshVessels", "simulate_vessels", "add_vessels",
+            "expected_in_window"]
