@@ -538,3 +538,51 @@ def test_predictive_one_draw_per_recording_follows_rate_posterior(weak_uniform_r
     # the tables keep the input contract: a fit reads them back
     det = (out / "recording-0001" / "detections.csv").read_text().splitlines()[0]
     assert det.replace('"', "") == "scan,x,y"
+
+
+# ----------------------------------------------------------------------- combining runs (issue 7)
+def test_export_combines_a_birth_run(demo_run, cellwise_cartesian_run, tmp_path, capsys):
+    """`export CLUTTER --birth BIRTH_RUN`: the birth run's mixture (summary.json 'birth', the
+    contract of DEVELOPERS.md "Tracker export") reaches the clutter run's tracker.json with the
+    birth run's own Cartesian region and provenance; the evaluator's birth intensity matches
+    scipy.stats.multivariate_normal; refusals: a birth run in a polar space, a birth run
+    without a mixture, runs with different [sensor] placements, a clutter run that already
+    has its own birth mixture (exit 2, one line)."""
+    from sceneprior.evaluator import load_config
+
+    birth = tmp_path / "birth"
+    shutil.copytree(cellwise_cartesian_run, birth)
+    s = json.loads((birth / "summary.json").read_text())
+    comps = [{"weight": 0.05, "weight_sd": 0.01, "mean": [150.0, 400.0], "cov": [[900.0, 100.0], [100.0, 400.0]]}]
+    s["birth"] = {"components": comps, "state_axes": ["x", "y"], "state_units": ["m", "m"],
+                  "rate_per_step": {"mean": 0.05}}
+    (birth / "summary.json").write_text(json.dumps(s))
+    clutter = tmp_path / "demo"
+    shutil.copytree(demo_run / "demo", clutter)
+    assert main(["export", str(clutter), "--birth", str(birth)]) == 0
+    assert "birth: yes (from run cellwise-box)" in capsys.readouterr().out
+    doc = json.loads((clutter / "tracker.json").read_text())
+    validate(doc)
+    b = doc["birth"]
+    assert b["source_run"] == "cellwise-box" and b["region"]["frame"] == "cartesian"
+    assert b["region"]["bounds"] == [[0.0, 1000.0], [0.0, 500.0]] and b["region"]["masks"][0]["kind"] == "polygon"
+    assert b["convergence"]["passed"] and b["provenance"]["run"] == "cellwise-box"
+    assert doc["clutter"]["rate"]["value"] == pytest.approx(json.loads((clutter / "summary.json").read_text())["rate"]["mean"])
+    cfg = load_config(clutter / "tracker.json")
+    pts = np.array([[150.0, 400.0], [170.0, 390.0], [1200.0, 200.0]])  # outside the triangle mask
+    ref = 0.05 * st.multivariate_normal(comps[0]["mean"], comps[0]["cov"]).pdf(pts)
+    ref[2] = 0.0  # outside the birth region's bounds
+    np.testing.assert_allclose(cfg.birth_intensity(pts), ref, rtol=1e-12)
+
+    def refused(args, message):
+        assert main(["export", *map(str, args)]) == 2
+        err = capsys.readouterr().err.strip().splitlines()
+        assert len(err) == 1 and message in err[0], err
+
+    refused([clutter, "--birth", demo_run / "demo"], "must be fitted in Cartesian state space")
+    refused([clutter, "--birth", cellwise_cartesian_run], "has no birth mixture")
+    s2 = dict(s, data={**s["data"], "spec_content": {**s["data"]["spec_content"], "sensor": {"x": 5.0}}})
+    (birth / "summary.json").write_text(json.dumps(s2))
+    refused([clutter, "--birth", birth], "[sensor] placement")
+    (birth / "summary.json").write_text(json.dumps(s))
+    refused([birth, "--birth", birth], "has a birth mixture of its own")
