@@ -124,3 +124,13 @@ def test_console_script_exit_code_and_no_traceback(tmp_path):
     assert p.returncode == 2
     assert "Traceback" not in p.stderr and "did you mean 'chains'" in p.stderr
     assert len(p.stderr.strip().splitlines()) == 1
+
+
+def test_unknown_gate_key_suggests_nearest(tmp_path, capsys):
+    # [data.gates] keys go through the same unknown-key machinery (issue 7)
+    write_csv(tmp_path / "obj.csv", ["scan", "object", "x", "y"], [[0, 1, 5.0, 5.0]])
+    spec = _good(tmp_path, data={"detections": "det.csv", "scans": "scans.csv", "objects": "obj.csv",
+                                 "gates": {"raduis": 30.0}})
+    code, err = run_cli(capsys, "fit", str(spec))
+    assert code == 2 and len(err) == 1
+    assert "unknown key 'raduis' in [data.gates]" in err[0] and "did you mean 'radius'" in err[0]
