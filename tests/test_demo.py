@@ -90,9 +90,10 @@ def test_models_spec_fits_demo_data(demo_run, tmp_path):
 
     spec = load_spec(REPO / "models" / "lowmarsh-uniform.toml", overrides={
         "data": {"detections": str(demo_run / "demo-data" / "detections.csv"),
-                 "scans": str(demo_run / "demo-data" / "scans.csv")}})
+                 "scans": str(demo_run / "demo-data" / "scans.csv"),
+                 "objects": str(demo_run / "demo-data" / "objects.csv")}})
     _, rec, stats = prepare(spec)
-    assert stats.n_scans == 600 and rec.n_masked > 0
+    assert stats.n_scans == 600 and rec.n_masked > 0 and rec.n_gated > 0 and stats.has_gates
 
 
 def test_help_states_units(capsys):
