@@ -290,3 +290,31 @@ def test_detection_spec_errors(tmp_path, capsys):
         assert main(["detection", str(tmp_path / "bad.toml")]) == 2
         err = capsys.readouterr().err.strip().splitlines()
         assert len(err) == 1 and message in err[0], (extra, err)
+
+
+def test_unconverged_detection_run_exit_3_and_export_refuses(pd_runs, tmp_path, capsys):
+    """2 chains × 30 draws: bulk ESS < 400 (sceneprior.gate), so `detection` keeps the run but
+    exits 3, and export refuses it (exit 3) unless --override-gate, which the section records."""
+    import jsonschema
+
+    from conftest import REPO
+
+    tmp, _ = pd_runs
+    simulate_recording(tmp_path, np.random.default_rng(8), n_scans=60, name="short")
+    write_spec(tmp_path / "short.toml", {"name": "short-pd", "recording": "recording.toml",
+                                         "sampler": {"chains": 2, "warmup": 30, "draws": 30, "seed": 1,
+                                                     "progress": False}, "output": {"dir": "runs"}})
+    assert main(["detection", str(tmp_path / "short.toml"), "--quiet"]) == 3
+    assert "unconverged" in capsys.readouterr().err
+    run = tmp_path / "runs" / "short-pd"
+    assert not json.loads((run / "summary.json").read_text())["gate"]["converged"]
+    clutter = tmp / "runs" / "rec-clutter"
+    assert main(["export", str(clutter), "--detection", str(run)]) == 3
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "detection run short-pd" in err[0] and "ess_bulk" in err[0]
+    assert main(["export", str(clutter), "--detection", str(run), "--override-gate"]) == 0
+    doc = json.loads((clutter / "tracker.json").read_text())
+    schema = json.loads((REPO / "src" / "sceneprior" / "schemas" / "tracker-1.schema.json").read_text())
+    jsonschema.Draft202012Validator(schema).validate(doc)
+    assert doc["detection_probability"]["convergence"] == {**doc["detection_probability"]["convergence"],
+                                                           "passed": False, "overridden": True}

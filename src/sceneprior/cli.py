@@ -432,18 +432,16 @@ def cmd_births(args) -> int:
 
 
 def cmd_detection(args) -> int:
-    import json
-
-    from .detprob import describe, fit_detection, load_detection_spec, write_detection_run
+    from .detprob import describe, fit_detection, gate_entry, load_detection_spec, write_detection_run
 
     spec = load_detection_spec(args.spec)
     res = fit_detection(spec, progress=not args.quiet, log=_log)
     path = write_detection_run(res, Path(args.out) if args.out else None)
     print(describe(res, path))
-    gate = json.loads((path / "summary.json").read_text(encoding="utf-8"))["gate"]
-    if not gate["converged"]:
-        raise ConvergenceGateError(f"run written to {path} but marked unconverged in summary.json: "
-                                   + "; ".join(gate["failures"]))
+    verdict = gate_entry(res.diagnostics, res.idata.posterior)  # the verdict summary.json records
+    if not verdict["converged"]:  # kept and marked unconverged (exit 3); export refuses it
+        raise ConvergenceGateError(f"detection run written to {path} but unconverged: "
+                                   + "; ".join(verdict["failures"]))
     return 0
 
 

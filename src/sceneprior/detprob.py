@@ -397,8 +397,8 @@ def write_detection_run(res: DetectionResult, runs_dir: Path | None = None) -> P
     try:
         res.idata.to_netcdf(str(tmp / "posterior.nc"), engine="h5netcdf")
         detection_dataset(res).to_netcdf(tmp / "detection.nc", engine="h5netcdf")
-        (tmp / "summary.json").write_text(json.dumps(detection_summary(res), indent=2, ensure_ascii=False,
-                                                     default=_json_default) + "\n", encoding="utf-8")
+        (tmp / "summary.json").write_text(json.dumps(detection_summary(res), indent=2, ensure_ascii=False) + "\n",
+                                          encoding="utf-8")
         os.chmod(tmp, 0o755)
         if target.exists():
             shutil.rmtree(target)
@@ -407,16 +407,6 @@ def write_detection_run(res: DetectionResult, runs_dir: Path | None = None) -> P
         shutil.rmtree(tmp, ignore_errors=True)
         raise
     return target
-
-
-def _json_default(v):
-    if isinstance(v, (np.integer,)):
-        return int(v)
-    if isinstance(v, (np.floating,)):
-        return float(v)
-    if isinstance(v, Path):
-        return str(v)
-    raise TypeError(type(v).__name__)
 
 
 class DetectionRun:

@@ -506,13 +506,5 @@ def write_births(b: Births, out_dir, summary: dict, fmt: str = "csv") -> list[Pa
                                  "asked), vx, vy [m/s] (empty: not available), object, x_first, y_first [m] "
                                  "(first listed position), reappearance, x_sd, y_sd [m] (lag correction)",
                        "steps": "every exposed step: step (scan id), duration [s] since the previous scan, time [s]"}}
-    write_json_atomic(out / "births.json", doc, indent=2, default=_json_default)
+    write_json_atomic(out / "births.json", doc, indent=2)
     return [p_b, p_s, out / "births.json"]
-
-
-def _json_default(v):
-    if isinstance(v, np.generic):
-        return v.item()
-    if isinstance(v, np.ndarray):
-        return v.tolist()
-    raise TypeError(type(v).__name__)
