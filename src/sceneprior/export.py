@@ -28,6 +28,12 @@ factor u_k ~ Gamma(1/φ, 1/φ), DESIGN.md §3), then negative binomial with mean
 variance = rate + φ·rate², given as scipy.stats.nbinom(n = 1/φ, p = 1/(1 + φ·rate));
 ``birth`` copies ``summary["birth"]`` (a Gaussian mixture with untruncated weights;
 DEVELOPERS.md "Tracker export" states the contract).
+
+Combining runs (``sceneprior export CLUTTER_RUN --detection PD_RUN --birth BIRTH_RUN``):
+``detection_probability`` holds P_D(range) of a detection run (:mod:`sceneprior.detprob`)
+whose region must be the clutter run's; ``birth`` may come from a separate birth-mixture
+run fitted in Cartesian state space with the same ``[sensor]`` placement. Each added run
+passes its own convergence gate or the override is recorded in its section.
 """
 
 from __future__ import annotations
