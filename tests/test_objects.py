@@ -349,3 +349,47 @@ def test_objects_outside_region_allowed_and_empty_table(tmp_path, capsys):
     s = json.loads((tmp_path / "runs" / "case" / "summary.json").read_text())
     assert s["data"]["exposure_m2_scan"] == pytest.approx(4 * W, rel=1e-12) and s["gates"]["gates"] == 0
     capsys.readouterr()
+
+
+def test_zone_moments_with_gates_match_the_dense_definition():
+    """checks._gated_zone_moments (sparse) against the definition written densely: for each
+    draw s, zone z and scan k, μ_skz = m_sk·Σ_{c∈z} λ_sc(|c ∩ W| − removed[k, c]); returns
+    Σ_k μ_skz and φ_s Σ_k μ_skz² (the negative-binomial variance term)."""
+    import scipy.sparse as sp
+
+    from sceneprior.checks import _gated_zone_moments, _zones
+
+    rng = np.random.default_rng(71)
+    S, K, shape = 5, 30, (6, 4)
+    C = shape[0] * shape[1]
+    w = rng.uniform(5e3, 1e4, C)
+    removed = sp.random(K, C, density=0.2, random_state=3, data_rvs=lambda n: rng.uniform(0, 5e3, n)).tocsr()
+    lam = rng.uniform(1e-6, 5e-6, (S, C))
+    m = rng.uniform(0.5, 2.0, (S, K))
+    phi = rng.uniform(0.1, 0.5, S)
+    zone, Z = _zones(shape, 2)
+    Lz = np.stack([(lam * w)[:, zone == z].sum(axis=1) for z in range(Z)], axis=1)
+    mean_z, nb_z = _gated_zone_moments(removed, lam, m, zone, Z, Lz, m.sum(axis=1, keepdims=True),
+                                       (m**2).sum(axis=1, keepdims=True), phi)
+    Wk = w[None, :] - removed.toarray()  # (K, C) dense per-scan window areas
+    mu = m[:, :, None] * np.stack([(lam[:, None, zone == z] * Wk[None, :, zone == z]).sum(-1)
+                                   for z in range(Z)], axis=-1)  # (S, K, Z)
+    np.testing.assert_allclose(mean_z, mu.sum(axis=1), rtol=1e-12)
+    np.testing.assert_allclose(nb_z, phi[:, None] * (mu**2).sum(axis=1), rtol=1e-10)
+
+
+def test_check_of_a_gated_run_expects_each_scans_window(tmp_path):
+    """sceneprior check on a gated uniform run: the zone residuals' expected counts sum to
+    Σ_k ρ|W_k| (|W_k| = |W| − k·πr², elementary geometry) averaged over the draws."""
+    from sceneprior.checks import check_run
+    from sceneprior.results import load_run, write_run
+
+    rng = np.random.default_rng(72)
+    spec, truth = make_case(tmp_path, rng, K=60, layout="lanes", radius=100.0,
+                            sampler={"method": "exact", "chains": 2, "draws": 300, "seed": 1, "progress": False})
+    path = write_run(_fit(spec))
+    rep = check_run(path, prior_side=False, sensitivity=False, write=False)
+    Wk = W - truth["objects_per_scan"] * math.pi * truth["radius"] ** 2
+    rho = np.asarray(load_run(path).cell_draws["intensity"].values, float)[:, 0]
+    expected = sum(r["expected"] for r in rep["spatial_residuals"]["table"])
+    assert expected == pytest.approx(float(rho.mean() * Wk.sum()), rel=1e-9)

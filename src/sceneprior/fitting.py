@@ -138,6 +138,7 @@ def fit(spec: FitSpec, progress: bool = True, log=print) -> FitResult:
     prior = resolve_prior(kind, spec.model.prior, spec.source)
     if spec.data.objects is not None:
         _refuse_gates(spec)
+        log(f"reading the objects table {spec.data.objects} and cutting its gates out of each scan's window")
     region, rec, stats = prepare(spec)
     t_bin = time.perf_counter()
     gated = f", {rec.n_gated} inside gates" if stats.has_gates else ""
