@@ -119,16 +119,17 @@ def _refuse_gates(spec: FitSpec) -> None:
     base, *tokens = spec.model.kind.split("+")
     why = None
     if base == "mixture":
-        why = ("the mixture kind fits points against the permanent window; it does not take "
-               "per-scan windows (gates) yet")
+        why = ("the mixture kind fits points against the permanent window and does not take per-scan "
+               "windows (gates) yet; drop data.objects or fit kind = \"uniform\", \"loglinear\" or \"lgcp\"")
     elif base == "sites":
-        why = "the sites kind does not take per-scan windows (gates) yet"
+        why = ("the sites kind does not take per-scan windows (gates) yet; drop data.objects or fit one "
+               "site at a time with kind = \"uniform\"")
     elif tokens and base != "uniform":
-        why = (f"per-scan terms ({', '.join(tokens)}) with gates are available for kind \"uniform\" "
-               f"only; the gated per-scan window integral of a '{base}' map is not implemented yet")
+        why = (f"per-scan terms ({', '.join(tokens)}) with gates are available for kind \"uniform\" only "
+               f"(the gated per-scan integral of a '{base}' map is not implemented yet); drop the per-scan "
+               "terms, drop data.objects, or use kind = \"uniform\"")
     if why:
-        raise InputError(f"{spec.source}: data.objects (gates around known objects): {why}; "
-                         "drop data.objects or use kind = \"uniform\", \"loglinear\" or \"lgcp\"")
+        raise InputError(f"{spec.source}: data.objects (gates around known objects): {why}")
 
 
 def fit(spec: FitSpec, progress: bool = True, log=print) -> FitResult:
@@ -138,7 +139,6 @@ def fit(spec: FitSpec, progress: bool = True, log=print) -> FitResult:
     prior = resolve_prior(kind, spec.model.prior, spec.source)
     if spec.data.objects is not None:
         _refuse_gates(spec)
-        log(f"reading the objects table {spec.data.objects} and cutting its gates out of each scan's window")
     region, rec, stats = prepare(spec)
     t_bin = time.perf_counter()
     gated = f", {rec.n_gated} inside gates" if stats.has_gates else ""
