@@ -12,7 +12,11 @@ References:
 * the window overlap area: shapely polygon intersection;
 * the sites model's hyperparameter posterior: quadrature of the marginal likelihood
   Π_s NB(N_s; α, (α/μ)/(α/μ + K_s)) built with scipy.stats.nbinom (BDA3 §5.3 for the
-  collapsed-hierarchy approach), and E[ρ_s | data] = E[(α + N_s)/(α/μ + K_s) | data].
+  collapsed-hierarchy approach), and E[ρ_s | data] = E[(α + N_s)/(α/μ + K_s) | data];
+  with gates around known objects K_s becomes the site's exposure Σ_{k∈s}|W_k|/|W| and N_s
+  the detections outside the gates, both computed here independently of the package: discs of
+  radius r wholly inside the box and apart remove exactly πr² each (elementary geometry), and
+  a detection is inside a disc when its distance to the centre is ≤ r (numpy hypot).
 """
 
 from __future__ import annotations
@@ -25,7 +29,7 @@ import numpy as np
 import pytest
 import scipy.stats as st
 
-from conftest import box_recording, quick_fit, write_csv, write_spec
+from conftest import box_case, box_recording, quick_fit, write_csv, write_spec
 from sceneprior.errors import InputError
 
 BOX = 1000.0 * 500.0
@@ -240,12 +244,16 @@ def sites_fit(tmp_path_factory):
     return quick_fit(spec), n, site
 
 
-def _quadrature(n, site):
-    """Posterior of (log μ_rate, log τ) on a grid: prior × Π_s nbinom(N_s; α, β/(β + K_s))."""
+def _quadrature(n, site, window_scans=None):
+    """Posterior of (log μ_rate, log τ) on a grid: prior × Π_s nbinom(N_s; α, β/(β + E_s)),
+    E_s the site's exposure in scans' worth of the window: K_s without gates, Σ_{k∈s}|W_k|/|W|
+    with them (``window_scans``: per-scan |W_k|/|W|)."""
     labels = sorted(set(site))
     N = np.array([n[site == s].sum() for s in labels])
-    K = np.array([(site == s).sum() for s in labels], float)
-    lm = np.linspace(math.log(2.0), math.log(20.0), 500)  # log group-mean rate per scan
+    ws = np.ones(len(site)) if window_scans is None else np.asarray(window_scans, float)
+    K = np.array([ws[site == s].sum() for s in labels])
+    # log group-mean rate per scan; wide, so that the tail of a few-site posterior is not cut
+    lm = np.linspace(math.log(0.2), math.log(200.0), 1500)
     lt = np.linspace(math.log(1e-4), math.log(10.0), 500)  # log τ
     LM, LT = np.meshgrid(lm, lt, indexing="ij")
     mu, tau = np.exp(LM), np.exp(LT)
@@ -256,39 +264,42 @@ def _quadrature(n, site):
         logp = logp + st.nbinom(alpha, beta / (beta + Ks)).logpmf(Ns)
     w = np.exp(logp - logp.max())
     w /= w.sum()
-    post_rate = (alpha[..., None] + N) / (beta[..., None] + K)  # E[ρ_s|α, μ, data] per scan
+    post_rate = (alpha[..., None] + N) / (beta[..., None] + K)  # E[ρ_s|W| | α, μ, data] per scan
     return {"log_mu": (w * LM).sum(), "log_mu_sd": math.sqrt((w * LM**2).sum() - (w * LM).sum() ** 2),
             "tau": (w * tau).sum(), "site_rate": np.tensordot(w, post_rate, axes=([0, 1], [0, 1])),
             "labels": labels, "N": N, "K": K}
 
 
-def test_sites_hyperparameters_match_quadrature(sites_fit):
+def _assert_matches_quadrature(res, q):
+    """Group mean, τ and the site rates of a sites fit within 4 MCSE of the quadrature."""
     import arviz as az
 
-    res, n, site = sites_fit
-    assert res.diagnostics["divergences"] == 0
-    q = _quadrature(n, site)
     post = res.idata.posterior
-    W = res.stats.window_total
     log_mu_rate = np.log(np.asarray(post["rate"]))  # log(μ|W|), μ the group-mean intensity
     ds = az.convert_to_dataset({"log_mu": log_mu_rate, "cv": np.asarray(post["cv"])})
     mcse = az.mcse(ds, method="mean")
     assert abs(log_mu_rate.mean() - q["log_mu"]) < 4 * float(mcse["log_mu"]), (log_mu_rate.mean(), q["log_mu"])
     assert abs(float(post["cv"].mean()) - q["tau"]) < 4 * float(mcse["cv"]), (float(post["cv"].mean()), q["tau"])
     assert float(log_mu_rate.std()) == pytest.approx(q["log_mu_sd"], rel=0.1)
-    assert math.isclose(W, BOX)
+    sr = post["site_rate"]
+    assert [str(s) for s in sr.coords["site"].values] == q["labels"]
+    means = sr.mean(dim=("chain", "draw")).values
+    site_mcse = az.mcse(res.idata, var_names=["site_rate"], method="mean")["site_rate"].values
+    np.testing.assert_array_less(np.abs(means - q["site_rate"]), 4 * site_mcse)
+    return means, site_mcse
+
+
+def test_sites_hyperparameters_match_quadrature(sites_fit):
+    res, n, site = sites_fit
+    assert res.diagnostics["divergences"] == 0
+    _assert_matches_quadrature(res, _quadrature(n, site))
+    assert math.isclose(res.stats.window_total, BOX)
 
 
 def test_sites_few_scans_shrunk_toward_group(sites_fit):
-    import arviz as az
-
     res, n, site = sites_fit
     q = _quadrature(n, site)
-    sr = res.idata.posterior["site_rate"]
-    assert [str(s) for s in sr.coords["site"].values] == q["labels"]
-    means = sr.mean(dim=("chain", "draw")).values
-    mcse = az.mcse(res.idata, var_names=["site_rate"], method="mean")["site_rate"].values
-    np.testing.assert_array_less(np.abs(means - q["site_rate"]), 4 * mcse)
+    means, _ = _assert_matches_quadrature(res, q)
     raw = q["N"] / q["K"]
     group = float(res.idata.posterior["rate"].mean())
     few = q["labels"].index("mast5")
@@ -298,6 +309,78 @@ def test_sites_few_scans_shrunk_toward_group(sites_fit):
     assert abs(shrink[many]) < shrink[few]
     s = res.model.summary(res)
     assert s["sites"]["mast5"]["scans"] == 4 and s["sites"]["mast5"]["raw_rate"] == pytest.approx(raw[few])
+
+
+GATED_SITE_SCANS = [150, 150, 120, 5]
+GATE_R = 100.0  # m: disc gates in four lane slots, wholly inside the box and apart
+
+
+@pytest.fixture(scope="module")
+def gated_sites_fit(tmp_path_factory):
+    """Four sites, clutter uniform over the box at a known rate per site; known objects in up
+    to four lane slots per scan (gates of radius 100 m): every slot in every scan of mast0 and
+    mast3 (4πr², 25 % of the window gated), none at mast1, each slot with probability ½ at
+    mast2. Returns (FitResult, n outside gates per scan, site labels, |W_k|/|W| per scan)."""
+    tmp = tmp_path_factory.mktemp("gated-sites")
+    rng = np.random.default_rng(314)
+    rates = np.array([6.0, 7.5, 5.0, 12.0])  # per scan over the whole box
+    sidx = np.repeat(np.arange(4), GATED_SITE_SCANS)
+    site = np.array([f"mast{j}" for j in sidx])
+    K = sidx.size
+    p_slot = np.array([1.0, 0.0, 0.5, 1.0])[sidx]
+    present = rng.uniform(size=(K, 4)) < p_slot[:, None]
+    ox = np.where(np.arange(4) % 2 == 0, rng.uniform(GATE_R, 500.0 - GATE_R, (K, 4)),
+                  rng.uniform(500.0 + GATE_R, 1000.0 - GATE_R, (K, 4)))
+    oy = np.where(np.arange(4) < 2, 125.0, 375.0) * np.ones((K, 1))
+    oscan = np.repeat(np.arange(K)[:, None], 4, axis=1)
+    n_all = rng.poisson(rates[sidx])
+    scans = np.repeat(np.arange(K), n_all)
+    x, y = np.round(rng.uniform(0, 1000, n_all.sum()), 3), np.round(rng.uniform(0, 500, n_all.sum()), 3)
+    inside = np.zeros(x.size, bool)
+    for j in range(4):  # distance to each slot's object of the detection's own scan
+        d = np.hypot(x - ox[scans, j], y - oy[scans, j])
+        inside |= present[scans, j] & (d <= GATE_R)
+    n_out = np.bincount(scans[~inside], minlength=K)
+    window_scans = 1.0 - present.sum(axis=1) * math.pi * GATE_R**2 / BOX  # |W_k|/|W|
+    write_csv(tmp / "obj.csv", ["scan", "object", "x", "y"],
+              zip(oscan[present], np.tile(np.arange(4), (K, 1))[present], ox[present], oy[present]))
+    spec = box_case(tmp, scans, x, y, n_scans_table=K, name="gated-sites", model={"kind": "sites"},
+                    data={"objects": "obj.csv", "gates": {"radius": GATE_R}},
+                    sampler={"chains": 2, "warmup": 400, "draws": 1000, "seed": 6, "progress": False},
+                    output={"dir": str(tmp / "runs")})
+    write_csv(tmp / "scans.csv", ["scan", "site"], zip(range(K), site))
+    return quick_fit(spec), n_out, site, window_scans
+
+
+def test_gated_sites_match_quadrature_with_gated_exposure(gated_sites_fit):
+    """With gates each site's exposure is Σ_{k∈s}|W_k|: the fit agrees with the quadrature built
+    on the gated exposures, and not with the one that takes K_s whole windows."""
+    res, n_out, site, ws = gated_sites_fit
+    assert res.diagnostics["divergences"] == 0
+    assert int(res.stats.counts.sum()) == int(n_out.sum())  # the same detections dropped (hypot)
+    np.testing.assert_allclose(res.stats.scan_window_area / BOX, ws, rtol=0, atol=1e-9)
+    q = _quadrature(n_out, site, ws)
+    means, mcse = _assert_matches_quadrature(res, q)
+    naive = _quadrature(n_out, site)  # K_s whole windows: biased down where gated
+    g = q["labels"].index("mast0")
+    assert means[g] - naive["site_rate"][g] > 20 * mcse[g], (means[g], naive["site_rate"][g], mcse[g])
+    s = res.model.summary(res)
+    assert s["sites"]["mast0"]["window_scans"] == pytest.approx(q["K"][g], rel=1e-9)
+    assert s["sites"]["mast0"]["raw_rate"] == pytest.approx(q["N"][g] / q["K"][g], rel=1e-9)
+
+
+def test_gated_sites_predictive_mean_per_scan(gated_sites_fit, tmp_path):
+    """Read back from the run, scan k's expected count is ρ_site(k)·|W_k| (predictive.py)."""
+    from sceneprior.predictive import load_draws
+    from sceneprior.results import load_run, write_run
+
+    res, n_out, site, ws = gated_sites_fit
+    rd = load_draws(load_run(write_run(res, tmp_path)), max_draws=200)
+    sr = res.idata.posterior["site_rate"]
+    rates = np.asarray(sr).reshape(-1, sr.shape[-1])[rd.draw_index]  # ρ_s|W| per draw
+    labels = [str(v) for v in sr.coords["site"].values]
+    expect = rates[:, [labels.index(s) for s in site]] * ws[None, :]
+    np.testing.assert_allclose(rd.mu(), expect, rtol=1e-6)
 
 
 def test_sites_model_needs_a_site_column(tmp_path, capsys):

@@ -384,9 +384,9 @@ def prior_predictive(rb: dict, n_obs, rng, draws: int = 1000, seed: int = 0, lev
         if design is not None and (design.names or design.n_bins):
             lm = design.log_multiplier(pd.get("scan_coef_std"), pd.get("time_effect"))
         mu = base[:, None] * (np.ones((1, K)) if lm is None else np.exp(lm))
-        if stats.has_gates:  # scan k sees W_k: exact for uniform maps, the area share for per-cell maps
-            mu = mu * (stats.scan_window_area / stats.window_total)[None, :]
         phi = pd.get("phi")
+    if stats.has_gates:  # scan k sees W_k: exact for uniform maps, the area share for per-cell maps
+        mu = mu * (stats.scan_window_area / stats.window_total)[None, :]
     with np.errstate(over="ignore", invalid="ignore"):
         mu = np.minimum(mu, 1e12)
         rep = _simulate(rng, mu, phi)

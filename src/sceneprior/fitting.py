@@ -121,9 +121,6 @@ def _refuse_gates(spec: FitSpec) -> None:
     if base == "mixture":
         why = ("the mixture kind fits points against the permanent window and does not take per-scan "
                "windows (gates) yet; drop data.objects or fit kind = \"uniform\", \"loglinear\" or \"lgcp\"")
-    elif base == "sites":
-        why = ("the sites kind does not take per-scan windows (gates) yet; drop data.objects or fit one "
-               "site at a time with kind = \"uniform\"")
     elif tokens and base != "uniform":
         why = (f"per-scan terms ({', '.join(tokens)}) with gates are available for kind \"uniform\" only "
                f"(the gated per-scan integral of a '{base}' map is not implemented yet); drop the per-scan "

@@ -2,7 +2,10 @@
 per site, site intensities partially pooled.
 
 Site s has K_s scans, N_s detections over the common window W (the same field of view in
-each site's own local frame), and λ_s(z) = ρ_s. Hierarchy (Gelman et al., BDA3 §5.3, the
+each site's own local frame), and λ_s(z) = ρ_s. Its exposure is E_s = Σ_{k∈s} |W_k| [m²·scan]:
+K_s|W| without gates; with gates around known objects (issue 7) each scan's window W_k is W
+minus its gates (``BinnedStats.scan_window_area``), and N_s counts the detections outside
+them. Hierarchy (Gelman et al., BDA3 §5.3, the
 Gamma–Poisson analogue of the rat-tumour beta-binomial example):
 
     ρ_s | μ, τ ~ Gamma(α, α/μ),  α = 1/τ²    (mean μ, coefficient of variation τ)
@@ -14,7 +17,7 @@ same rate_median = 10 detections per scan and rate_log_sd = 3 as the log-linear 
 cv_scale = 1 (between-site spread of the rate about ±100 % is a priori plausible).
 
 Integrating ρ_s out gives the marginal likelihood of the hyperparameters, a negative
-binomial in N_s: N_s ~ NB(α, p = (α/μ) / (α/μ + E_s)), E_s = K_s|W| (the set density
+binomial in N_s: N_s ~ NB(α, p = (α/μ) / (α/μ + E_s)) (the set density
 differs from the count pmf by a factor free of (μ, τ)); given (μ, τ) the site intensity
 is Gamma(α + N_s, α/μ + E_s). NUTS samples (log μ, τ, ε_s) with the exact
 reparametrisation log ρ_s = log(a_s/b_s) + ε_s/√a_s, a_s = α + N_s, b_s = α/μ + E_s, around
@@ -22,7 +25,8 @@ each site's conditional posterior (the Jacobian ρ_s/√a_s is added), so the ge
 near unit scale whether the data pool the sites or not.
 
 Sites: ``log_mu``, ``cv``, ``site_eps``; deterministic ``intensity`` μ (a new site's mean
-intensity), ``rate`` μ|W|, ``site_intensity`` ρ_s, ``site_rate`` ρ_s|W| (dimension ``site``).
+intensity), ``rate`` μ|W|, ``site_intensity`` ρ_s, ``site_rate`` ρ_s|W| (dimension ``site``);
+the rates refer to the whole window W also when the scans were gated.
 The intensity map of the run is the group mean μ; per-site maps are ρ_s (uniform).
 Follow-up (not in this model): a shared LGCP field plus site deviations.
 """
@@ -53,7 +57,8 @@ def gamma_mean_cv_logpdf(rho, mu, alpha):
 
 
 def sites_model(site_counts, site_exposure, window_total, mu_loc, mu_scale, cv_scale):
-    """numpyro model; site_counts N_s, site_exposure E_s = K_s|W| [m²·scan]."""
+    """numpyro model; site_counts N_s, site_exposure E_s = Σ_{k∈s} |W_k| [m²·scan]
+    (K_s|W| without gates)."""
     S = site_counts.shape[0]
     log_mu = numpyro.sample("log_mu", dist.Normal(mu_loc, mu_scale))
     cv = numpyro.sample("cv", dist.HalfNormal(cv_scale))
@@ -98,7 +103,9 @@ def setup(stats, prior: dict, model_spec):
         raise InputError(f"the sites model needs at least two sites in column '{column}'; found {sites.size}")
     N = np.bincount(idx, weights=stats.scan_counts, minlength=sites.size)
     Ks = np.bincount(idx, minlength=sites.size).astype(float)
-    inputs = dict(site_counts=N, site_exposure=Ks * stats.window_total, window_total=stats.window_total,
+    # E_s = Σ_{k∈s} |W_k|: each scan's own window (|W| each without gates)
+    Es = np.bincount(idx, weights=stats.scan_window_area, minlength=sites.size)
+    inputs = dict(site_counts=N, site_exposure=Es, window_total=stats.window_total,
                   mu_loc=math.log(prior["rate_median"] / stats.window_total),
                   mu_scale=prior["rate_log_sd"], cv_scale=prior["cv_scale"])
     return ModelSetup(inputs=inputs, extra={
@@ -130,6 +137,7 @@ def summary(result) -> dict:
     K = result.setup.extra["site_scans"]
     N = result.setup.inputs["site_counts"]
     W = result.stats.window_total
+    scans_eq = np.asarray(result.setup.inputs["site_exposure"]) / W  # E_s/|W|: K_s without gates
     rates = np.asarray(post["site_rate"]).reshape(-1, len(sites))
 
     def stat(v):
@@ -138,14 +146,20 @@ def summary(result) -> dict:
         return {"mean": float(v.mean()), "sd": float(v.std(ddof=1)), "q05": float(q[0]),
                 "q50": float(q[1]), "q95": float(q[2])}
 
+    gated = result.stats.has_gates
+    note = ("partial pooling: each site's rate is shrunk toward the group rate, the more so the fewer scans "
+            "it has; raw_rate = N_s/K_s is the unpooled estimate")
+    if gated:
+        note += ("; with gates a site's exposure is Σ_k |W_k|, window_scans = Σ_k |W_k|/|W| (scans' worth "
+                 "of the whole window) replaces K_s, and N_s counts the detections outside the gates")
     return {
         "units": "detections per scan over the window (each site's own field of view)",
         "group_rate": stat(post["rate"]),
         "between_site_cv": stat(post["cv"]),
-        "sites": {s: {"scans": int(K[j]), "detections": int(N[j]), "raw_rate": float(N[j] / K[j]),
-                      "rate": stat(rates[:, j])} for j, s in enumerate(sites)},
-        "note": "partial pooling: each site's rate is shrunk toward the group rate, the more so the "
-                "fewer scans it has; raw_rate = N_s/K_s is the unpooled estimate",
+        "sites": {s: {"scans": int(K[j]), "detections": int(N[j]), "raw_rate": float(N[j] / scans_eq[j]),
+                      "rate": stat(rates[:, j]),
+                      **({"window_scans": float(scans_eq[j])} if gated else {})} for j, s in enumerate(sites)},
+        "note": note,
         "window_area_m2": W,
     }
 
