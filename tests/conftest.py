@@ -229,6 +229,36 @@ def box_recording(tmp: Path, n, name="case", scans_columns: dict | None = None, 
     return path
 
 
+def lane_gate_recording(tmp: Path, rng, rate, slot_prob, radius: float = 100.0, name="case",
+                        scans_columns: dict | None = None, **over):
+    """A box recording (conftest.box_case) with known objects: clutter Poisson(rate_k) per scan,
+    uniform over the 1000 m × 500 m box, and disc gates of ``radius`` (≤ 125 m) in four lane
+    slots (y = 125, 375 m; x in [r, 500 − r] or [500 + r, 1000 − r]), each occupied with
+    probability ``slot_prob`` (per scan). The discs lie wholly inside the box and apart, so each
+    removes exactly πr² (elementary geometry). Returns (spec path, per-scan counts outside the
+    gates — distance to the disc centres by numpy hypot —, |W_k|/|W| per scan)."""
+    K = np.size(slot_prob)
+    present = rng.uniform(size=(K, 4)) < np.asarray(slot_prob, float).reshape(K, 1)
+    ox = np.where(np.arange(4) % 2 == 0, rng.uniform(radius, 500.0 - radius, (K, 4)),
+                  rng.uniform(500.0 + radius, 1000.0 - radius, (K, 4)))
+    oy = np.where(np.arange(4) < 2, 125.0, 375.0) * np.ones((K, 1))
+    n_all = rng.poisson(np.broadcast_to(rate, (K,)))
+    scans = np.repeat(np.arange(K), n_all)
+    x, y = np.round(rng.uniform(0, 1000, scans.size), 3), np.round(rng.uniform(0, 500, scans.size), 3)
+    inside = np.zeros(scans.size, bool)
+    for j in range(4):
+        inside |= present[scans, j] & (np.hypot(x - ox[scans, j], y - oy[scans, j]) <= radius)
+    obj_scan = np.repeat(np.arange(K)[:, None], 4, axis=1)[present]
+    write_csv(tmp / "obj.csv", ["scan", "object", "x", "y"],
+              zip(obj_scan, np.tile(np.arange(4), (K, 1))[present], ox[present], oy[present]))
+    data = {"objects": "obj.csv", "gates": {"radius": radius}, **over.pop("data", {})}
+    spec = box_case(tmp, scans, x, y, n_scans_table=K, name=name, data=data, **over)
+    cols = {"scan": np.arange(K), **(scans_columns or {})}
+    write_csv(tmp / "scans.csv", list(cols), zip(*cols.values()))
+    window_scans = 1.0 - present.sum(axis=1) * np.pi * radius**2 / (1000.0 * 500.0)
+    return spec, np.bincount(scans[~inside], minlength=K), window_scans
+
+
 def quick_fit(spec_path, **over):
     """fit() of a spec file with optional overrides, quietly."""
     from sceneprior.fitting import fit

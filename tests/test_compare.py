@@ -29,7 +29,7 @@ import numpy as np
 import pytest
 import scipy.stats as st
 
-from conftest import box_case, box_recording, quick_fit, write_csv, write_spec
+from conftest import box_recording, lane_gate_recording, quick_fit, write_csv, write_spec
 from sceneprior.errors import InputError
 
 BOX = 1000.0 * 500.0
@@ -318,37 +318,20 @@ GATE_R = 100.0  # m: disc gates in four lane slots, wholly inside the box and ap
 @pytest.fixture(scope="module")
 def gated_sites_fit(tmp_path_factory):
     """Four sites, clutter uniform over the box at a known rate per site; known objects in up
-    to four lane slots per scan (gates of radius 100 m): every slot in every scan of mast0 and
-    mast3 (4πr², 25 % of the window gated), none at mast1, each slot with probability ½ at
-    mast2. Returns (FitResult, n outside gates per scan, site labels, |W_k|/|W| per scan)."""
+    to four lane slots per scan (conftest.lane_gate_recording, gates of radius 100 m): every
+    slot in every scan of mast0 and mast3 (4πr², 25 % of the window gated), none at mast1,
+    each slot with probability ½ at mast2. Returns (FitResult, n outside gates per scan, site
+    labels, |W_k|/|W| per scan)."""
     tmp = tmp_path_factory.mktemp("gated-sites")
     rng = np.random.default_rng(314)
     rates = np.array([6.0, 7.5, 5.0, 12.0])  # per scan over the whole box
     sidx = np.repeat(np.arange(4), GATED_SITE_SCANS)
     site = np.array([f"mast{j}" for j in sidx])
-    K = sidx.size
-    p_slot = np.array([1.0, 0.0, 0.5, 1.0])[sidx]
-    present = rng.uniform(size=(K, 4)) < p_slot[:, None]
-    ox = np.where(np.arange(4) % 2 == 0, rng.uniform(GATE_R, 500.0 - GATE_R, (K, 4)),
-                  rng.uniform(500.0 + GATE_R, 1000.0 - GATE_R, (K, 4)))
-    oy = np.where(np.arange(4) < 2, 125.0, 375.0) * np.ones((K, 1))
-    oscan = np.repeat(np.arange(K)[:, None], 4, axis=1)
-    n_all = rng.poisson(rates[sidx])
-    scans = np.repeat(np.arange(K), n_all)
-    x, y = np.round(rng.uniform(0, 1000, n_all.sum()), 3), np.round(rng.uniform(0, 500, n_all.sum()), 3)
-    inside = np.zeros(x.size, bool)
-    for j in range(4):  # distance to each slot's object of the detection's own scan
-        d = np.hypot(x - ox[scans, j], y - oy[scans, j])
-        inside |= present[scans, j] & (d <= GATE_R)
-    n_out = np.bincount(scans[~inside], minlength=K)
-    window_scans = 1.0 - present.sum(axis=1) * math.pi * GATE_R**2 / BOX  # |W_k|/|W|
-    write_csv(tmp / "obj.csv", ["scan", "object", "x", "y"],
-              zip(oscan[present], np.tile(np.arange(4), (K, 1))[present], ox[present], oy[present]))
-    spec = box_case(tmp, scans, x, y, n_scans_table=K, name="gated-sites", model={"kind": "sites"},
-                    data={"objects": "obj.csv", "gates": {"radius": GATE_R}},
-                    sampler={"chains": 2, "warmup": 400, "draws": 1000, "seed": 6, "progress": False},
-                    output={"dir": str(tmp / "runs")})
-    write_csv(tmp / "scans.csv", ["scan", "site"], zip(range(K), site))
+    spec, n_out, window_scans = lane_gate_recording(
+        tmp, rng, rates[sidx], np.array([1.0, 0.0, 0.5, 1.0])[sidx], radius=GATE_R, name="gated-sites",
+        scans_columns={"site": site}, model={"kind": "sites"},
+        sampler={"chains": 2, "warmup": 400, "draws": 1000, "seed": 6, "progress": False},
+        output={"dir": str(tmp / "runs")})
     return quick_fit(spec), n_out, site, window_scans
 
 

@@ -9,7 +9,10 @@ alone. Contents:
   view drawn as fans in x/y, permanent masks hatched; exceedance-probability maps when
   intensity.nc holds any (variables named ``exceed*``);
 * per-scan detection counts against the posterior predictive count distribution
-  (a mixture of Poisson(rate draw) laws, one fresh rate draw per scan). The per-scan
+  (:func:`count_predictive`: each scan's mixture over posterior draws of its own count law,
+  with the per-scan means of :mod:`sceneprior.predictive` — per-scan windows W_k when known
+  objects were gated out, per-scan multipliers, over-dispersion), as a histogram and per
+  scan in time order. The per-scan
   counts come from the run's scans.nc; a run without it falls back to re-reading the
   recording named in summary.json — only when its SHA-256 still matches; otherwise the
   page says why the panel is missing;
@@ -227,26 +230,122 @@ def _flat_draws(post, name, limit=None):
     return flat
 
 
-def _counts_figure(counts, rate_draws):
-    from scipy.stats import binom, poisson
+COUNT_WORK = 2_000_000  # count-law evaluations (draws × scans × count values) per chunk
+COUNT_TOTAL = 50_000_000  # ... in all: fewer draws for long recordings (at least COUNT_DRAWS_MIN)
+COUNT_DRAWS, COUNT_DRAWS_MIN = 400, 20  # posterior draws for the count figure
 
+
+@dataclasses.dataclass
+class CountPredictive:
+    """Per-scan counts against the posterior predictive (one fresh posterior draw per scan).
+
+    Scan k's predictive law is the mixture over the posterior draws s of Poisson(μ_sk), or of
+    NB(mean μ_sk, variance μ_sk + φ_sμ_sk²) when over-dispersed, with μ_sk the kind's per-scan
+    mean from :func:`sceneprior.predictive.load_draws` — with gates (m_sk the per-scan
+    multiplier) μ_sk = m_sk(Λ_s − R_sk) = m_sk Σ_c λ_sc |c ∩ W_k|, ρ_s|W_k| for a uniform map."""
+
+    n: np.ndarray  # (K,) observed counts in the window (outside gates)
+    order: np.ndarray  # (K,) scan indices in time order
+    k: np.ndarray  # (J,) count values 0 … J−1
+    observed: np.ndarray  # (J,) scans with each count
+    expected: np.ndarray  # (J,) Σ_k P(N_k = j): expected number of scans with count j
+    band_lo: np.ndarray  # (J,) 5 % / 95 % of Binomial(K, expected/K) per count value
+    band_hi: np.ndarray
+    scan_mean: np.ndarray  # (K,) predictive mean count of each scan
+    scan_lo: np.ndarray  # (K,) 5 % and 95 % quantiles of each scan's predictive law
+    scan_hi: np.ndarray
+    draws: int  # posterior draws used
+    per_scan: bool  # True: the kind's per-scan means; False: the rate for every scan (fallback)
+
+
+def _mixture_cdf(mu: np.ndarray, phi: np.ndarray | None, n_values: int) -> np.ndarray:
+    """(K, J) P(N_k ≤ j) of the per-scan mixtures over draws (mu (S, K), phi (S,) or None),
+    chunked over scans (``COUNT_WORK``); count laws from :func:`sceneprior.checks.count_cdf`."""
+    from .checks import count_cdf
+
+    S, K = mu.shape
+    j = np.arange(n_values, dtype=float)
+    out = np.empty((K, n_values))
+    step = max(1, int(COUNT_WORK // max(S * n_values, 1)))
+    ph = None if phi is None else np.asarray(phi, float)[:, None, None]
+    for k0 in range(0, K, step):
+        F, _ = count_cdf(j[None, None, :], mu[:, k0:k0 + step, None], ph)
+        out[k0:k0 + step] = F.mean(axis=0)
+    return out
+
+
+def count_predictive(run, counts: np.ndarray, max_draws: int | None = None) -> CountPredictive:
+    """The data of the per-scan count figure. Per-scan means μ_sk come from the run
+    (``predictive.load_draws``: per-scan windows, multipliers, φ); a run whose per-scan data
+    cannot be read back falls back to the rate for every scan (``per_scan`` False).
+    ``max_draws`` (default: ``COUNT_DRAWS``, fewer for long recordings) evenly spaced draws."""
+    from scipy.stats import binom, nbinom, poisson
+
+    from .errors import InputError
+
+    counts = np.asarray(counts, dtype=np.int64)
     K = counts.size
-    kmax = int(max(counts.max(), poisson.ppf(0.9995, rate_draws.max()))) + 1
-    k = np.arange(kmax + 1)
-    pmf = poisson.pmf(k[:, None], rate_draws[None, :]).mean(axis=1)  # mixture over rate draws
-    obs = np.bincount(counts, minlength=kmax + 1)[: kmax + 1]
-    lo, hi = binom.ppf(0.05, K, pmf), binom.ppf(0.95, K, pmf)
-    fig = _figure(6.4, 3.6)
-    ax = fig.subplots()
+    if max_draws is None:
+        max_draws = int(np.clip(COUNT_TOTAL // max(K * (int(counts.max(initial=0)) + 2), 1),
+                                COUNT_DRAWS_MIN, COUNT_DRAWS))
+    try:
+        from .predictive import load_draws
+
+        rd = load_draws(run, max_draws=max_draws)
+        if rd.n_scans != K:
+            raise InputError("scan counts differ")
+        mu, phi, order, per_scan = rd.mu(), rd.phi, rd.order, True  # mu (S, K), or (S, 1): same for all
+    except (InputError, OSError, KeyError):
+        rate = _flat_draws(run.posterior.posterior, "rate", limit=max_draws).reshape(-1)
+        mu, phi, order, per_scan = rate[:, None], None, np.arange(K), False
+    mu = np.maximum(np.asarray(mu, float), 0.0)
+    top = mu.max()
+    q_top = (poisson.ppf(0.9995, top) if phi is None
+             else nbinom.ppf(0.9995, 1.0 / phi.max(), 1.0 / (1.0 + phi.max() * top)))
+    J = int(max(counts.max(initial=0), q_top)) + 2
+    F = _mixture_cdf(mu, phi, J)
+    if mu.shape[1] != K:  # one law for every scan
+        F = np.repeat(F, K, axis=0)
+    pmf = np.diff(F, axis=1, prepend=0.0)
+    expected = pmf.sum(axis=0)
+    pbar = np.clip(expected / K, 0.0, 1.0)
+
+    def quantile(q):  # smallest j with P(N_k ≤ j) ≥ q per scan
+        return np.minimum((F < q).sum(axis=1), J - 1)
+
+    return CountPredictive(
+        n=counts, order=np.asarray(order), k=np.arange(J), observed=np.bincount(counts, minlength=J)[:J],
+        expected=expected, band_lo=binom.ppf(0.05, K, pbar), band_hi=binom.ppf(0.95, K, pbar),
+        scan_mean=np.broadcast_to(mu.mean(axis=0), (K,)), scan_lo=quantile(0.05), scan_hi=quantile(0.95),
+        draws=int(mu.shape[0]), per_scan=per_scan)
+
+
+def _counts_figure(cp: CountPredictive):
+    K = cp.n.size
+    fig = _figure(6.4, 6.4)
+    ax, ax_t = fig.subplots(2, 1, gridspec_kw={"height_ratios": [1.0, 1.0], "hspace": 0.45})
     _style(ax)
-    ax.bar(k, obs, width=0.8, color=MIST, edgecolor=TEAL, linewidth=0.6, label=f"observed ({K} scans)")
-    ax.fill_between(k, lo, hi, step="mid", color=SAND, alpha=0.55, linewidth=0,
+    _style(ax_t)
+    ax.fill_between(cp.k, cp.band_lo, cp.band_hi, step="mid", color=SAND, alpha=0.55, linewidth=0,
                     label="predictive 5–95 % band per bin")
-    ax.plot(k, K * pmf, color=RUST, marker="o", ms=3, lw=1.2, label="posterior predictive expectation")
+    ax.bar(cp.k, cp.observed, width=0.8, color=MIST, edgecolor=TEAL, linewidth=0.6, alpha=0.85,
+           label=f"observed ({K} scans)")
+    ax.plot(cp.k, cp.expected, color=RUST, marker="o", ms=3, lw=1.2, label="posterior predictive expectation")
     ax.set_xlabel("detections in a scan (inside the window)")
     ax.set_ylabel("number of scans")
     ax.set_title("Per-scan counts against the posterior predictive", fontsize=10, loc="left")
     ax.legend(fontsize=7, frameon=False)
+    t = np.arange(K)
+    o = cp.order
+    ax_t.fill_between(t, cp.scan_lo[o], cp.scan_hi[o], step="mid", color=SAND, alpha=0.55, linewidth=0,
+                      label="predictive 5–95 % of each scan")
+    ax_t.plot(t, cp.scan_mean[o], color=RUST, lw=0.9, label="predictive mean of each scan")
+    ax_t.plot(t, cp.n[o], ls="none", marker="o", ms=2.0 if K <= 2000 else 0.8, color=TEAL, alpha=0.8,
+              label="observed")
+    ax_t.set_xlabel("scan, in time order")
+    ax_t.set_ylabel("detections in the scan's window")
+    ax_t.set_title("Each scan against its own predictive", fontsize=10, loc="left")
+    ax_t.legend(fontsize=7, frameon=False, ncol=3, loc="upper right")
     return fig
 
 
@@ -394,11 +493,18 @@ def build_report(run) -> str:
     counts, why = _scan_counts(run, region)
     parts.append("<section><h2>How many per scan</h2>")
     if counts is not None:
-        f = _counts_figure(counts, rate[:: max(1, rate.size // 2000)])
-        parts.append(_fig_html(_png(f), "per-scan counts", (
-            "Histogram of detections per scan in the window (empty scans included) against the posterior "
-            "predictive distribution of a scan's count: a mixture of Poisson laws over the posterior rate draws. "
-            "The band is the 5–95 % range of each bin's count if the scans followed that law.")))
+        cp = count_predictive(run, counts)
+        law = ("each scan's own predictive law: a mixture over posterior draws of Poisson (negative-binomial when "
+               "over-dispersed) laws with that scan's expected count — its window (the window minus its gates, "
+               "when known objects were gated out) and per-scan terms included"
+               if cp.per_scan else
+               "a mixture of Poisson laws over the posterior rate draws, the same for every scan (this run's "
+               "per-scan data could not be read back)")
+        parts.append(_fig_html(_png(_counts_figure(cp)), "per-scan counts", (
+            f"Top: histogram of detections per scan in the window (empty scans included) against {law}; "
+            f"{cp.draws} posterior draws. The line is the expected number of scans with each count, the band the "
+            "5–95 % range of a Binomial(K, expected/K) count per bin (slightly wide when the scans' laws differ). "
+            "Bottom: each scan's count in time order against its predictive mean and 5–95 % range.")))
     else:
         parts.append(f'<p class="note">Per-scan count histogram not drawn: {esc(why)}.</p>')
     f = _rate_figure(rate, s)
