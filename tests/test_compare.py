@@ -139,8 +139,11 @@ def two_masts(tmp_path_factory):
         d = tmp / "demo-data" / sub
         raw = tomllib.loads((REPO / "models" / f"lowmarsh-{mast}.toml").read_text())
         raw["model"] = {"kind": "uniform"}  # the masts' specs with the conjugate uniform model
+        data = {"detections": str(d / "detections.csv"), "scans": str(d / "scans.csv")}
+        if "objects" in raw["data"]:  # the breakwater's vessels, gated out
+            data["objects"] = str(d / "objects.csv")
         spec = spec_from_dict(raw, base_dir=REPO / "models", source=f"lowmarsh-{mast}.toml", overrides={
-            "data": {"detections": str(d / "detections.csv"), "scans": str(d / "scans.csv")},
+            "data": data,
             "sampler": {"method": "exact", "chains": 4, "draws": 500, "seed": 1, "progress": False},
             "output": {"dir": str(tmp / "runs")}})
         paths[mast] = write_run(fit(spec, progress=False, log=lambda m: None))
@@ -179,6 +182,7 @@ def test_two_masts_overlap_matches_shapely(two_masts, capsys):
     assert (tmp / "cmp" / "log_ratio.nc").is_file()
     saved = json.loads((tmp / "cmp" / "comparison.json").read_text())
     assert saved["runs"] == ["lowmarsh-breakwater", "lowmarsh-quay"] and "_draws" not in saved
+    assert json.loads((paths["breakwater"] / "summary.json").read_text())["data"]["dropped_in_gates"] > 0
     assert main(["compare", str(paths["breakwater"]), str(paths["quay"])]) == 0
     out = capsys.readouterr().out
     assert "P(rate_lowmarsh-breakwater > rate_lowmarsh-quay)" in out and "shared frame 'lowmarsh'" in out
