@@ -390,10 +390,12 @@ class _Pieces:
     mask_union: object  # shapely union of the PolygonMasks, or None
     sides: int  # chords per arc N (polar); 1 for Cartesian
     n_cells: int  # cells of the grid
+    unit: np.ndarray | None = None  # polar: (m1, N+1, 2), lat[i, j, k] = e0[i]·unit[j, k]
 
     def __post_init__(self):
-        self.lat_x = np.ascontiguousarray(self.lat[..., 0]).ravel()
-        self.lat_y = np.ascontiguousarray(self.lat[..., 1]).ravel()
+        if self.unit is not None:  # small tables (cache-resident) for the per-vertex gathers
+            self.unit_x = np.ascontiguousarray(self.unit[..., 0]).ravel()
+            self.unit_y = np.ascontiguousarray(self.unit[..., 1]).ravel()
 
     @property
     def m1(self) -> int:
@@ -422,16 +424,16 @@ def _polar_sides(r1, r2, dth, cell_area, tol):
 
 
 def _polar_lattice(rb, tb, sides):
-    """(m0+1, m1, N+1, 2) vertices: radius rb[i]·sqrt(α_j / sin α_j), N+1 bearings per column."""
+    """(m0+1, m1, N+1, 2) vertices rb[i]·U[j, k] and U (m1, N+1, 2): U[j, k] the point at
+    radius sqrt(α_j / sin α_j) and the k-th of N+1 bearings of column j."""
     dth = np.deg2rad(np.diff(tb))
     alpha = dth / sides
     f = np.sqrt(np.where(alpha > 0, alpha / np.sin(np.where(alpha > 0, alpha, 1.0)), 1.0))
     frac = np.linspace(0.0, 1.0, sides + 1)
     bear = tb[:-1, None] + np.diff(tb)[:, None] * frac[None, :]  # (m1, N+1) [deg]
     bear[:, 0], bear[:, -1] = tb[:-1], tb[1:]
-    rad = rb[:, None, None] * f[None, :, None]  # (m0+1, m1, 1)
-    x, y = polar_to_cartesian(rad, bear[None, :, :])
-    return np.stack([x, y], axis=-1)
+    unit = np.stack(polar_to_cartesian(f[:, None], bear), axis=-1)
+    return rb[:, None, None, None] * unit[None], unit
 
 
 def _build_pieces(region: Region, grid: Grid, lines: int, polar_tol: float) -> _Pieces:
@@ -454,7 +456,7 @@ def _build_pieces(region: Region, grid: Grid, lines: int, polar_tol: float) -> _
         lat = np.stack([gx, gy], axis=-1)  # (m0+1, m1+1, 2)
         verts = np.stack([lat[:-1, :-1], lat[1:, :-1], lat[1:, 1:], lat[:-1, 1:]], axis=2)
         verts = verts.reshape(-1, 4, 2)
-        sides = 1
+        sides, unit = 1, None
     else:
         # elementary rectangles of grid edges, bounds and SectorMasks (geometry's decomposition)
         rb, tb, open_ = region._polar_decomposition(grid, split_wide=False)
@@ -470,7 +472,7 @@ def _build_pieces(region: Region, grid: Grid, lines: int, polar_tol: float) -> _
         area_full = 0.5 * (hi0 - lo0) * (hi0 + lo0) * dth  # = polygon area by construction
         sides = _polar_sides(lo0[active], hi0[active], dth[active],
                              cell_area_grid[grid_cell[active]], polar_tol)
-        lat = _polar_lattice(rb, tb, sides)
+        lat, unit = _polar_lattice(rb, tb, sides)
         # piece (i, j): outer arc with decreasing bearing (counter-clockwise, bearings run
         # clockwise), then the inner arc with increasing bearing
         outer = lat[1:, :, ::-1, :]
@@ -498,7 +500,7 @@ def _build_pieces(region: Region, grid: Grid, lines: int, polar_tol: float) -> _
         area_w[idx] = a_diff[cut]
         edge_ptr, edges = _ragged_edges(diff, idx, n)
     pieces = _Pieces(region.frame, e0, e1, lo0, hi0, lo1, hi1, active, partial, grid_cell,
-                     area_w, lat, verts, edge_ptr, edges, mu, sides, grid.n_cells)
+                     area_w, lat, verts, edge_ptr, edges, mu, sides, grid.n_cells, unit)
     return pieces
 
 
@@ -537,10 +539,13 @@ def _grid_expand(c0, c1):
     """
     tot = c0 * c1
     start = np.cumsum(tot) - tot
-    rec = np.repeat(np.arange(tot.size), tot)
-    q = np.arange(int(tot.sum()), dtype=np.int64) - start[rec]
-    n1 = c1[rec]
-    return rec, q // n1, q % n1, start
+    # rows (record, d0) first, then their elements: repeats only (no integer division)
+    row_rec = np.repeat(np.arange(tot.size), c0)
+    d0_row = np.arange(row_rec.size) - (np.cumsum(c0) - c0)[row_rec]
+    n1_row = c1[row_rec]
+    row_first = start[row_rec] + d0_row * n1_row  # position of element (record, d0, 0)
+    d1 = np.arange(int(tot.sum()), dtype=np.int64) - np.repeat(row_first, n1_row)
+    return np.repeat(row_rec, n1_row), np.repeat(d0_row, n1_row), d1, start
 
 
 def _boxes(gates: Gates, sel: slice, p: _Pieces):
@@ -595,13 +600,13 @@ def _edge_fast(ax, ay, bx, by):
     # crossing of y = 0 (half-open) at x = cr/dy > 0: upward (+1) iff cr > 0, downward (−1)
     # iff cr < 0, i.e. the contribution is sign(cr) when cr and dy have the same sign
     cross = ((ay <= 0.0) != (by <= 0.0)) & ((cr > 0.0) == (dy > 0.0))
-    W = np.where(cross, np.sign(cr), 0.0).astype(np.int8)
+    W = (cross & (cr > 0.0)).view(np.int8) - (cross & (cr < 0.0)).view(np.int8)
     qa = dx * dx + dy * dy
     qb = ax * dx + ay * dy
     qc = ax * ax + ay * ay - 1.0
     disc = qb * qb - qa * qc
     pos = (disc > 0.0) & (qa > 0.0)
-    sq = np.sqrt(np.where(pos, disc, 0.0))
+    sq = np.sqrt(np.maximum(disc, 0.0))
     hit = np.flatnonzero(pos & (-qb - sq < qa) & (sq > qb))  # t1 < 1 and t2 > 0
     F = np.zeros(ax.shape)
     D = np.zeros(ax.shape, bool)
@@ -651,6 +656,15 @@ def _ragged_areas(gates: Gates, g, piece, p: _Pieces):
     return gates.l11[g] * gates.l22[g] * s
 
 
+def _arc_sums(v, n, stride):
+    """Σ_{k<n} v[a·stride + k] per arc a (chord k of every arc is the strided view v[k::stride];
+    booleans are OR-ed); v holds arcs·stride − 1 values."""
+    out = v[0::stride].copy()
+    for k in range(1, n):  # fixed small loop over the chords of an arc (N ≤ 256)
+        out += v[k::stride]
+    return out
+
+
 def _box_areas(gates: Gates, rec, p: _Pieces):
     """A = |G_g ∩ piece ∩ W| for every piece of every box record (exact Green's theorem).
 
@@ -681,25 +695,26 @@ def _box_areas(gates: Gates, rec, p: _Pieces):
         deg = DH[hb] | DH[ht] | DV[vr] | DV[vl]
     else:
         N = p.sides
-        s1, s0 = N + 1, m1 * (N + 1)  # strides of j and i in the flat vertex lattice
+        s1 = N + 1  # vertices per column of the polar lattice
         # vertices (i, j, k) of each record's box, mapped once to the unit-disc frame
         rv, dv0, dv1, sV = _grid_expand(n0 + 1, n1 * s1)
-        v = (f0[rv] + dv0) * s0 + f1[rv] * s1 + dv1
+        rad = p.e0[f0[rv] + dv0]  # vertex (i, j, k) = e0[i]·unit[j, k]
+        k = f1[rv] * s1 + dv1
         cnt = (n0 + 1) * n1 * s1  # vertices per record: repeat the gate's parameters
         par = [np.repeat(a[g_r], cnt) for a in (gates.x, gates.y, gates.l11, gates.l21, gates.l22)]
-        ux, uy = _to_unit(*par, p.lat_x[v], p.lat_y[v])
+        ux, uy = _to_unit(*par, rad * p.unit_x[k], rad * p.unit_y[k])
         # arc chords (i, j, k) → (i, j, k+1): consecutive vertices; the "chord" from k = N to
         # the next column's k = 0 is evaluated too (contiguous slices, no gather) and dropped
         FA, WA, DA = _edge_fast(ux[:-1], uy[:-1], ux[1:], uy[1:])
-        FA = np.append(FA, 0.0).reshape(-1, s1)[:, :N].sum(axis=1)
-        WA = np.append(WA, 0).reshape(-1, s1)[:, :N].sum(axis=1, dtype=np.int64)
-        DA = np.append(DA, False).reshape(-1, s1)[:, :N].any(axis=1)
-        sA = sV // s1  # first arc (i, j) of each record in the arc arrays
-        rp, di, dj, _ = _grid_expand(n0, n1)
-        ain = sA[rp] + di * n1[rp] + dj  # inner arc of piece (i, j)
-        aout = ain + n1[rp]  # outer arc
-        v0 = sV[rp] + (di * n1[rp] + dj) * s1  # vertex (i, j, 0) in the record's vertices
-        vo = v0 + n1[rp] * s1  # vertex (i+1, j, 0)
+        # sum the N chords of each arc: strided views (chord k of every arc), no copies
+        FA, WA, DA = _arc_sums(FA, N, s1), _arc_sums(WA.astype(np.int64), N, s1), _arc_sums(DA, N, s1)
+        rp, di, dj, sP = _grid_expand(n0, n1)
+        # piece (i, j) is the record's element di·n1 + dj: its inner arc (i, j) has that offset
+        # from the record's first arc sV/s1, its outer arc (i+1, j) n1 more
+        ain = np.arange(rp.size) + (sV // s1 - sP)[rp]
+        aout = ain + n1[rp]
+        v0 = ain * s1  # vertex (i, j, 0) in the record's vertices
+        vo = aout * s1  # vertex (i+1, j, 0)
         # radial edges: at the column's first bearing inward, at its last bearing outward
         FL, WL, DL = _edge_fast(ux[vo], uy[vo], ux[v0], uy[v0])
         FR, WR, DR = _edge_fast(ux[v0 + N], uy[v0 + N], ux[vo + N], uy[vo + N])
@@ -888,10 +903,9 @@ def _process_block(gates: Gates, sel: slice, p: _Pieces, lines: int):
     if rec[0].size == 0:
         return np.zeros(0, np.int32), np.zeros(0, np.int32), np.zeros(0), 0, 0
     g, piece, A = _box_areas(gates, rec, p)
-    keep = p.active[piece]
-    keep &= A > 1e-13 * p.area_w[piece]
-    g, piece, A = g[keep], piece[keep], A[keep]
-    A = np.minimum(A, p.area_w[piece])
+    aw = p.area_w[piece]
+    keep = np.flatnonzero(p.active[piece] & (A > 1e-13 * aw))
+    g, piece, A = g[keep], piece[keep], np.minimum(A[keep], aw[keep])
     n_piece = p.lo0.size
     if p.frame == "polar" and g.size and _may_repeat(gates, sel, p):
         # a bearing span + gate width ≥ 360° can reach one piece through two bearing copies
