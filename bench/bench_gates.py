@@ -14,16 +14,27 @@ the machine inflates wall time but much less CPU time), the peak memory (peak RS
 resource.getrusage minus the RSS before the call; with --tracemalloc also the peak of
 traced allocations, numpy's included), and the ratio of the wall time to the 30 s target.
 
+``--against REV`` measures side by side, in this one process and on the same case, the
+gates.py of git revision REV (loaded from ``git show REV:src/sceneprior/gates.py``) and the
+working tree's, alternating ``--repeat`` times (default 2), and prints the largest
+difference of their removed areas [m²] (peak memory is then not separable and not printed).
+
     python bench/bench_gates.py [--scans 100000] [--gates 10] [--threads 1] [--polar] [--polar-tol 2e-3]
+    python bench/bench_gates.py --polar --against HEAD~1 --detections 0
 """
 
 from __future__ import annotations
 
 import argparse
+import importlib.util
 import os
 import resource
+import subprocess
+import sys
+import tempfile
 import time
 import tracemalloc
+from pathlib import Path
 
 import numpy as np
 
@@ -69,6 +80,44 @@ def make_case(n_scans: int, per_scan: int, polar: bool, seed: int = 2024):
     return region, grid, Gates.concat(gd, ge)
 
 
+def _gates_at(rev: str):
+    """The gates module of git revision ``rev``, imported as sceneprior._gates_<rev>."""
+    root = Path(__file__).resolve().parents[1]
+    src = subprocess.run(["git", "-C", str(root), "show", f"{rev}:src/sceneprior/gates.py"],
+                         capture_output=True, text=True, check=True).stdout
+    path = Path(tempfile.mkdtemp(prefix="bench-gates-")) / "gates.py"
+    path.write_text(src)
+    name = "sceneprior._gates_" + "".join(c if c.isalnum() else "_" for c in rev)
+    spec = importlib.util.spec_from_file_location(name, path)
+    mod = importlib.util.module_from_spec(spec)
+    sys.modules[name] = mod  # dataclasses look their module up here
+    spec.loader.exec_module(mod)
+    return mod
+
+
+def side_by_side(args, region, grid, gates, kw) -> None:
+    import sceneprior.gates as current
+
+    old = _gates_at(args.against)
+    fields = ("scan_index", "x", "y", "l11", "l21", "l22", "n_scans", "source_index")
+    res = {}
+    for _ in range(args.repeat):
+        for label, mod in ((args.against, old), ("working tree", current)):
+            g = mod.Gates(**{f: getattr(gates, f) for f in fields})
+            cpu0, t0 = time.process_time(), time.perf_counter()
+            ex = mod.removed_area(g, region, grid, **kw)
+            wall, cpu = time.perf_counter() - t0, time.process_time() - cpu0
+            print(f"  {label:>14}: removed_area wall {wall:.2f} s, CPU {cpu:.2f} s "
+                  f"(ratio to the {TARGET_S:.0f} s target {wall / TARGET_S:.2f}), load average "
+                  f"{os.getloadavg()[0]:.2f}", flush=True)
+            res[label] = ex
+            del ex, g
+    a, b = res[args.against], res["working tree"]
+    d = abs(a.removed - b.removed)
+    print(f"  largest |difference| of removed[k, c]: {d.max() if d.nnz else 0.0:.3g} m²; of the per-scan "
+          f"totals: {abs(a.per_scan - b.per_scan).max():.3g} m² (nnz {a.removed.nnz} vs {b.removed.nnz})")
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--scans", type=int, default=100_000)
@@ -80,6 +129,8 @@ def main() -> None:
     ap.add_argument("--tracemalloc", action="store_true", help="also trace allocations (slower)")
     ap.add_argument("--detections", type=int, default=1_000_000,
                     help="detections to flag with in_gates (0: skip)")
+    ap.add_argument("--against", metavar="REV", help="also time gates.py of git revision REV, side by side")
+    ap.add_argument("--repeat", type=int, default=2, help="alternations with --against")
     args = ap.parse_args()
 
     region, grid, gates = make_case(args.scans, args.gates, args.polar)
@@ -91,6 +142,9 @@ def main() -> None:
     print(f"case: {'polar' if args.polar else 'cartesian'} 128x128 grid, {args.scans} scans x "
           f"{args.gates} gates = {gates.n_gates} gates, threads={args.threads}, "
           f"cpus={os.cpu_count()}, load average {os.getloadavg()[0]:.2f}")
+    if args.against:
+        side_by_side(args, region, grid, gates, kw)
+        return
     if args.tracemalloc:
         tracemalloc.start()
     rss0 = _rss_mb()
