@@ -231,7 +231,8 @@ def _flat_draws(post, name, limit=None):
 
 
 COUNT_WORK = 2_000_000  # count-law evaluations (draws × scans × count values) per chunk
-COUNT_TOTAL = 50_000_000  # ... in all: fewer draws for long recordings (at least COUNT_DRAWS_MIN)
+COUNT_TOTAL = 20_000_000  # ... in all: fewer draws for long recordings (at least COUNT_DRAWS_MIN)
+NB_COST = 5  # a negative-binomial cdf (betainc) costs about 5 Poisson ones (pdtr)
 COUNT_DRAWS, COUNT_DRAWS_MIN = 400, 20  # posterior draws for the count figure
 
 
@@ -260,16 +261,18 @@ class CountPredictive:
 
 def _mixture_cdf(mu: np.ndarray, phi: np.ndarray | None, n_values: int) -> np.ndarray:
     """(K, J) P(N_k ≤ j) of the per-scan mixtures over draws (mu (S, K), phi (S,) or None),
-    chunked over scans (``COUNT_WORK``); count laws from :func:`sceneprior.checks.count_cdf`."""
-    from .checks import count_cdf
+    chunked over scans (``COUNT_WORK``): scipy.stats.poisson, or nbinom(n = 1/φ,
+    p = 1/(1 + φμ)) (mean μ, variance μ + φμ²)."""
+    from scipy.stats import nbinom, poisson
 
     S, K = mu.shape
-    j = np.arange(n_values, dtype=float)
+    j = np.arange(n_values, dtype=float)[None, None, :]
     out = np.empty((K, n_values))
     step = max(1, int(COUNT_WORK // max(S * n_values, 1)))
     ph = None if phi is None else np.asarray(phi, float)[:, None, None]
     for k0 in range(0, K, step):
-        F, _ = count_cdf(j[None, None, :], mu[:, k0:k0 + step, None], ph)
+        m = mu[:, k0:k0 + step, None]
+        F = poisson.cdf(j, m) if ph is None else nbinom.cdf(j, 1.0 / ph, 1.0 / (1.0 + ph * m))
         out[k0:k0 + step] = F.mean(axis=0)
     return out
 
@@ -278,16 +281,21 @@ def count_predictive(run, counts: np.ndarray, max_draws: int | None = None) -> C
     """The data of the per-scan count figure. Per-scan means μ_sk come from the run
     (``predictive.load_draws``: per-scan windows, multipliers, φ); a run whose per-scan data
     cannot be read back falls back to the rate for every scan (``per_scan`` False).
-    ``max_draws`` (default: ``COUNT_DRAWS``, fewer for long recordings) evenly spaced draws."""
+    ``max_draws`` (default: ``COUNT_DRAWS``, fewer for long recordings and over-dispersed
+    models, within ``COUNT_TOTAL`` count-law evaluations) evenly spaced draws."""
     from scipy.stats import binom, nbinom, poisson
 
     from .errors import InputError
 
     counts = np.asarray(counts, dtype=np.int64)
     K = counts.size
-    if max_draws is None:
-        max_draws = int(np.clip(COUNT_TOTAL // max(K * (int(counts.max(initial=0)) + 2), 1),
-                                COUNT_DRAWS_MIN, COUNT_DRAWS))
+    auto = max_draws is None
+
+    def budget(cost):  # draws within COUNT_TOTAL evaluations of ``cost`` each per scan
+        return int(np.clip(COUNT_TOTAL // max(cost * K, 1), COUNT_DRAWS_MIN, COUNT_DRAWS))
+
+    if auto:
+        max_draws = budget(int(counts.max(initial=0)) + 2)
     try:
         from .predictive import load_draws
 
@@ -303,6 +311,9 @@ def count_predictive(run, counts: np.ndarray, max_draws: int | None = None) -> C
     q_top = (poisson.ppf(0.9995, top) if phi is None
              else nbinom.ppf(0.9995, 1.0 / phi.max(), 1.0 / (1.0 + phi.max() * top)))
     J = int(max(counts.max(initial=0), q_top)) + 2
+    if auto and phi is not None and mu.shape[0] > budget(NB_COST * J):
+        keep = np.unique(np.linspace(0, mu.shape[0] - 1, budget(NB_COST * J)).round().astype(int))
+        mu, phi = mu[keep], phi[keep]
     F = _mixture_cdf(mu, phi, J)
     if mu.shape[1] != K:  # one law for every scan
         F = np.repeat(F, K, axis=0)
@@ -331,6 +342,8 @@ def _counts_figure(cp: CountPredictive):
     ax.bar(cp.k, cp.observed, width=0.8, color=MIST, edgecolor=TEAL, linewidth=0.6, alpha=0.85,
            label=f"observed ({K} scans)")
     ax.plot(cp.k, cp.expected, color=RUST, marker="o", ms=3, lw=1.2, label="posterior predictive expectation")
+    shown = np.flatnonzero((cp.observed > 0) | (cp.expected >= 0.05))  # the tail beyond: < 0.05 scans per bin
+    ax.set_xlim(-1.0, float(shown.max(initial=0)) + 1.0)
     ax.set_xlabel("detections in a scan (inside the window)")
     ax.set_ylabel("number of scans")
     ax.set_title("Per-scan counts against the posterior predictive", fontsize=10, loc="left")
