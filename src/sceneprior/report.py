@@ -355,6 +355,10 @@ def _counts_figure(cp: CountPredictive):
     ax_t.plot(t, cp.scan_mean[o], color=RUST, lw=0.9, label="predictive mean of each scan")
     ax_t.plot(t, cp.n[o], ls="none", marker="o", ms=2.0 if K <= 2000 else 0.8, color=TEAL, alpha=0.8,
               label="observed")
+    from matplotlib.ticker import MaxNLocator
+
+    ax.xaxis.set_major_locator(MaxNLocator(integer=True))  # counts are whole numbers
+    ax_t.yaxis.set_major_locator(MaxNLocator(integer=True))
     ax_t.set_xlabel("scan, in time order")
     ax_t.set_ylabel("detections in the scan's window")
     ax_t.set_title("Each scan against its own predictive", fontsize=10, loc="left")
