@@ -55,12 +55,9 @@ def _setup(n, kernel, per_cell, K, seed=0):
         return BinnedStats(reg, g, np.asarray(counts, np.int64), K * area, area, area, K, np.arange(K),
                            np.zeros(K, np.int64), sp.csr_matrix((K, g.n_cells)))
 
-    setup = kind.setup(stats_for(np.zeros(n * n)), prior, ModelSpec("lgcp", {}, {"kernel": kernel}))
+    spectrum = lgcp.plan(stats_for(np.zeros(n * n)), kernel, prior)[0]
     rng = np.random.default_rng(seed)
-    kern = setup.inputs["kernels"]
-    ls = np.array([150.0, 150.0])
-    amp = kern.spectrum.amplitudes(kern.modes, ls, 1.0)
-    f = np.asarray(kern.modes.coefficients_to_field(amp * rng.standard_normal(kern.modes.n_params))).ravel()
+    f = lgcp.simulate_field(spectrum, 150.0, 1.0, rng)
     counts = rng.poisson(np.exp(np.log(per_cell / (K * area[0])) + f) * K * area)
     setup = kind.setup(stats_for(counts), prior, ModelSpec("lgcp", {}, {"kernel": kernel}))
     return kind, setup, counts
@@ -78,18 +75,23 @@ def _run(kind, setup, chains, warmup, draws, dense_baseline=False):
         kernel = NUTS(fn, init_strategy=init_to_median(num_samples=15))
     else:
         fn, inputs = kind.fn, setup.inputs
-        kernel = NUTS(fn, init_strategy=init_to_median(num_samples=15), dense_mass=setup.extra["dense_mass"])
+        kernel = NUTS(fn, init_strategy=setup.extra["init_strategy"], dense_mass=setup.extra["dense_mass"])
     mcmc = MCMC(kernel, num_warmup=warmup, num_samples=draws, num_chains=chains,
                 chain_method="vectorized", progress_bar=False)
     t = time.perf_counter()
-    mcmc.run(jax.random.PRNGKey(1), extra_fields=("num_steps", "diverging"), **inputs)
+    drop = () if dense_baseline else ("~z.u",)
+    mcmc.run(jax.random.PRNGKey(1), extra_fields=("num_steps", "diverging") + drop, **inputs)
     samples = mcmc.get_samples(group_by_chain=True)
     jax.block_until_ready(samples)
     wall = time.perf_counter() - t
-    if dense_baseline:
-        log_lam = np.asarray(samples["log_lam"])
-    else:
-        log_lam = lgcp.cell_log_intensity({k: np.asarray(v) for k, v in samples.items()}, setup)
+    # cell log intensity μ + f, μ = log ρ₀ drawn exactly from its conjugate Gamma given f
+    # (both formulations integrate ρ₀ out in the sampler)
+    f = np.asarray(samples["field"], float)
+    a, b = setup.extra["gamma_prior"]
+    obs, expo = setup.inputs["obs"], setup.inputs["exposure"]
+    log_z = np.logaddexp.reduce(f[..., obs] + np.log(expo), axis=-1)
+    g = np.random.default_rng(0).standard_gamma(a + float(np.sum(setup.inputs["counts"])), size=log_z.shape)
+    log_lam = f + (np.log(g) - np.logaddexp(np.log(b), log_z))[..., None]
     ds = az.convert_to_dataset({"x": log_lam.astype(float)}, dims={"x": ["cell"]})
     ess = np.asarray(az.ess(ds, method="bulk")["x"])
     rhat = np.asarray(az.rhat(ds)["x"]) if chains > 1 else np.full(ess.shape, np.nan)
@@ -103,12 +105,12 @@ def _run(kind, setup, chains, warmup, draws, dense_baseline=False):
 def dense_model_inputs(setup):
     """The same model with the field's covariance as a dense matrix (Cholesky per
     gradient), the baseline of part (a): same kernel (planar, on cell centres), priors."""
+    import jax
     import jax.numpy as jnp
     import numpyro
     import numpyro.distributions as dist
 
     from sceneprior.fields.kernels import anisotropic_kernel
-    from sceneprior.models.likelihood import binned_loglik
 
     inp = setup.inputs
     geom = inp["kernels"].spectrum.geom
@@ -119,8 +121,7 @@ def dense_model_inputs(setup):
     d1 = np.abs(i1.ravel()[:, None] - i1.ravel()[None, :]) * h1
     kernel = geom.kernel
 
-    def model(counts, exposure, window_area, obs, mu_loc, mu_scale, sigma_scale, ls_lo, ls_hi):
-        mu = numpyro.sample("mu", dist.Normal(mu_loc, mu_scale))
+    def model(counts, exposure, window_area, obs, gamma_a, gamma_b, sigma_scale, ls_lo, ls_hi):
         sigma = numpyro.sample("sigma", dist.HalfNormal(sigma_scale))
         u = numpyro.sample("ls_unit", dist.Beta(2.0, 2.0).expand([ls_lo.shape[0]]).to_event(1))
         ls = ls_lo * (ls_hi / ls_lo) ** u
@@ -128,10 +129,12 @@ def dense_model_inputs(setup):
         C = anisotropic_kernel(kernel, (jnp.asarray(d0), jnp.asarray(d1)), sigma**2, ls2)
         L = jnp.linalg.cholesky(C + 1e-8 * jnp.eye(C.shape[0]))
         z = numpyro.sample("z", dist.Normal(0.0, 1.0).expand([C.shape[0]]).to_event(1))
-        log_lam = numpyro.deterministic("log_lam", mu + L @ z)
-        numpyro.factor("loglik", binned_loglik(log_lam[obs], counts, exposure))
+        f = numpyro.deterministic("field", L @ z)
+        log_z = jax.scipy.special.logsumexp(f[obs] + jnp.log(exposure))
+        total = jnp.sum(counts)
+        numpyro.factor("loglik", jnp.dot(counts, f[obs]) - (gamma_a + total) * jnp.logaddexp(jnp.log(gamma_b), log_z))
 
-    keys = ("counts", "exposure", "window_area", "obs", "mu_loc", "mu_scale", "sigma_scale", "ls_lo", "ls_hi")
+    keys = ("counts", "exposure", "window_area", "obs", "gamma_a", "gamma_b", "sigma_scale", "ls_lo", "ls_hi")
     return model, {k: inp[k] for k in keys}
 
 
@@ -146,7 +149,7 @@ def one(args):
     kind, setup, counts = _setup(size, kernel, per_cell, K)
     res = _run(kind, setup, args.chains, args.warmup, args.draws, dense_baseline=args.dense)
     res.update({"cells": f"{size}²", "kernel": kernel, "regime": regime, "scans": K,
-                "detections": int(counts.sum()), "modes": setup.extra["modes_report"]["n_modes"],
+                "detections": int(counts.sum()), "pad": setup.extra["preconditioner"].use_pad,
                 "torus": setup.extra["embedding"]["torus_shape"],
                 "formulation": "dense" if args.dense else "fourier"})
     print(json.dumps(res))
@@ -183,7 +186,7 @@ def main():
             return {"error": (out.stderr.strip().splitlines() or ["failed"])[-1]}
         return json.loads(line[-1])
 
-    cols = ("cells", "kernel", "regime", "formulation", "modes", "wall_s", "steps_per_draw", "min_ess_bulk",
+    cols = ("cells", "kernel", "regime", "formulation", "pad", "wall_s", "steps_per_draw", "min_ess_bulk",
             "max_rhat", "divergences", "ess_per_s", "peak_rss_mb")
 
     def show(rows):

@@ -6,6 +6,7 @@ It returns one :class:`FitResult`, the object that export, report and compare re
 
 from __future__ import annotations
 
+import math
 import time
 from dataclasses import dataclass, field
 
@@ -42,6 +43,7 @@ class FitResult:
     idata: object  # arviz.InferenceData
     diagnostics: dict
     timing: dict = field(default_factory=dict)
+    thinning: int = 1  # sampler draws kept: every n-th (per-cell memory budget)
 
     def posterior_arrays(self, names=None) -> dict:
         post = self.idata.posterior
@@ -57,24 +59,46 @@ class FitResult:
         return np.asarray(self.idata.posterior["rate"])
 
 
-def _check_memory(setup, stats, smp, source: str) -> None:
-    """Refuse fits whose kept draws would not fit in memory (say what would)."""
+def _check_memory(setup, stats, smp, source: str, thinning: int = 1) -> None:
+    """Refuse fits whose sampler state and kept draws would not fit in memory (say what would).
+
+    Per chain the sampler holds a few copies of the torus field (position, momentum,
+    gradient and the tree's end points, float64); every kept draw holds the cell field in
+    float32."""
     import os
 
     n_latent = int(setup.extra.get("n_latent", 0))
     if not n_latent:
         return
-    need = smp.chains * smp.draws * (n_latent + stats.grid.n_cells) * 8.0
+    kept = -(-smp.draws // thinning)
+    need = smp.chains * (kept * stats.grid.n_cells * 4.0 + 12 * n_latent * 8.0)
     try:
         total = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
     except (ValueError, OSError, AttributeError):
         return
     if need > 0.6 * total:
-        fit_draws = int(0.6 * total / (smp.chains * (n_latent + stats.grid.n_cells) * 8.0))
         raise InputError(
-            f"{source}: {smp.chains} chains × {smp.draws} draws of {n_latent} field coefficients and "
+            f"{source}: {smp.chains} chains on a torus of {n_latent} cells with {kept} kept draws of "
             f"{stats.grid.n_cells} cells need about {need / 1e9:.1f} GB, more than this machine can hold "
-            f"({total / 1e9:.0f} GB); use at most {fit_draws} draws per chain or a coarser grid")
+            f"({total / 1e9:.0f} GB); lower output.draws_budget_mb, use fewer chains or a coarser grid")
+
+
+def _check_grid(stats, smp, source: str) -> None:
+    """Refuse grids whose padded torus cannot be sampled here, before any set-up work."""
+    import os
+
+    n_torus = 4 * stats.grid.n_cells  # the field lives on a torus about twice the grid per axis
+    try:
+        total = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
+    except (ValueError, OSError, AttributeError):
+        return
+    need = smp.chains * 12 * n_torus * 8.0 + 40 * n_torus * 8.0
+    if need > 0.6 * total or n_torus > 2**24:
+        side = int(math.sqrt(0.6 * total / (8.0 * 4 * (12 * smp.chains + 40))))
+        raise InputError(
+            f"{source}: a {stats.grid.shape[0]}×{stats.grid.shape[1]} grid needs a torus of about {n_torus} cells "
+            f"({need / 1e9:.1f} GB for {smp.chains} chains), beyond what this machine can sample; use a coarser "
+            f"grid (at most about {min(side, 2048)}×{min(side, 2048)} cells here)")
 
 
 def prepare(spec: FitSpec) -> tuple[Region, Recording, BinnedStats]:
@@ -154,9 +178,16 @@ def fit(spec: FitSpec, progress: bool = True, log=print) -> FitResult:
         from .zones import zone_cell_areas
 
         zone_cell_areas(region, stats.grid, spec.zones, spec.source)
-    setup = kind.setup(stats, prior, spec.model)
     smp = spec.sampler
-    _check_memory(setup, stats, smp, spec.source)
+    if kind.per_cell and smp.method != "exact":  # refuse impossible grids before the set-up's work
+        _check_grid(stats, smp, spec.source)
+    setup = kind.setup(stats, prior, spec.model)
+    thinning = 1
+    if setup.extra.get("exclude_sites"):  # the kept cell field obeys the draws budget
+        from .results import thin_for_budget
+
+        thinning = thin_for_budget(smp.draws, stats.grid.n_cells * smp.chains, spec.draws_budget_mb)
+    _check_memory(setup, stats, smp, spec.source, thinning)
     if smp.method == "exact":
         if kind.exact is None:
             raise InputError(f"{spec.source}: sampler.method = \"exact\" needs a conjugate model; "
@@ -174,7 +205,10 @@ def fit(spec: FitSpec, progress: bool = True, log=print) -> FitResult:
         idata = run_nuts(kind.fn, setup.inputs, smp, progress=progress,
                          dense_mass=setup.extra.get("dense_mass", False),
                          init_strategy=setup.extra.get("init_strategy"),
-                         dims=setup.extra.get("dims"), coords=setup.extra.get("coords"))
+                         dims=setup.extra.get("dims"), coords=setup.extra.get("coords"),
+                         exclude_sites=setup.extra.get("exclude_sites", ()), thinning=thinning)
+        if setup.extra.get("complete"):  # exact conditional draws of integrated-out parameters
+            idata = setup.extra["complete"](idata, stats, setup, smp.seed)
     t_mcmc = time.perf_counter()
     from .inference import diagnostics
 
@@ -189,6 +223,7 @@ def fit(spec: FitSpec, progress: bool = True, log=print) -> FitResult:
         idata=idata,
         diagnostics=diag,
         timing={"read_and_bin_s": t_bin - t0, "sampling_s": t_mcmc - t_bin},
+        thinning=thinning,
     )
     if kind.per_cell:
         from .inference import cell_diagnostics

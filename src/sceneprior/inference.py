@@ -45,9 +45,12 @@ def configure_jax() -> None:
 
 
 def run_nuts(fn, inputs: dict, sampler, progress: bool = True, dense_mass: bool = False,
-             dims: dict | None = None, coords: dict | None = None, init_strategy=None):
-    """Sample ``fn(**inputs)`` with NUTS; returns (InferenceData, extra) where extra holds
-    the leapfrog steps and divergences per draw."""
+             dims: dict | None = None, coords: dict | None = None, init_strategy=None,
+             exclude_sites=(), thinning: int = 1):
+    """Sample ``fn(**inputs)`` with NUTS; returns InferenceData whose sample_stats hold the
+    leapfrog steps and divergences per draw. ``exclude_sites``: latent sites not kept (a
+    field's white noise; its deterministic images are kept instead); ``thinning``: keep
+    every n-th draw (memory budget of per-cell draws)."""
     configure_jax()
     import arviz as az
     import jax
@@ -66,8 +69,10 @@ def run_nuts(fn, inputs: dict, sampler, progress: bool = True, dense_mass: bool 
         num_chains=sampler.chains,
         chain_method="vectorized",
         progress_bar=progress and sampler.progress,
+        thinning=thinning,
     )
-    mcmc.run(jax.random.PRNGKey(sampler.seed), extra_fields=("diverging", "num_steps"), **inputs)
+    drop = tuple(f"~z.{name}" for name in exclude_sites)
+    mcmc.run(jax.random.PRNGKey(sampler.seed), extra_fields=("diverging", "num_steps") + drop, **inputs)
     idata = az.from_numpyro(mcmc, log_likelihood=False, dims=dims, coords=coords)
     return idata
 

@@ -273,11 +273,13 @@ def summary_dict(result) -> dict:
         "diagnostics": result.diagnostics,
         "gate": _gate_entry(result),
         "draws_kept": {
-            "posterior.nc": "all draws of the model's parameters",
+            "posterior.nc": ("all kept draws of the model's parameters" if result.thinning == 1 else
+                             f"every {result.thinning}th draw of the sampler (the per-cell field obeys the "
+                             "draws budget)"),
             "cell_draws.nc": "per-cell intensity draws, float32, thinned to fit the budget",
             "budget_mb": spec.draws_budget_mb,
-            "thinning": thin_for_budget(spec.sampler.chains * spec.sampler.draws, grid.n_cells,
-                                        spec.draws_budget_mb),
+            "sampler_thinning": result.thinning,
+            "thinning": thin_for_budget(rate.size, grid.n_cells, spec.draws_budget_mb),
         },
         "versions": _versions(),
         "timing_s": {k: round(v, 3) for k, v in result.timing.items()},

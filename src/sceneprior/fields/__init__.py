@@ -3,7 +3,8 @@
 Modules, one per mathematical idea:
   kernels    stationary kernels of distance (Rasmussen & Williams 2006, §4.2)
   embedding  circulant embedding on a padded torus (Wood & Chan 1994; Dietrich & Newsam 1997)
-  spectral   a truncated Fourier-mode parametrisation of the embedded field
+  spectral   Fourier-mode bookkeeping of the embedded field (mode counts, periodised spectra)
+  preconditioning  the data-informed white-noise coordinates the LGCP sampler moves in
 """
 
 from sceneprior.fields.embedding import (

@@ -1,13 +1,12 @@
-"""Log-Gaussian Cox process clutter maps: log λ_c = μ + f_c, f a stationary Gaussian field.
+"""Log-Gaussian Cox process clutter maps: λ_c = ρ₀ · exp(f_c), f a stationary Gaussian field.
 
 Field (DESIGN.md §3): f on the cell centres is the corner of a circulant-embedded field on
 a padded torus (Wood & Chan 1994; Dietrich & Newsam 1997), kernel Matérn ν = 1/2, 3/2,
-5/2 or squared exponential (Rasmussen & Williams 2006, §4.2), written in the real Fourier
-basis of the torus (``fields.spectral``). The torus is sized ONCE for the largest length
-scale the prior allows and checked valid (eigenvalues ≥ −1e-10·max); the retained set of
-Fourier modes is fixed for the whole run, chosen at the SHORTEST length scale the prior
-allows so that it holds ≥ 1 − δ of the prior variance there (δ = 1e-3 by default; a
-longer length scale only concentrates the spectrum further inside the kept set).
+5/2 or squared exponential (Rasmussen & Williams 2006, §4.2). The torus is sized ONCE for
+the largest length scale the prior allows and checked valid (eigenvalues ≥ −1e-10·max);
+where the minimum-image row would need more than twice the grid, the periodised kernel's
+spectrum is used instead (``Spectrum``), non-negative by construction. Every torus mode is
+kept (no spectral truncation, so nothing is dropped from the prior).
 
 Stationarity: on a Cartesian grid the field is isotropic in metres (one length scale).
 On a polar grid it is stationary in (range, bearing) — one length scale in metres along
@@ -17,20 +16,24 @@ sea and ground clutter statistics change along range and from sector to sector r
 than isotropically in x, y. The intensity is per m² (exact polar cell areas in the
 exposure), and per m·rad = per m² × range is reported beside it.
 
-Parametrisation (issue item 5: fast in weak and strong data). With white noise z_p of the
-retained real Fourier coefficients and prior sd a_p = √Λ_p, the non-centred field is
-f = M(a ⊙ z). The likelihood's curvature in log λ_c is λ_c E_c ≈ N_c, and in the Fourier
-basis each coefficient sees on average S/N of it (S = Σ_c N_c, N = torus cells; Parseval),
-so the posterior sd of z_p is close to 1/√(1 + a_p² S/N). We sample v_p = z_p·s_p with
-s_p = √(1 + a_p² S/N), i.e. v_p ~ Normal(0, s_p) a priori — an exact reparametrisation
-(the prior of (μ, σ, ℓ, f) is unchanged; only the coordinates NUTS moves in depend on
-the data), which is non-centred for modes the data barely inform (s_p ≈ 1) and close to
-centred for modes they pin down (s_p ≫ 1): a per-mode partial non-centring
-(Papaspiliopoulos, Roberts & Sköld 2007) with posterior scale ≈ 1 in every regime.
+Baseline: log λ_c = μ + f_c with ρ₀ = e^μ ~ Gamma(a, b), conjugate to the Poisson
+likelihood given f, so ρ₀ is integrated out in the sampler —
+    ∫ Π_c Pois(N_c | ρ₀ E_c e^{f_c}) Gamma(ρ₀ | a, b) dρ₀ ∝ e^{Σ N_c f_c} / (b + Z)^{a+S},
+Z = Σ_c E_c e^{f_c}, S = Σ_c N_c (the Gamma–Poisson mixture, Gelman et al., BDA3 §2.6) —
+and drawn exactly afterwards, ρ₀ | f ~ Gamma(a + S, b + Z), per draw. The field's level
+and μ trade off along a ridge the data cannot resolve; integrating ρ₀ out removes it.
 
-Precision: float64 throughout (the spectrum of smooth kernels spans many decades).
+Sampler coordinates: white noise u on the torus mapped to f by the data-informed, exact
+linear reparametrisation of ``sceneprior.fields.preconditioning`` (per-mode partial
+centring, a padding correction at pilot hyperparameters, one soft direction), so that
+NUTS needs a similar number of leapfrog steps with 0.3 or 60 detections per cell.
+
+Precision: float64 throughout the sampler (the spectrum of smooth kernels spans many
+decades; counts of long recordings are large); the per-cell field kept for the outputs is
+float32.
 Priors (units only — region and cell size — never the counts):
-  μ ~ Normal(log(rate_median / |W|), rate_log_sd)      log intensity [log(m⁻² scan⁻¹)]
+  ρ₀ ~ Gamma(a, b): median rate_median/|W| [m⁻² scan⁻¹], sd of log ρ₀ = rate_log_sd
+      (a from trigamma(a) = rate_log_sd², b from the median)
   σ ~ HalfNormal(sigma_scale)                           field sd (log scale)
   ℓ_a = lo_a (hi_a / lo_a)^u_a, u_a ~ Beta(2, 2)        length scale per axis, bounded:
       default lo = 2 cell spacings (at most hi/2), hi = a quarter of the region's extent along the axis.
@@ -39,6 +42,8 @@ Priors (units only — region and cell size — never the counts):
 from __future__ import annotations
 
 import math
+from dataclasses import dataclass
+from functools import partial
 
 import jax
 import jax.numpy as jnp
@@ -47,24 +52,19 @@ import numpyro
 import numpyro.distributions as dist
 
 from ..errors import InputError
-from dataclasses import dataclass
-
 from ..fields.embedding import TorusGeometry, implied_first_row, plan_torus, torus_shape_for
 from ..fields.kernels import KERNEL_NAMES, anisotropic_kernel
-from ..fields.spectral import aliased_eigenvalues, select_modes
-from .likelihood import binned_loglik
+from ..fields.preconditioning import build_preconditioner, field_and_prior
 
 DEFAULT_PRIOR = {
     "rate_median": 10.0,
     "rate_log_sd": 3.0,
     "sigma_scale": 1.0,
-    "delta": 1e-3,
 }
 _LS_KEYS = ("length_scale_min", "length_scale_max",  # cartesian, m
             "range_length_scale_min", "range_length_scale_max",  # polar, m
             "bearing_length_scale_min", "bearing_length_scale_max")  # polar, degrees
 PADDINGS = (1.0, 2.0, 3.0, 4.0)  # minimum-image embedding tried on tori up to 2× the grid
-N_LEAD = 16  # leading Fourier modes in the dense mass-matrix block
 N_ALIAS = 1  # alias terms per side for the periodised-kernel spectrum (3×3 terms)
 
 
@@ -96,8 +96,7 @@ class Spectrum:
         the minimum-image row would need more padding (Matérn 3/2 and 1/2 at long length
         scales need 10–12 length scales). Its covariance differs from the planar kernel by
         the wrap error in the report; the alias sum is truncated at |q| ≤ N_ALIAS, which
-        lowers the variance by the reported deficit. In the model only the retained modes'
-        eigenvalues are evaluated (``at_modes``).
+        lowers the variance by the reported deficit.
     """
 
     geom: TorusGeometry
@@ -131,23 +130,6 @@ class Spectrum:
         rep = np.arange(m0 * (m1 // 2 + 1))
         return self._periodised(rep, length_scales, variance, xp).reshape(m0, m1 // 2 + 1)
 
-    def amplitudes(self, modes, length_scales, variance):
-        """Prior sd √Λ of each retained real coefficient (evaluating only kept modes)."""
-        xp = jnp if isinstance(length_scales, jax.Array) or isinstance(variance, jax.Array) else np
-        if self.method == "embedding":
-            return modes.amplitudes(self.geom.eigenvalues(length_scales, variance))
-        uniq, inverse = _unique_reps(modes)
-        lam = self._periodised(uniq, length_scales, variance, xp)
-        return xp.sqrt(xp.maximum(lam, 0.0))[inverse]
-
-
-def _unique_reps(modes):
-    cache = getattr(modes, "_unique_cache", None)
-    if cache is None:
-        cache = np.unique(np.asarray(modes.param_rep), return_inverse=True)
-        object.__setattr__(modes, "_unique_cache", cache)
-    return cache
-
 
 def _periodised_report(geom: TorusGeometry, spec: "Spectrum", lo2, hi2) -> dict:
     """Wrap error of the periodised covariance against the planar kernel on grid lags (at
@@ -166,63 +148,72 @@ def _periodised_report(geom: TorusGeometry, spec: "Spectrum", lo2, hi2) -> dict:
             "valid": "eigenvalues are non-negative by construction"}
 
 
-def lgcp_model(counts, exposure, window_area, obs, mu_loc, mu_scale, sigma_scale, ls_lo, ls_hi,
-               strength, kernels):
-    """numpyro model of the LGCP on binned data.
+def gamma_prior(rate_median: float, rate_log_sd: float, window_area: float) -> tuple[float, float]:
+    """Gamma(a, b) on ρ₀ [m⁻² scan⁻¹] with sd(log ρ₀) = rate_log_sd (trigamma(a) = sd²) and
+    median rate_median/|W| (b = F⁻¹_Gamma(a,1)(½)·|W|/rate_median)."""
+    from scipy.optimize import brentq
+    from scipy.special import gammaincinv, polygamma
+
+    a = brentq(lambda x: float(polygamma(1, x)) - rate_log_sd**2, 1e-8, 1e8)
+    b = float(gammaincinv(a, 0.5)) * window_area / rate_median
+    return float(a), b
+
+
+def lgcp_model(counts, exposure, window_area, obs, gamma_a, gamma_b, sigma_scale, ls_lo, ls_hi,
+               precond, kernels):
+    """numpyro model of the LGCP on binned data, baseline ρ₀ integrated out.
 
     counts, exposure: (n_obs,) N_c and E_c [m²·scan] of cells with exposure; window_area
-    (n_cells,) |c ∩ W| [m²]; obs (n_obs,) their flat indices; ls_lo, ls_hi (n_ls,) length
-    scale bounds in axis units; ``kernels`` holds the jitted field maths (static torus
-    geometry, retained modes, preconditioner strength), see :func:`make_kernels`.
+    (n_cells,) |c ∩ W| [m²]; obs (n_obs,) their flat indices; gamma_a, gamma_b: the
+    Gamma prior of ρ₀ (b in m²·scan); ls_lo, ls_hi (n_ls,) length scale bounds in axis
+    units; ``precond``: arrays of the reparametrisation (``Preconditioner.arrays()``);
+    ``kernels``: static torus geometry and jitted field maths (:class:`FieldKernels`).
+    Deterministic sites: ``field`` (n_cells,) float32 f_c = log λ_c − μ; ``log_z`` =
+    log Σ_c E_c e^{f_c}; ``log_window_integral`` = log Σ_c |c ∩ W| e^{f_c}.
     """
-    mu = numpyro.sample("mu", dist.Normal(mu_loc, mu_scale))
     sigma = numpyro.sample("sigma", dist.HalfNormal(sigma_scale))
-    u = numpyro.sample("ls_unit", dist.Beta(2.0, 2.0).expand([ls_lo.shape[0]]).to_event(1))
-    ls = numpyro.deterministic("length_scale", ls_lo * (ls_hi / ls_lo) ** u)
-    amp, scale = kernels.scales(ls, sigma, strength)
-    # the leading (largest-variance) modes trade off against μ and σ along ridges in strong
-    # data; they get their own site so NUTS can adapt a dense mass matrix over them and the
-    # hyperparameters (``DENSE_BLOCK``), the rest keep a diagonal one
-    m = kernels.n_lead
-    v_lead = numpyro.sample("v_lead", dist.Normal(0.0, scale[:m]).to_event(1))
-    v_rest = numpyro.sample("v_rest", dist.Normal(0.0, scale[m:]).to_event(1))
-    v = jnp.concatenate([v_lead, v_rest])
-    loglik, rate = kernels.likelihood(mu, amp, scale, v, counts, exposure, window_area, obs)
-    numpyro.factor("loglik", loglik)
-    numpyro.deterministic("rate", rate)
+    u01 = numpyro.sample("ls_unit", dist.Beta(2.0, 2.0).expand([ls_lo.shape[0]]).to_event(1))
+    ls = numpyro.deterministic("length_scale", ls_lo * (ls_hi / ls_lo) ** u01)
+    u = numpyro.sample("u", dist.Normal(0.0, 1.0).expand(list(kernels.torus_shape)).to_event(2))
+    f, log_prior_u, log_z, log_w = kernels.evaluate(u, sigma, ls, precond, exposure, obs, window_area)
+    # the N(0, 1) site density is replaced by the exact density of u under the field prior
+    numpyro.factor("field_prior", log_prior_u + 0.5 * jnp.sum(u * u))
+    total = jnp.sum(counts)
+    numpyro.factor("loglik", jnp.dot(counts, f[obs]) - (gamma_a + total) * jnp.logaddexp(jnp.log(gamma_b), log_z))
+    numpyro.deterministic("field", f.astype(jnp.float32))
+    numpyro.deterministic("log_z", log_z)
+    numpyro.deterministic("log_window_integral", log_w)
 
 
 @dataclass(frozen=True, eq=False)
 class FieldKernels:
-    """Jitted pieces of the model, so that tracing the model eagerly compiles two
-    functions instead of a hundred small operations."""
+    """Static torus geometry and the jitted field maths, so that tracing the model compiles
+    one function instead of many small operations."""
 
     spectrum: Spectrum
-    modes: object
-    n_lead: int = 16
+    use_pad: bool
+
+    @property
+    def torus_shape(self):
+        return self.spectrum.geom.torus_shape
+
+    @property
+    def grid_shape(self):
+        return self.spectrum.geom.grid_shape
 
     def __post_init__(self):
-        spectrum, modes = self.spectrum, self.modes
+        spectrum, use_pad, grid_shape = self.spectrum, self.use_pad, self.spectrum.geom.grid_shape
 
-        def scales(ls, sigma, strength):
-            amp = spectrum.amplitudes(modes, ls, sigma**2)
-            return amp, jnp.sqrt(1.0 + amp**2 * strength)
+        def evaluate(u, sigma, ls, pre, exposure, obs, window_area):
+            lam = spectrum.eigenvalues(jnp.broadcast_to(ls, (2,)), sigma**2)
+            f, logp = field_and_prior(u, lam, pre, grid_shape, use_pad)
+            log_z = jax.scipy.special.logsumexp(f[obs] + jnp.log(exposure))
+            inside = window_area > 0
+            log_w = jax.scipy.special.logsumexp(jnp.where(inside, f + jnp.log(jnp.where(inside, window_area, 1.0)),
+                                                          -jnp.inf))
+            return f, logp, log_z, log_w
 
-        def field(mu, amp, scale, v):
-            return mu + modes.coefficients_to_field(amp * v / scale).reshape(-1)
-
-        def likelihood(mu, amp, scale, v, counts, exposure, window_area, obs):
-            log_lam = field(mu, amp, scale, v)
-            return (binned_loglik(log_lam[obs], counts, exposure),
-                    jnp.sum(jnp.exp(log_lam) * window_area))
-
-        def log_intensity(mu, sigma, ls, v, strength):
-            amp, scale = scales(ls, sigma, strength)
-            return field(mu, amp, scale, v)
-
-        object.__setattr__(self, "scales", jax.jit(scales))
-        object.__setattr__(self, "likelihood", jax.jit(likelihood))
-        object.__setattr__(self, "log_intensity", jax.jit(jax.vmap(log_intensity, (0, 0, 0, 0, None))))
+        object.__setattr__(self, "evaluate", jax.jit(evaluate))
 
 
 def _bounds(stats, prior: dict, source="model.prior"):
@@ -259,7 +250,7 @@ def _bounds(stats, prior: dict, source="model.prior"):
 
 
 def plan(stats, kernel: str, prior: dict):
-    """Torus geometry and retained modes for this grid and prior (done once per fit)."""
+    """Torus geometry and a valid spectrum for this grid and prior (done once per fit)."""
     if kernel not in KERNEL_NAMES:
         import difflib
 
@@ -288,8 +279,7 @@ def plan(stats, kernel: str, prior: dict):
                              "this machine can sample; use a coarser grid")
         spectrum = Spectrum(geom, "periodised")
         report = _periodised_report(geom, spectrum, lo2, hi2)
-    modes = select_modes(geom, lo2, delta=prior["delta"], eigenvalues=spectrum.eigenvalues)
-    return spectrum, report, modes, lo, hi
+    return spectrum, report, lo, hi
 
 
 def scipy_fast(n: int) -> int:
@@ -298,69 +288,97 @@ def scipy_fast(n: int) -> int:
     return int(scipy.fft.next_fast_len(n, real=True))
 
 
-def setup(stats, prior: dict, model_spec):
+def setup(stats, prior: dict, model_spec, use_pad: bool | None = None):
     from .registry import ModelSetup
 
     kernel = model_spec.options.get("kernel", "matern32")
-    spectrum, report, modes, lo, hi = plan(stats, kernel, prior)
+    spectrum, report, lo, hi = plan(stats, kernel, prior)
     geom = spectrum.geom
     obs = np.flatnonzero(stats.exposure > 0)
-    strength = float(stats.counts.sum()) / geom.n_torus
+    a, b = gamma_prior(prior["rate_median"], prior["rate_log_sd"], stats.window_total)
+    counts_all = np.zeros(stats.grid.n_cells)
+    counts_all[obs] = stats.counts[obs]
+    pre = build_preconditioner(spectrum, stats.grid.shape, counts_all, np.where(stats.exposure > 0, stats.exposure, 0.0),
+                               kernel, lo, hi, prior["sigma_scale"], use_pad=use_pad)
+    kernels = FieldKernels(spectrum, pre.use_pad)
     inputs = dict(
         counts=stats.counts[obs].astype(float), exposure=stats.exposure[obs],
-        window_area=stats.window_area, obs=obs,
-        mu_loc=math.log(prior["rate_median"] / stats.window_total), mu_scale=prior["rate_log_sd"],
+        window_area=stats.window_area, obs=obs, gamma_a=a, gamma_b=b,
         sigma_scale=prior["sigma_scale"], ls_lo=lo, ls_hi=hi,
-        strength=strength, kernels=FieldKernels(spectrum, modes, min(N_LEAD, modes.n_params - 1)),
+        precond=pre.arrays(), kernels=kernels,
     )
+    u_pilot = np.clip((np.log(np.asarray(pre.pilot["length_scale"])) - np.log(lo)) / (np.log(hi) - np.log(lo)),
+                      0.05, 0.95)
+    from numpyro.infer import init_to_value
+
     extra = {
-        "kernel": kernel, "geom": spectrum, "modes": modes, "strength": strength,
-        "embedding": report, "modes_report": modes.report(),
+        "kernel": kernel, "geom": spectrum, "embedding": report, "preconditioner": pre,
         "ls_bounds": {"min": lo.tolist(), "max": hi.tolist()},
-        "drop_from_posterior": ["v_lead", "v_rest"],
-        "n_latent": modes.n_params,
-        "dense_mass": [("mu", "sigma", "ls_unit", "v_lead")],
-        "dims": {"length_scale": ["axis"], "ls_unit": ["axis"]},
+        "gamma_prior": (a, b),
+        "n_latent": geom.n_torus,
+        "dense_mass": [("sigma", "ls_unit")],
+        "exclude_sites": ["u"],
+        "init_strategy": init_to_value(values={"sigma": max(pre.pilot["sigma"], 0.05),
+                                               "ls_unit": u_pilot[: lo.size]}),
+        "complete": complete_posterior,
+        "dims": {"length_scale": ["axis"], "ls_unit": ["axis"], "field": ["cell"]},
         "coords": {"axis": list(stats.grid.axes[: lo.size]) if lo.size == 2 else ["isotropic"]},
     }
     return ModelSetup(inputs=inputs, extra=extra)
 
 
-def cell_log_intensity(posterior: dict, setup, chunk: int = 256, strength=None) -> np.ndarray:
-    """(chain, draw, n_cells) float32 log λ draws, computed in chunks of draws.
-    ``strength`` must be the preconditioner strength the draws were sampled with
-    (default: the setup's)."""
-    strength = setup.inputs["strength"] if strength is None else strength
-    fn = setup.inputs["kernels"].log_intensity
-    mu, sigma, ls = (np.asarray(posterior[k]) for k in ("mu", "sigma", "length_scale"))
-    v = np.concatenate([np.asarray(posterior["v_lead"]), np.asarray(posterior["v_rest"])], axis=-1)
-    c, d = mu.shape
-    n0, n1 = setup.inputs["kernels"].spectrum.geom.grid_shape
-    n_cells = n0 * n1
-    out = np.empty((c * d, n_cells), np.float32)
-    flat = [x.reshape((c * d,) + x.shape[2:]) for x in (mu, sigma, ls, v)]
-    for i in range(0, c * d, chunk):
-        out[i:i + chunk] = np.asarray(fn(*(x[i:i + chunk] for x in flat), strength), np.float32)
-    return out.reshape(c, d, n_cells)
+def complete_posterior(idata, stats, setup, seed: int):
+    """Add the exactly drawn baseline to the posterior: ρ₀ | f ~ Gamma(a + S, b + Z(f)) per
+    draw, μ = log ρ₀, and the rate Σ_c λ_c |c ∩ W| = ρ₀ · exp(log_window_integral)."""
+    post = idata.posterior
+    a, b = setup.extra["gamma_prior"]
+    total = float(np.sum(setup.inputs["counts"]))
+    log_z = np.asarray(post["log_z"], float)
+    rng = np.random.default_rng([seed, 20261202])
+    g = rng.standard_gamma(a + total, size=log_z.shape)
+    mu = np.log(g) - np.logaddexp(np.log(b), log_z)
+    rate = np.exp(mu + np.asarray(post["log_window_integral"], float))
+    post["mu"] = (("chain", "draw"), mu)
+    post["rate"] = (("chain", "draw"), rate)
+    post["mu"].attrs.update(units="log(m-2 scan-1)", long_name="baseline log intensity μ = log ρ₀, drawn from "
+                            "its exact conditional Gamma(a + S, b + Z)")
+    post["rate"].attrs.update(units="detections per scan", long_name="expected detections per scan in the window")
+    return idata
+
+
+def simulate_field(spectrum: Spectrum, length_scale, sigma: float, rng: np.random.Generator) -> np.ndarray:
+    """One draw of the zero-mean field on the grid cells (n0·n1,) from the model's own torus
+    covariance, every mode included: f = irfft2(√Λ · rfft2(w))[:n0, :n1], w ~ N(0, I)
+    (Wood & Chan 1994, §2.2). For tests, benchmarks and simulated scenes."""
+    from ..fields.embedding import sample_field
+
+    lam = np.asarray(spectrum.eigenvalues(np.resize(np.asarray(length_scale, float), 2), sigma**2), float)
+    w = rng.standard_normal(spectrum.geom.torus_shape)
+    return np.asarray(sample_field(spectrum.geom, lam, w), float).reshape(-1)
+
+
+def cell_log_intensity(posterior: dict, setup=None) -> np.ndarray:
+    """(chain, draw, n_cells) float32 log λ draws: μ + f."""
+    mu = np.asarray(posterior["mu"], np.float32)
+    return np.asarray(posterior["field"], np.float32) + mu[..., None]
 
 
 def cell_intensity(posterior: dict, stats, setup) -> np.ndarray:
-    if "_log_lam" not in setup.extra:
-        setup.extra["_log_lam"] = cell_log_intensity(posterior, setup)
-    return np.exp(setup.extra["_log_lam"])
+    return np.exp(cell_log_intensity(posterior, setup))
 
 
 def describe_prior(prior: dict, stats) -> dict:
     _, lo, hi = _bounds(stats, prior)
+    a, b = gamma_prior(prior["rate_median"], prior["rate_log_sd"], stats.window_total)
     unit = ["m", "degree"] if stats.grid.frame == "polar" else ["m"]
     return {
-        "mu": f"Normal(log({prior['rate_median']:g} / |W|), {prior['rate_log_sd']:g}) on the mean log "
-              "intensity [log(m⁻² scan⁻¹)]",
+        "rho0": f"Gamma({a:.4g}, {b:.4g} m²·scan) on the baseline intensity ρ₀ = e^μ [m⁻² scan⁻¹]: median "
+                f"{prior['rate_median']:g}/|W| (|W| = {stats.window_total:.6g} m²), sd of μ = log ρ₀ "
+                f"{prior['rate_log_sd']:g}; integrated out in the sampler, drawn exactly afterwards",
         "sigma": f"HalfNormal({prior['sigma_scale']:g}) on the field sd (log scale)",
-        "length_scale": [f"ℓ = {a:g}·({b:g}/{a:g})^u {u_}, u ~ Beta(2, 2)" for a, b, u_ in zip(lo, hi, unit)],
-        "field": "zero-mean stationary Gaussian field, circulant embedding on a padded torus; "
-                 f"Fourier modes holding ≥ {1 - prior['delta']:.4g} of the prior variance at the "
-                 "shortest length scale kept",
+        "length_scale": [f"ℓ = {a_:g}·({b_:g}/{a_:g})^u {u_}, u ~ Beta(2, 2)" for a_, b_, u_ in zip(lo, hi, unit)],
+        "field": "zero-mean stationary Gaussian field, circulant embedding on a padded torus, every "
+                 "torus mode kept",
         "parameters": dict(prior),
         "defaults": {**DEFAULT_PRIOR, "length_scale_min": "2 cell spacings",
                      "length_scale_max": "a quarter of the region's extent along the axis"},
@@ -370,6 +388,7 @@ def describe_prior(prior: dict, stats) -> dict:
 def summary(result) -> dict:
     ex = result.setup.extra
     g = result.stats.grid
+    pre = ex["preconditioner"]
     return {
         "kernel": ex["kernel"],
         "stationarity": ("isotropic in metres (Cartesian grid)" if g.frame == "cartesian" else
@@ -377,9 +396,13 @@ def summary(result) -> dict:
                          "cells are a regular lattice only in those coordinates"),
         "length_scale_bounds": ex["ls_bounds"],
         "embedding": ex["embedding"],
-        "modes": ex["modes_report"],
-        "parametrisation": "per-mode partial non-centring in the Fourier domain, v_p ~ N(0, 1 + a_p² S/N); "
-                           f"S/N = {ex['strength']:.4g}",
+        "field_parameters": {"torus_cells": int(ex["geom"].geom.n_torus), "truncation": "none (every torus mode kept)"},
+        "parametrisation": {
+            "description": "white noise on the torus; per-mode partial centring d_k = 1 + w̄Λ_k, padding "
+                           "correction at pilot hyperparameters, one soft direction (fields/preconditioning.py); "
+                           "baseline ρ₀ integrated out (conjugate Gamma) and drawn exactly per draw",
+            **pre.report(),
+        },
         "extrapolation": "cells without exposure are predicted through the field from their "
                          "neighbours; exports mask permanently excluded cells",
     }
