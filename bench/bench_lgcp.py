@@ -79,7 +79,7 @@ def _run(kind, setup, chains, warmup, draws, dense_baseline=False):
     mcmc = MCMC(kernel, num_warmup=warmup, num_samples=draws, num_chains=chains,
                 chain_method="vectorized", progress_bar=False)
     t = time.perf_counter()
-    drop = () if dense_baseline else ("~z.u",)
+    drop = () if dense_baseline else tuple(f"~z.{n}" for n in setup.extra["exclude_sites"])
     mcmc.run(jax.random.PRNGKey(1), extra_fields=("num_steps", "diverging") + drop, **inputs)
     samples = mcmc.get_samples(group_by_chain=True)
     jax.block_until_ready(samples)

@@ -87,7 +87,7 @@ def machinery():
     keep = ("sigma", "length_scale", "field", "log_z", "log_window_integral")
 
     def one_chain(key, kw):
-        state = init_kernel(z0, WARMUP, dense_mass=[("sigma", "ls_unit")], model_kwargs=kw, rng_key=key)
+        state = init_kernel(z0, WARMUP, dense_mass=setup.extra["dense_mass"], model_kwargs=kw, rng_key=key)
 
         def step(st, _):
             st = sample_kernel(st, model_kwargs=kw)

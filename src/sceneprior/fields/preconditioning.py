@@ -76,10 +76,18 @@ class Preconditioner:
     pilot: dict
 
     def arrays(self) -> dict:
-        """The dynamic inputs (so a compiled model can be re-used with other data)."""
+        """The dynamic inputs (so a compiled model can be re-used with other data), with the
+        Householder vector v that maps the first white coordinate onto g (v = 0: no soft
+        direction, H = I)."""
+        g = np.asarray(self.soft, float).reshape(-1)
+        e0 = np.zeros_like(g)
+        e0[0] = 1.0
+        v = e0 - g
+        nv = np.linalg.norm(v)
+        v = v / nv if np.linalg.norm(g) > 0 and nv > 1e-12 else np.zeros_like(g)
         return {"exposed": jnp.asarray(self.exposed), "kappa": jnp.asarray(self.kappa),
                 "w_scale": jnp.asarray(self.w_scale), "soft": jnp.asarray(self.soft),
-                "soft_scale": jnp.asarray(self.soft_scale)}
+                "soft_scale": jnp.asarray(self.soft_scale), "householder": jnp.asarray(v)}
 
     def report(self) -> dict:
         return {"padding_correction": bool(self.use_pad), "w_bar_detections_per_exposed_cell": self.w_scale,

@@ -160,29 +160,49 @@ def gamma_prior(rate_median: float, rate_log_sd: float, window_area: float) -> t
 
 
 def lgcp_model(counts, exposure, window_area, obs, gamma_a, gamma_b, sigma_scale, ls_lo, ls_hi,
-               precond, kernels):
+               precond, kernels, scan_terms=None):
     """numpyro model of the LGCP on binned data, baseline ρ₀ integrated out.
 
     counts, exposure: (n_obs,) N_c and E_c [m²·scan] of cells with exposure; window_area
     (n_cells,) |c ∩ W| [m²]; obs (n_obs,) their flat indices; gamma_a, gamma_b: the
     Gamma prior of ρ₀ (b in m²·scan); ls_lo, ls_hi (n_ls,) length scale bounds in axis
     units; ``precond``: arrays of the reparametrisation (``Preconditioner.arrays()``);
-    ``kernels``: static torus geometry and jitted field maths (:class:`FieldKernels`).
+    ``kernels``: static torus geometry and jitted field maths (:class:`FieldKernels`);
+    ``scan_terms``: per-scan terms (``models.scanterms``: over-dispersion, scan covariates,
+    time bins) or None.
+    White coordinates: ``u_soft`` (along the soft direction g) and ``u_rest``, rotated onto
+    the torus by the Householder reflection that maps the first axis to g (orthogonal, unit
+    Jacobian), so that u_soft can share a dense mass-matrix block with σ and ℓ.
+    Without per-scan terms ρ₀ is integrated out (module docstring) and drawn afterwards
+    (:func:`complete_posterior`); with them the per-scan likelihood is not conjugate in ρ₀,
+    which is then sampled (site ``rho0``).
     Deterministic sites: ``field`` (n_cells,) float32 f_c = log λ_c − μ; ``log_z`` =
     log Σ_c E_c e^{f_c}; ``log_window_integral`` = log Σ_c |c ∩ W| e^{f_c}.
     """
     sigma = numpyro.sample("sigma", dist.HalfNormal(sigma_scale))
     u01 = numpyro.sample("ls_unit", dist.Beta(2.0, 2.0).expand([ls_lo.shape[0]]).to_event(1))
     ls = numpyro.deterministic("length_scale", ls_lo * (ls_hi / ls_lo) ** u01)
-    u = numpyro.sample("u", dist.Normal(0.0, 1.0).expand(list(kernels.torus_shape)).to_event(2))
+    u_soft = numpyro.sample("u_soft", dist.Normal(0.0, 1.0))
+    u_rest = numpyro.sample("u_rest", dist.Normal(0.0, 1.0).expand([kernels.n_torus - 1]).to_event(1))
+    u = kernels.rotate(u_soft, u_rest, precond["householder"])
     f, log_prior_u, log_z, log_w = kernels.evaluate(u, sigma, ls, precond, exposure, obs, window_area)
-    # the N(0, 1) site density is replaced by the exact density of u under the field prior
-    numpyro.factor("field_prior", log_prior_u + 0.5 * jnp.sum(u * u))
-    total = jnp.sum(counts)
-    numpyro.factor("loglik", jnp.dot(counts, f[obs]) - (gamma_a + total) * jnp.logaddexp(jnp.log(gamma_b), log_z))
+    # the N(0, 1) site densities are replaced by the exact density of u under the field prior
+    numpyro.factor("field_prior", log_prior_u + 0.5 * (u_soft**2 + jnp.sum(u_rest * u_rest)))
     numpyro.deterministic("field", f.astype(jnp.float32))
     numpyro.deterministic("log_z", log_z)
     numpyro.deterministic("log_window_integral", log_w)
+    total = jnp.sum(counts)
+    if scan_terms is None:
+        numpyro.factor("loglik", jnp.dot(counts, f[obs])
+                       - (gamma_a + total) * jnp.logaddexp(jnp.log(gamma_b), log_z))
+        return
+    from .scanterms import ppp_factor
+
+    rho0 = numpyro.sample("rho0", dist.Gamma(gamma_a, gamma_b))
+    mu = numpyro.deterministic("mu", jnp.log(rho0))
+    base = jnp.exp(mu + log_w)  # Λ = Σ_c λ_c |c ∩ W|
+    mult = ppp_factor(total * mu + jnp.dot(counts, f[obs]), base, scan_terms)
+    numpyro.deterministic("rate", base * mult)
 
 
 @dataclass(frozen=True, eq=False)
@@ -200,6 +220,15 @@ class FieldKernels:
     @property
     def grid_shape(self):
         return self.spectrum.geom.grid_shape
+
+    @property
+    def n_torus(self):
+        return self.spectrum.geom.n_torus
+
+    def rotate(self, u_soft, u_rest, v):
+        """u = H [u_soft, u_rest] on the torus, H = I − 2 v vᵀ (|v| = 1 or v = 0)."""
+        w = jnp.concatenate([u_soft[None], u_rest])
+        return (w - 2.0 * v * jnp.dot(v, w)).reshape(self.torus_shape)
 
     def __post_init__(self):
         spectrum, use_pad, grid_shape = self.spectrum, self.use_pad, self.spectrum.geom.grid_shape
@@ -316,8 +345,8 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None):
         "ls_bounds": {"min": lo.tolist(), "max": hi.tolist()},
         "gamma_prior": (a, b),
         "n_latent": geom.n_torus,
-        "dense_mass": [("sigma", "ls_unit")],
-        "exclude_sites": ["u"],
+        "dense_mass": [("sigma", "ls_unit", "u_soft")],
+        "exclude_sites": ["u_rest"],
         "init_strategy": init_to_value(values={"sigma": max(pre.pilot["sigma"], 0.05),
                                                "ls_unit": u_pilot[: lo.size]}),
         "complete": complete_posterior,
@@ -329,8 +358,11 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None):
 
 def complete_posterior(idata, stats, setup, seed: int):
     """Add the exactly drawn baseline to the posterior: ρ₀ | f ~ Gamma(a + S, b + Z(f)) per
-    draw, μ = log ρ₀, and the rate Σ_c λ_c |c ∩ W| = ρ₀ · exp(log_window_integral)."""
+    draw, μ = log ρ₀, and the rate Σ_c λ_c |c ∩ W| = ρ₀ · exp(log_window_integral).
+    Runs with per-scan terms sampled ρ₀ (and the rate) already: nothing to add."""
     post = idata.posterior
+    if "mu" in post:
+        return idata
     a, b = setup.extra["gamma_prior"]
     total = float(np.sum(setup.inputs["counts"]))
     log_z = np.asarray(post["log_z"], float)
