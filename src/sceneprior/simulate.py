@@ -114,6 +114,20 @@ class Lowmarsh:
     def lam_max(self) -> float:
         return self.sea_peak + self.shoal_peak + self.floor + self.land
 
+    def zone_rate(self, range_m, bearing_deg, order: int = 64) -> tuple[float, float]:
+        """True expected clutter detections per scan in a polar zone [r₁, r₂] × [θ₁, θ₂]
+        (inside the window: the land mask applies), by Gauss–Legendre quadrature; returns
+        (rate, |rate(order) − rate(2·order)|)."""
+        zone = Region(frame="polar", bounds0=tuple(range_m), bounds1=tuple(bearing_deg),
+                      masks=(SectorMask(range=self.range_m, bearing=self.land_bearing_deg, name="land"),))
+
+        def integral(n):
+            c0, c1, w = zone.quadrature(n)
+            return float(np.sum(w * self.sea_intensity(c0, c1)))
+
+        lo, hi = integral(order), integral(2 * order)
+        return hi, abs(hi - lo)
+
     def window_rate(self, order: int = 64) -> tuple[float, float]:
         """True expected detections per scan over the window (region minus the land mask),
         by Gauss–Legendre quadrature; returns (rate, |rate(order) − rate(2·order)|)."""

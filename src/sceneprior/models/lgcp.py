@@ -417,6 +417,22 @@ def describe_prior(prior: dict, stats) -> dict:
     }
 
 
+def _hyper_summary(result) -> dict:
+    post = result.idata.posterior
+    axes_units = ["m", "degree"] if result.stats.grid.frame == "polar" else ["m"]
+
+    def stat(v):
+        v = np.asarray(v, float).reshape(-1)
+        q = np.quantile(v, [0.05, 0.5, 0.95])
+        return {"mean": float(v.mean()), "sd": float(v.std(ddof=1)), "q05": float(q[0]), "q50": float(q[1]),
+                "q95": float(q[2])}
+
+    ls = np.asarray(post["length_scale"], float)
+    return {"sigma": stat(post["sigma"]), "mu": {"units": "log(m-2 scan-1)", **stat(post["mu"])},
+            "length_scale": [stat(ls[..., i]) for i in range(ls.shape[-1])],
+            "length_scale_units": axes_units[: ls.shape[-1]]}
+
+
 def summary(result) -> dict:
     ex = result.setup.extra
     g = result.stats.grid
@@ -427,6 +443,7 @@ def summary(result) -> dict:
                          "stationary in (range [m], bearing [deg]) with one length scale each: polar "
                          "cells are a regular lattice only in those coordinates"),
         "length_scale_bounds": ex["ls_bounds"],
+        "posterior": _hyper_summary(result),
         "embedding": ex["embedding"],
         "field_parameters": {"torus_cells": int(ex["geom"].geom.n_torus), "truncation": "none (every torus mode kept)"},
         "parametrisation": {
