@@ -51,8 +51,14 @@ class FitResult:
         return {n: np.asarray(post[n]) for n in names}
 
     def cell_intensity(self) -> np.ndarray:
-        """(chain, draw, n_cells) intensity draws [m⁻² scan⁻¹]."""
-        return self.model.cell_intensity(self.posterior_arrays(), self.stats, self.setup)
+        """(chain, draw, n_cells) intensity draws [m⁻² scan⁻¹], computed once and kept (the
+        run's outputs, zone rates and diagnostics all read it; read-only)."""
+        cached = getattr(self, "_cell_intensity", None)
+        if cached is None:
+            cached = np.asarray(self.model.cell_intensity(self.posterior_arrays(), self.stats, self.setup))
+            cached.setflags(write=False)
+            self._cell_intensity = cached
+        return cached
 
     def rate_draws(self) -> np.ndarray:
         """(chain, draw) expected detections per scan in the window."""

@@ -122,23 +122,29 @@ def _scalar(da, worst) -> float:
     return float(vals.reshape(())) if vals.size == 1 else float(worst(vals))
 
 
-def cell_diagnostics(log_lam: np.ndarray) -> dict:
+def cell_diagnostics(log_lam: np.ndarray, chunk: int = 2048) -> dict:
     """R-hat and bulk ESS of the log intensity over cells, (chain, draw, cell) input.
 
     Reported as quantiles over cells: a maximum over 10⁴ cells would fail healthy runs by
-    chance, so the gate reads the 99th percentile of R-hat and the median bulk ESS."""
+    chance, so the gate reads the 99th percentile of R-hat and the median bulk ESS.
+    Computed by arviz in chunks of cells (its rank normalisation makes several float64
+    copies of its input), so large maps stay within memory."""
     import arviz as az
 
-    x = np.asarray(log_lam, dtype=np.float64)
-    if x.shape[-1] == 0:
-        rhat = ess = np.zeros(0)
-    else:
-        ds = az.convert_to_dataset({"log_intensity": x}, dims={"log_intensity": ["cell"]})
-        rhat = np.asarray(az.rhat(ds)["log_intensity"], dtype=float)
-        ess = np.asarray(az.ess(ds, method="bulk")["log_intensity"], dtype=float)
+    x = np.asarray(log_lam)
+    n = x.shape[-1]
+    rhat = np.zeros(n)
+    ess = np.zeros(n)
+    for i in range(0, n, chunk):
+        part = np.asarray(x[..., i:i + chunk], dtype=np.float64)
+        ds = az.convert_to_dataset({"log_intensity": part}, dims={"log_intensity": ["cell"]})
+        rhat[i:i + chunk] = np.asarray(az.rhat(ds)["log_intensity"], dtype=float)
+        ess[i:i + chunk] = np.asarray(az.ess(ds, method="bulk")["log_intensity"], dtype=float)
+    if n == 0:
+        rhat = ess = np.full(1, np.nan)
     return {
         "quantity": "log intensity per cell (cells with area in the window)",
-        "n_cells": int(x.shape[-1]),
+        "n_cells": int(n),
         "r_hat_p99": float(np.nanpercentile(rhat, 99)),
         "r_hat_max": float(np.nanmax(rhat)),
         "ess_bulk_median": float(np.nanmedian(ess)),

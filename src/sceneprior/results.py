@@ -215,9 +215,11 @@ def _zone_rates(result) -> dict:
 
     za = zone_cell_areas(result.stats.region, result.stats.grid, result.spec.zones, result.spec.source)
     lam = result.cell_intensity()
+    c, d, n = lam.shape
     out = {}
     for z, area in zip(result.spec.zones, za):
-        draws = (lam * area).sum(axis=-1)
+        # a matrix-vector product in the draws' own precision (no float64 copy of the draws)
+        draws = np.asarray(lam.reshape(c * d, n) @ area.astype(lam.dtype), dtype=np.float64).reshape(c, d)
         import arviz as az
 
         out[z.name] = {"units": "detections per scan in the zone (inside the window)",

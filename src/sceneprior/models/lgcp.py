@@ -102,22 +102,27 @@ class Spectrum:
     geom: TorusGeometry
     method: str
 
-    def _freqs(self, rep):
+    def _tables(self):
+        """Squared scaled-free frequencies of the alias terms, per axis: row table
+        (m0//2+1, 2·N_ALIAS+1) for |k0| = 0..m0/2 (the density depends on s0² only, and the
+        alias set {(k0 + q·m0)²} is the same for −k0), column table (m1//2+1, ·), and the
+        row index that mirrors |k0| back to the m0 rows of the half spectrum."""
         (m0, m1), (h0, h1) = self.geom.torus_shape, self.geom.spacing
-        half = m1 // 2 + 1
-        k0 = np.fft.fftfreq(m0, d=1.0 / m0)[np.asarray(rep) // half]
-        k1 = (np.asarray(rep) % half).astype(float)
         q = np.arange(-N_ALIAS, N_ALIAS + 1, dtype=float)
-        s0 = (k0[:, None] + q[None, :] * m0) / (m0 * h0)
-        s1 = (k1[:, None] + q[None, :] * m1) / (m1 * h1)
-        return s0, s1
+        k0 = np.arange(m0 // 2 + 1, dtype=float)
+        k1 = np.arange(m1 // 2 + 1, dtype=float)
+        s0 = ((k0[:, None] + q[None, :] * m0) / (m0 * h0)) ** 2
+        s1 = ((k1[:, None] + q[None, :] * m1) / (m1 * h1)) ** 2
+        rows = np.abs(np.fft.fftfreq(m0, d=1.0 / m0)).astype(np.int64)
+        return s0, s1, rows
 
-    def _periodised(self, rep, length_scales, variance, xp):
+    def _periodised(self, length_scales, variance, xp):
+        """Λ on the half spectrum (m0, m1//2+1): variance·ℓ₀ℓ₁/(h₀h₁) Σ_q S₁(ℓ∘s_q)."""
         ls = length_scales if np.ndim(length_scales) and np.shape(length_scales)[0] == 2 else \
             xp.stack([xp.reshape(length_scales, ()), xp.reshape(length_scales, ())])
-        s0, s1 = self._freqs(rep)
-        u2 = (s0 * ls[0])[:, :, None] ** 2 + (s1 * ls[1])[:, None, :] ** 2
-        dens = _density_unit(self.geom.kernel, u2, xp).sum(axis=(1, 2))
+        s0, s1, rows = self._tables()
+        u2 = (s0 * ls[0] ** 2)[:, None, :, None] + (s1 * ls[1] ** 2)[None, :, None, :]
+        dens = _density_unit(self.geom.kernel, u2, xp).sum(axis=(2, 3))[rows]
         h0, h1 = self.geom.spacing
         return variance * ls[0] * ls[1] * dens / (h0 * h1)
 
@@ -126,9 +131,7 @@ class Spectrum:
         if self.method == "embedding":
             return self.geom.eigenvalues(length_scales, variance)
         xp = jnp if isinstance(length_scales, jax.Array) or isinstance(variance, jax.Array) else np
-        m0, m1 = self.geom.torus_shape
-        rep = np.arange(m0 * (m1 // 2 + 1))
-        return self._periodised(rep, length_scales, variance, xp).reshape(m0, m1 // 2 + 1)
+        return self._periodised(length_scales, variance, xp)
 
 
 def _periodised_report(geom: TorusGeometry, spec: "Spectrum", lo2, hi2) -> dict:
