@@ -305,3 +305,51 @@ def test_overdispersed_lgcp_count_terms_centre_on_nb2_mle(rain_runs):
     # the LGCP map follows the range fall-off the uniform maps miss (test_checks.py): no
     # zone is flagged here, where both uniform fits of this recording are
     assert not od["spatial_residuals"]["flagged"], od["spatial_residuals"]
+
+
+def test_mixture_with_overdispersion_factor_equals_scipy_sum(tmp_path):
+    """The birth/clutter mixture kind takes the per-step terms too: its likelihood factor at
+    fixed parameters equals Σ_k [log NB(n_k; m_k Λ, φ) + log n_k! + Σ_{i∈k} log(λ(x_i)/Λ)],
+    with λ(x) = Σ_j w_j N(x; m_j, P_j) from scipy.stats.multivariate_normal, the in-box mass
+    Λ = Σ_j w_j P_j(box) from scipy.stats.norm CDFs (diagonal P_j) and scipy.stats.nbinom."""
+    import jax.numpy as jnp
+    from numpyro import handlers
+    from scipy.special import logsumexp
+
+    from sceneprior.fitting import prepare
+    from sceneprior.models.registry import get_model, resolve_prior
+
+    rng = np.random.default_rng(21)
+    K = 30
+    rain = (rng.uniform(size=K) < 0.5).astype(int)
+    n = rng.poisson(4 * np.exp(0.4 * rain))
+    spec = load_spec(box_recording(tmp_path, n, scans_columns={"rain": rain}, rng=rng,
+                                   model={"kind": "mixture", "components": 2, "diagonal": True,
+                                          "overdispersion": True, "scan_covariates": ["rain"]}))
+    kind = get_model(spec.model.kind)
+    assert kind.name == "mixture+overdispersion+scan_covariates"
+    prior = resolve_prior(kind, spec.model.prior, "t")
+    _, rec, stats = prepare(spec)
+    setup = kind.setup(stats, prior, spec.model)
+    w = np.array([3.0, 2.0])
+    mx, my = np.array([300.0, 700.0]), np.array([200.0, 300.0])
+    sd = np.array([[150.0, 120.0], [200.0, 90.0]])
+    params = {"weight_raw": jnp.asarray(w), "mean_x_raw": jnp.asarray(mx), "mean_y_raw": jnp.asarray(my),
+              "scale_raw": jnp.asarray(sd), "phi": 0.3, "scan_coef_std": jnp.array([0.25])}
+    tr = handlers.trace(handlers.substitute(handlers.seed(kind.fn, 0), data=params)).get_trace(**setup.inputs)
+    site = tr["loglik"]
+    got = float(site["fn"].log_prob(site["value"]).sum())
+    pts = setup.inputs["points"]
+    comp = np.stack([st.multivariate_normal([mx[j], my[j]], np.diag(sd[j] ** 2)).logpdf(pts) for j in range(2)], -1)
+    log_lam = logsumexp(comp + np.log(w), axis=-1)
+    mass = np.prod([st.norm.cdf(1000.0, mx, sd[:, 0]) - st.norm.cdf(0.0, mx, sd[:, 0]),
+                    st.norm.cdf(500.0, my, sd[:, 1]) - st.norm.cdf(0.0, my, sd[:, 1])], axis=0)
+    Lam = float(w @ mass)
+    design = setup.extra["scan_design"]
+    log_m = design.log_multiplier(np.array([[0.25]]))[0]
+    mu = Lam * np.exp(log_m)
+    a = 1 / 0.3
+    nk = stats.scan_counts
+    per_point = np.bincount(stats.point_scan, weights=log_lam, minlength=K)
+    ref = np.sum(st.nbinom(a, a / (a + mu)).logpmf(nk) + gammaln(nk + 1) + per_point - nk * np.log(Lam))
+    assert got == pytest.approx(ref, rel=1e-9, abs=1e-7)

@@ -101,6 +101,7 @@ def mixture_model(
     diagonal: bool = False,
     prior: dict | None = None,
     box_order: int = 64,
+    scan_terms=None,
 ):
     """numpyro model of a PPP with Gaussian-mixture intensity (module docstring).
 
@@ -116,7 +117,9 @@ def mixture_model(
         error with ``mixture_mass.window_mass`` at the posterior draws.
     bbox: the window's Cartesian bounding box (scales the priors; defaults to ``box``);
     mean_box: support of the means (defaults to ``bbox``); prior: overrides of
-    ``DEFAULT_PRIOR``.
+    ``DEFAULT_PRIOR``; scan_terms: per-step terms (``models.scanterms``: over-dispersion,
+    step covariates, time bins) or None — the per-step likelihood is then the
+    negative-binomial (or Poisson) count of each step times its points' density λ/Λ.
     """
     K = int(n_components)
     if K < 1:
@@ -166,12 +169,18 @@ def mixture_model(
         mass = jnp.asarray(w) @ jnp.exp(log_normal_pdf_chol(jnp.asarray(nodes), mean, chol))
     mass = numpyro.deterministic("mass", mass)
     weight_in = numpyro.deterministic("weight_in", weight * mass)
-    rate = numpyro.deterministic("rate", jnp.sum(weight_in))
+    rate = jnp.sum(weight_in)
 
     log_lam = logsumexp(jnp.log(weight) + log_normal_pdf_chol(points, mean, chol), axis=-1)
     if point_mask is not None:
         log_lam = jnp.where(jnp.asarray(point_mask) > 0, log_lam, 0.0)
-    numpyro.factor("loglik", jnp.sum(log_lam) - n_steps * rate)
+    if scan_terms is None:
+        numpyro.deterministic("rate", rate)
+        numpyro.factor("loglik", jnp.sum(log_lam) - n_steps * rate)
+    else:
+        from .scanterms import ppp_factor
+
+        numpyro.deterministic("rate", rate * ppp_factor(jnp.sum(log_lam), rate, scan_terms))
 
 
 def log_intensity(points, weight, mean, cov):
