@@ -170,6 +170,7 @@ def test_demo_map_spec_converges(demo_run):
     assert dg["divergences"] == 0
     assert dg["cells"]["r_hat_p99"] <= 1.02 and dg["cells"]["ess_bulk_median"] >= 400
     assert s["gate"]["converged"]
+    assert 1 <= dg["leapfrog_steps_mean"] <= dg["leapfrog_steps_max"] <= 1023  # the sampler's work is reported
 
 
 def test_demo_map_zone_rates_cover_the_truth(demo_run):

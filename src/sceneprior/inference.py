@@ -107,8 +107,9 @@ def diagnostics(idata, var_names) -> dict:
         }
     ss = idata.sample_stats
     out["divergences"] = int(np.asarray(ss["diverging"]).sum()) if "diverging" in ss else 0
-    if "num_steps" in ss:
-        steps = np.asarray(ss["num_steps"])
+    name = next((k for k in ("n_steps", "num_steps") if k in ss), None)  # arviz renames numpyro's field
+    if name is not None and np.asarray(ss[name]).max() > 0:  # exact draws have no leapfrog steps
+        steps = np.asarray(ss[name])
         out["leapfrog_steps_mean"] = float(steps.mean())
         out["leapfrog_steps_max"] = int(steps.max())
     out["chains"] = int(post.sizes["chain"])
