@@ -317,13 +317,42 @@ def summary_dict(result) -> dict:
     return out
 
 
-def write_run(result, runs_dir: Path | None = None) -> Path:
-    """Write runs/NAME/ atomically and return its path."""
-    runs_dir = Path(runs_dir or result.spec.output_dir)
+def atomic_run_dir(runs_dir, name: str, write_files) -> Path:
+    """Write the run directory ``runs_dir/name`` atomically (DESIGN.md §5) and return its path.
+
+    ``write_files(tmp)`` fills a private temporary sibling folder; then an existing run of
+    that name is moved aside (never deleted before the new one is in place), the new folder is
+    renamed into place and the old one removed. A crash or Ctrl-C leaves either the old run or
+    the new one under ``name``: before the rename the old run is put back; between the two
+    renames it survives in ``.NAME.old-*/run``."""
+    runs_dir = Path(runs_dir)
     runs_dir.mkdir(parents=True, exist_ok=True)
-    target = runs_dir / result.spec.name
-    tmp = Path(tempfile.mkdtemp(prefix=f".{result.spec.name}.partial-", dir=runs_dir))
+    target = runs_dir / name
+    tmp = Path(tempfile.mkdtemp(prefix=f".{name}.partial-", dir=runs_dir))
+    old = None
     try:
+        write_files(tmp)
+        if target.exists():
+            old = Path(tempfile.mkdtemp(prefix=f".{name}.old-", dir=runs_dir))
+            os.replace(target, old / "run")
+        os.chmod(tmp, 0o755)  # mkdtemp makes it private
+        os.replace(tmp, target)
+    except BaseException:
+        if old is not None and (old / "run").exists() and not target.exists():
+            os.replace(old / "run", target)  # the new run did not land: the old one goes back
+        shutil.rmtree(tmp, ignore_errors=True)
+        if old is not None:
+            shutil.rmtree(old, ignore_errors=True)
+        raise
+    if old is not None:
+        shutil.rmtree(old, ignore_errors=True)
+    return target
+
+
+def write_run(result, runs_dir: Path | None = None) -> Path:
+    """Write runs/NAME/ atomically (:func:`atomic_run_dir`) and return its path."""
+
+    def files(tmp: Path) -> None:
         idata = result.idata
         drop = [v for v in getattr(result.setup, "extra", {}).get("drop_from_posterior", [])
                 if v in idata.posterior]
@@ -338,21 +367,44 @@ def write_run(result, runs_dir: Path | None = None) -> Path:
         summary = summary_dict(result)
         (tmp / "summary.json").write_text(json.dumps(summary, indent=2, ensure_ascii=False) + "\n",
                                           encoding="utf-8")
-        old = None
-        if target.exists():
-            old = Path(tempfile.mkdtemp(prefix=f".{result.spec.name}.old-", dir=runs_dir))
-            os.replace(target, old / "run")
-        os.chmod(tmp, 0o755)  # mkdtemp makes it private
-        os.replace(tmp, target)
-        if old is not None:
-            shutil.rmtree(old, ignore_errors=True)
-    except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
-        raise
-    return target
+
+    return atomic_run_dir(runs_dir or result.spec.output_dir, result.spec.name, files)
 
 
 RUN_FILES = ("posterior.nc", "intensity.nc", "cell_draws.nc", "scans.nc", "summary.json")
+DETECTION_SCHEMA = "sceneprior.detection/1"
+# what each summary schema's run is and which command writes it (messages about runs of the wrong kind)
+RUN_KINDS = {SUMMARY_SCHEMA: "fit run (written by `sceneprior fit`: clutter, or a birth mixture)",
+             DETECTION_SCHEMA: "detection run (written by `sceneprior detection`)"}
+
+
+def read_run_summary(path, files, schema: str, kind: str, remedy: str) -> tuple[Path, dict]:
+    """Validate a run directory of one kind and return (path, summary): a folder, its
+    summary.json read and its schema checked first (a run of another known kind is named as
+    such), then the files the kind needs. One-line InputError otherwise; ``kind`` names the run
+    in messages ("run", "detection run"), ``remedy`` says what to do."""
+    from .errors import InputError
+
+    path = Path(path)
+    if not path.is_dir():
+        raise InputError(f"{path}: not a {kind} directory (expected runs/NAME/)")
+    sp = path / "summary.json"
+    summary = None
+    if sp.is_file():
+        try:
+            summary = json.loads(sp.read_text(encoding="utf-8"))
+        except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+            raise InputError(f"{sp}: unreadable ({exc})") from None
+        got = summary.get("schema") if isinstance(summary, dict) else None
+        if got != schema:
+            if got in RUN_KINDS:
+                raise InputError(f"{path}: a {RUN_KINDS[got]} (summary schema {got!r}), not a {kind}")
+            raise InputError(f"{path}: {kind} written by another sceneprior version (summary schema {got!r}, "
+                             f"this version reads {schema!r}); {remedy}")
+    missing = [f for f in files if not (path / f).is_file()]
+    if missing:
+        raise InputError(f"{path}: incomplete {kind}, missing {', '.join(missing)}; {remedy}")
+    return path, summary
 
 
 class Run:
@@ -363,23 +415,8 @@ class Run:
     """
 
     def __init__(self, path: Path):
-        from .errors import InputError
-
-        self.path = Path(path)
-        if not self.path.is_dir():
-            raise InputError(f"{self.path}: not a run directory (expected runs/NAME/)")
-        missing = [f for f in RUN_FILES if not (self.path / f).is_file()]
-        if missing:
-            raise InputError(f"{self.path}: incomplete run, missing {', '.join(missing)}; re-run "
-                             "`sceneprior fit` for it")
-        try:
-            self.summary = json.loads((self.path / "summary.json").read_text(encoding="utf-8"))
-        except (json.JSONDecodeError, UnicodeDecodeError) as exc:
-            raise InputError(f"{self.path / 'summary.json'}: unreadable ({exc})") from None
-        if self.summary.get("schema") != SUMMARY_SCHEMA:
-            raise InputError(f"{self.path}: run written by another sceneprior version (summary schema "
-                             f"{self.summary.get('schema')!r}, this version reads {SUMMARY_SCHEMA!r}); "
-                             "re-run `sceneprior fit`")
+        self.path, self.summary = read_run_summary(path, RUN_FILES, SUMMARY_SCHEMA, "run",
+                                                   "re-run `sceneprior fit`")
         self._cache: dict = {}
 
     def _open(self, name):
