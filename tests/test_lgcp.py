@@ -365,3 +365,37 @@ def test_lgcp_run_outputs_on_a_polar_masked_grid(tmp_path):
     # the map integrates to the rate draw by draw (Σ_c λ_c |c ∩ W|)
     lam = res.cell_intensity()
     np.testing.assert_allclose((lam * res.stats.window_area).sum(-1), res.rate_draws(), rtol=1e-5)
+
+
+def test_prior_draws_rate_mean_and_prior_predictive_check(tmp_path):
+    """``lgcp.prior_draws`` (used by `sceneprior check`'s prior predictive): the mean of the
+    prior rate equals E[ρ₀]·|W|·E[exp(σ²/2)] = (a/b)·|W|·(1 − s²)^(-1/2) for σ ~ HalfNormal(s),
+    s < 1 — the lognormal mean E[e^f] = exp(σ²/2) at fixed σ (Møller, Syversveen &
+    Waagepetersen 1998) and the χ²₁ moment generating function E[exp(tχ²₁)] = (1 − 2t)^(-1/2)
+    (from memory) — within 4 Monte Carlo standard errors; and `check` runs its prior side on
+    an LGCP run (it crashed before prior_draws existed)."""
+    from conftest import box_case
+    from sceneprior.checks import check_run
+    from sceneprior.fitting import fit
+    from sceneprior.results import write_run
+    from sceneprior.spec import load_spec
+
+    rng = np.random.default_rng(31)
+    K = 40
+    n = rng.poisson(12.0, K)
+    scans = np.repeat(np.arange(K), n)
+    prior = {"rate_median": 12.0, "rate_log_sd": 0.3, "sigma_scale": 0.5}
+    spec_path = box_case(tmp_path, scans, rng.uniform(0, 1000, n.sum()), rng.uniform(0, 500, n.sum()),
+                         n_scans_table=K, model={"kind": "lgcp", "prior": prior},
+                         sampler={"chains": 2, "warmup": 150, "draws": 150, "seed": 2, "progress": False},
+                         output={"dir": str(tmp_path / "runs")})
+    res = fit(load_spec(spec_path), progress=False, log=lambda m: None)
+    a, b = res.setup.extra["gamma_prior"]
+    draws = lgcp.prior_draws(res.prior, res.stats, res.setup, np.random.default_rng(5), 4000)
+    ref = a / b * res.stats.window_total / math.sqrt(1.0 - prior["sigma_scale"] ** 2)
+    mcse = draws["rate"].std(ddof=1) / math.sqrt(draws["rate"].size)
+    assert abs(draws["rate"].mean() - ref) < 4 * mcse, (draws["rate"].mean(), ref, mcse)
+    out = check_run(write_run(res), prior_side=True, sensitivity=False)
+    pp = out["prior_predictive"]
+    assert "status" not in pp and 0.0 <= pp["observed_quantile"] <= 1.0
+    assert pp["prior_rate_q05"] < pp["prior_rate_q50"] < pp["prior_rate_q95"]

@@ -354,7 +354,10 @@ def prior_predictive(rb: dict, n_obs, rng, draws: int = 1000, seed: int = 0, lev
     """Prior predictive distribution of the mean count per scan and the dispersion index."""
     kind, setup, stats, prior = rb["kind"], rb["setup"], rb["stats"], rb["prior"]
     K = stats.n_scans
-    if kind.name == "sites":
+    from .models.variants import split_kind
+
+    base_kind, tokens = split_kind(kind.name)
+    if base_kind == "sites":
         from .models.hierarchical import prior_draws
 
         pd = prior_draws(prior, stats, setup, rng, draws)
@@ -369,14 +372,32 @@ def prior_predictive(rb: dict, n_obs, rng, draws: int = 1000, seed: int = 0, lev
         import jax
         from numpyro.infer import Predictive
 
-        sites = ["rate", "base_rate", "phi", "scan_coef_std", "time_effect"]
-        try:
-            pd = Predictive(kind.fn, num_samples=draws, return_sites=sites)(jax.random.PRNGKey(seed),
-                                                                          **setup.inputs)
-        except (NotImplementedError, ValueError) as exc:
-            return {"status": "not available", "reason": f"the prior cannot be sampled ({type(exc).__name__}: "
-                                                          f"{str(exc).splitlines()[0][:120]}); an improper prior?"}
-        pd = {k: np.asarray(v, float) for k, v in pd.items()}
+        if base_kind == "lgcp":  # its field prior enters through a factor: draw it directly
+            from .models import lgcp
+            from .models.scanterms import scan_effects
+
+            pd = lgcp.prior_draws(prior, stats, setup, rng, draws)
+            pd["base_rate"] = pd["rate"]
+            if "scan_terms" in setup.inputs:
+                st = setup.inputs["scan_terms"]
+                eff = Predictive(lambda: scan_effects(st), num_samples=draws,
+                                 return_sites=["phi", "scan_coef_std", "time_effect"])(jax.random.PRNGKey(seed))
+                pd.update({k: np.asarray(v, float) for k, v in eff.items()})
+                design = setup.extra["scan_design"]
+                if design.names or design.n_bins:  # rate = base × mean_k m_k, as the model reports it
+                    lm = design.log_multiplier(pd.get("scan_coef_std"), pd.get("time_effect"))
+                    pd["rate"] = pd["base_rate"] * np.exp(lm).mean(axis=1)
+        else:
+            sites = ["rate", "base_rate", "phi", "scan_coef_std", "time_effect"]
+            try:
+                pd = Predictive(kind.fn, num_samples=draws, return_sites=sites)(jax.random.PRNGKey(seed),
+                                                                              **setup.inputs)
+            except (NotImplementedError, ValueError) as exc:
+                return {"status": "not available", "reason": f"the prior cannot be sampled ({type(exc).__name__}: "
+                                                              f"{str(exc).splitlines()[0][:120]}); an improper prior?"}
+            pd = {k: np.asarray(v, float) for k, v in pd.items()}
+            if "rate" not in pd:
+                return {"status": "not available", "reason": f"the '{kind.name}' model has no rate site to sample"}
         rate = pd["rate"]
         base = pd.get("base_rate", rate)
         design = setup.extra.get("scan_design")
