@@ -20,7 +20,7 @@ import numpy as np
 from . import __version__
 
 CAUTION = (
-    "Fitted clutter and birth priors are statistical estimates from recorded data. "
+    "Fitted clutter and birth priors and detection probabilities are statistical estimates from recorded data. "
     "Validate them in closed loop with the tracker before operational use; local codes, "
     "regulations and the system's own safety process take precedence over these numbers."
 )
@@ -218,8 +218,10 @@ def _zone_rates(result) -> dict:
     c, d, n = lam.shape
     out = {}
     for z, area in zip(result.spec.zones, za):
-        # a matrix-vector product in the draws' own precision (no float64 copy of the draws)
-        draws = np.asarray(lam.reshape(c * d, n) @ area.astype(lam.dtype), dtype=np.float64).reshape(c, d)
+        # float64 sums over chunks of draws (no float64 copy of all draws at once)
+        flat = lam.reshape(c * d, n)
+        draws = np.concatenate([np.asarray(flat[i:i + 256], np.float64) @ area
+                                for i in range(0, c * d, 256)]).reshape(c, d)
         import arviz as az
 
         out[z.name] = {"units": "detections per scan in the zone (inside the window)",

@@ -350,8 +350,10 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None):
         "n_latent": geom.n_torus,
         "dense_mass": [("sigma", "ls_unit", "u_soft")],
         "exclude_sites": ["u_rest"],
+        # ρ₀ (sampled only with per-scan terms) starts at its conditional mean given a flat field
         "init_strategy": init_to_value(values={"sigma": max(pre.pilot["sigma"], 0.05),
-                                               "ls_unit": u_pilot[: lo.size]}),
+                                               "ls_unit": u_pilot[: lo.size],
+                                               "rho0": (a + float(stats.counts[obs].sum())) / (b + float(stats.exposure[obs].sum()))}),
         "complete": complete_posterior,
         "dims": {"length_scale": ["axis"], "ls_unit": ["axis"], "field": ["cell"]},
         "coords": {"axis": list(stats.grid.axes[: lo.size]) if lo.size == 2 else ["isotropic"]},
@@ -433,7 +435,8 @@ def describe_prior(prior: dict, stats) -> dict:
     return {
         "rho0": f"Gamma({a:.4g}, {b:.4g} m²·scan) on the baseline intensity ρ₀ = e^μ [m⁻² scan⁻¹]: median "
                 f"{prior['rate_median']:g}/|W| (|W| = {stats.window_total:.6g} m²), sd of μ = log ρ₀ "
-                f"{prior['rate_log_sd']:g}; integrated out in the sampler, drawn exactly afterwards",
+                f"{prior['rate_log_sd']:g}; without per-scan terms integrated out in the sampler and drawn "
+                "exactly afterwards, with them (not conjugate) sampled as the site rho0",
         "sigma": f"HalfNormal({prior['sigma_scale']:g}) on the field sd (log scale)",
         "length_scale": [f"ℓ = {a_:g}·({b_:g}/{a_:g})^u {u_}, u ~ Beta(2, 2)" for a_, b_, u_ in zip(lo, hi, unit)],
         "field": "zero-mean stationary Gaussian field, circulant embedding on a padded torus, every "
@@ -445,18 +448,13 @@ def describe_prior(prior: dict, stats) -> dict:
 
 
 def _hyper_summary(result) -> dict:
+    from ..results import _interval
+
     post = result.idata.posterior
     axes_units = ["m", "degree"] if result.stats.grid.frame == "polar" else ["m"]
-
-    def stat(v):
-        v = np.asarray(v, float).reshape(-1)
-        q = np.quantile(v, [0.05, 0.5, 0.95])
-        return {"mean": float(v.mean()), "sd": float(v.std(ddof=1)), "q05": float(q[0]), "q50": float(q[1]),
-                "q95": float(q[2])}
-
     ls = np.asarray(post["length_scale"], float)
-    return {"sigma": stat(post["sigma"]), "mu": {"units": "log(m-2 scan-1)", **stat(post["mu"])},
-            "length_scale": [stat(ls[..., i]) for i in range(ls.shape[-1])],
+    return {"sigma": _interval(post["sigma"]), "mu": {"units": "log(m-2 scan-1)", **_interval(post["mu"])},
+            "length_scale": [_interval(ls[..., i]) for i in range(ls.shape[-1])],
             "length_scale_units": axes_units[: ls.shape[-1]]}
 
 
@@ -476,7 +474,9 @@ def summary(result) -> dict:
         "parametrisation": {
             "description": "white noise on the torus; per-mode partial centring d_k = 1 + w̄Λ_k, padding "
                            "correction at pilot hyperparameters, one soft direction (fields/preconditioning.py); "
-                           "baseline ρ₀ integrated out (conjugate Gamma) and drawn exactly per draw",
+                           + ("baseline ρ₀ sampled (per-scan terms make it non-conjugate)"
+                              if "scan_terms" in result.setup.inputs else
+                              "baseline ρ₀ integrated out (conjugate Gamma) and drawn exactly per draw"),
             **pre.report(),
         },
         "extrapolation": "cells without exposure are predicted through the field from their "
