@@ -69,15 +69,16 @@ def _check_memory(setup, stats, smp, source: str, thinning: int = 1) -> None:
     """Refuse fits whose sampler state and kept draws would not fit in memory (say what would).
 
     Per chain the sampler holds a few copies of the torus field (position, momentum,
-    gradient and the tree's end points, float64); every kept draw holds the cell field in
-    float32."""
+    gradient and the tree's end points, float64); the kept cell field (float32) is held
+    three times at the peak: by the sampler's output, by the posterior and by the cell
+    intensity draws the outputs are computed from."""
     import os
 
     n_latent = int(setup.extra.get("n_latent", 0))
     if not n_latent:
         return
     kept = -(-smp.draws // thinning)
-    need = smp.chains * (kept * stats.grid.n_cells * 4.0 + 12 * n_latent * 8.0)
+    need = smp.chains * (3 * kept * stats.grid.n_cells * 4.0 + 12 * n_latent * 8.0)
     try:
         total = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
     except (ValueError, OSError, AttributeError):
@@ -219,6 +220,9 @@ def fit(spec: FitSpec, progress: bool = True, log=print) -> FitResult:
     from .inference import diagnostics
 
     diag = diagnostics(idata, ("rate",) + kind.hyper)
+    if thinning > 1:  # numpyro records sample statistics at the kept iterations only
+        diag["divergences_counted_over"] = (f"kept draws only: every {thinning}th sampler iteration (the "
+                                            "per-cell draws budget thinned the sampler)")
     result = FitResult(
         spec=spec,
         recording=rec,
