@@ -482,13 +482,13 @@ def cmd_births(args) -> int:
 
 
 def cmd_detection(args) -> int:
-    from .detprob import describe, fit_detection, gate_entry, load_detection_spec, write_detection_run
+    from .detprob import DetectionRun, describe, fit_detection, load_detection_spec, write_detection_run
 
     spec = load_detection_spec(args.spec)
     res = fit_detection(spec, progress=not args.quiet, log=_log)
     path = write_detection_run(res, Path(args.out) if args.out else None)
     print(describe(res, path))
-    verdict = gate_entry(res.diagnostics, res.idata.posterior)  # the verdict summary.json records
+    verdict = DetectionRun(path).summary["gate"]  # the verdict the run records
     if not verdict["converged"]:  # kept and marked unconverged (exit 3); export refuses it
         raise ConvergenceGateError(f"detection run written to {path} but unconverged: "
                                    + "; ".join(verdict["failures"]))

@@ -1,6 +1,8 @@
 """Detection-probability fits: detection spec → outcomes → NUTS → run directory.
 
-``sceneprior detection SPEC.toml`` calls :func:`fit_detection` then :func:`write_detection_run`.
+``sceneprior detection SPEC.toml`` calls :func:`sceneprior.spec.load_detection_spec` (the
+spec's validation lives with every other spec message in spec.py), :func:`fit_detection`
+then :func:`write_detection_run`.
 
 A detection spec names the recording's own fit specification (``recording = "…toml"``):
 its ``[data]`` (detections, scans, ``data.objects`` and ``[data.gates]``) and ``[space]``
@@ -25,7 +27,7 @@ counted and left out — the sensor is not expected to see them) is detected whe
 has a detection inside its gate (``tracklog.detection_outcomes``; the detections inside
 the region's bounds, masked ones dropped as for a fit).
 
-Run directory ``runs/NAME/`` (written to a temporary sibling and renamed):
+Run directory ``runs/NAME/`` (written atomically by ``results.atomic_run_dir``, as fit runs):
 ``posterior.nc`` (arviz; ``beta`` = (β₀, β₁) on the standardised range), ``detection.nc``
 (P_D per range bin, per grid cell, and on a fine range curve: posterior mean, sd, 5/50/95 %,
 probabilities; observed object-scans and detections per bin) and ``summary.json``
@@ -37,11 +39,7 @@ from __future__ import annotations
 
 import json
 import math
-import os
-import shutil
-import tempfile
 import time
-import tomllib
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
@@ -49,98 +47,11 @@ from pathlib import Path
 import numpy as np
 
 from .errors import InputError
+from .results import DETECTION_SCHEMA
+from .spec import DetectionSpec, load_detection_spec  # noqa: F401  (the detection spec is validated in spec.py)
 
-DETECTION_SCHEMA = "sceneprior.detection/1"
-KINDS = ("logit_range",)
-_SCHEMA = {
-    "name": None,
-    "description": None,
-    "recording": None,
-    "model": {"kind": None, "range_bins": None, "clutter_run": None, "prior": None},
-    "sampler": {"chains": None, "warmup": None, "draws": None, "seed": None, "progress": None, "method": None},
-    "output": {"dir": None},
-}
 CURVE_POINTS = 121
 RUN_FILES = ("posterior.nc", "detection.nc", "summary.json")
-
-
-@dataclass
-class DetectionSpec:
-    name: str
-    source: str
-    recording: object  # spec.FitSpec of the recording (its name/sampler/output replaced)
-    kind: str
-    prior: dict
-    range_bins: int
-    clutter_run: Path | None
-    raw: dict = field(default_factory=dict, repr=False)
-
-
-def load_detection_spec(path) -> DetectionSpec:
-    """Read and validate a detection spec (module docstring); one-line InputError otherwise."""
-    from .models.detection import DEFAULT_PRIOR
-    from .spec import _check_keys, load_spec
-
-    path = Path(path)
-    source = str(path)
-    if not path.is_file():
-        raise InputError(f"{source}: detection specification file not found")
-    try:
-        raw = tomllib.loads(path.read_text(encoding="utf-8"))
-    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
-        raise InputError(f"{source}: cannot parse TOML: {exc}") from None
-    _check_keys(raw, _SCHEMA, "", source)
-    name = raw.get("name")
-    if not isinstance(name, str) or not name or "/" in name or name.startswith("."):
-        raise InputError(f"{source}: 'name' (the run's name under the output folder) is required, "
-                         "a plain name such as \"lowmarsh-detection\"")
-    rec = raw.get("recording")
-    if not isinstance(rec, str) or not rec:
-        raise InputError(f"{source}: 'recording' must name the recording's fit specification (a TOML path) "
-                         "whose [data] has objects and gates")
-    base = path.parent
-    model = raw.get("model") or {}
-    kind = model.get("kind", "logit_range")
-    if kind not in KINDS:
-        raise InputError(f"{source}: unknown detection model kind {kind!r}; available: {', '.join(KINDS)}")
-    bins = model.get("range_bins", 20)
-    if isinstance(bins, bool) or not isinstance(bins, int) or not 1 <= bins <= 1000:
-        raise InputError(f"{source}: 'model.range_bins' must be a whole number 1..1000, got {bins!r}")
-    prior = dict(DEFAULT_PRIOR)
-    given = model.get("prior") or {}
-    if not isinstance(given, dict):
-        raise InputError(f"{source}: 'model.prior' must be a table ([model.prior])")
-    for k, v in given.items():
-        if k not in DEFAULT_PRIOR:
-            raise InputError(f"{source}: unknown prior parameter 'model.prior.{k}' for the detection model; "
-                             f"allowed: {', '.join(DEFAULT_PRIOR)}")
-        if isinstance(v, bool) or not isinstance(v, (int, float)) or not v > 0:
-            raise InputError(f"{source}: 'model.prior.{k}' must be a positive number (inf for flat), got {v!r}")
-        prior[k] = float(v)
-    if math.isinf(prior["coef_sd"]) != math.isinf(prior["intercept_sd"]):
-        raise InputError(f"{source}: a flat prior applies to both coefficients: set intercept_sd and coef_sd "
-                         "both to inf, or both finite")
-    clutter = model.get("clutter_run")
-    if clutter is not None:
-        if not isinstance(clutter, str) or not clutter:
-            raise InputError(f"{source}: 'model.clutter_run' must be a run directory path (a string)")
-        clutter = (base / clutter).resolve() if not Path(clutter).is_absolute() else Path(clutter)
-    smp = {"method": "nuts", "chains": 4, "warmup": 500, "draws": 1000, "seed": 0, "progress": True,
-           **(raw.get("sampler") or {})}  # the detection spec's own sampler, not the recording's
-    if smp.get("method") != "nuts":
-        raise InputError(f"{source}: the detection model is sampled with NUTS; 'sampler.method' must be \"nuts\"")
-    out = raw.get("output") or {}
-    out_dir = out.get("dir", "runs")
-    if not isinstance(out_dir, str) or not out_dir:
-        raise InputError(f"{source}: 'output.dir' must be a folder path (a string)")
-    out_dir = str((base / out_dir).resolve()) if not Path(out_dir).is_absolute() else out_dir
-    rec_path = (base / rec).resolve() if not Path(rec).is_absolute() else Path(rec)
-    recording = load_spec(rec_path, overrides={"name": name, "sampler": smp, "output": {"dir": out_dir}})
-    if recording.data.objects is None:
-        raise InputError(f"{rec_path}: the recording has no objects table; set data.objects (and [data.gates]) "
-                         "to fit the detection probability of known objects")
-    return DetectionSpec(name=name, source=source, recording=recording, kind=kind, prior=prior,
-                         range_bins=bins, clutter_run=clutter, raw=raw)
 
 
 # --------------------------------------------------------------------------- data
@@ -281,7 +192,7 @@ def detection_dataset(res: DetectionResult):
     """detection.nc: P_D per range bin, per grid cell and on a fine range curve."""
     import xarray as xr
 
-    from .models.detection import pd_draws
+    from .models.detection import cell_ranges, pd_draws
 
     d, beta = res.data, res.beta()
     lo, hi = range_extent(d.region)
@@ -295,14 +206,7 @@ def detection_dataset(res: DetectionResult):
     per_curve = _stats(pd_draws(beta, curve_r, res.centre, res.scale))
     grid = d.grid
     w = np.asarray(d.region.cell_window_area(grid), float)
-    if grid.frame == "polar":
-        e = grid.edges0
-        rc = 2.0 * (e[1:] ** 3 - e[:-1] ** 3) / (3.0 * (e[1:] ** 2 - e[:-1] ** 2))
-        cell_r = np.repeat(rc[:, None], grid.shape[1], axis=1)
-    else:
-        X, Y = np.meshgrid(grid.centres0, grid.centres1, indexing="ij")
-        cell_r = np.hypot(X, Y)
-    per_cell = _stats(pd_draws(beta, cell_r.reshape(-1), res.centre, res.scale))
+    per_cell = _stats(pd_draws(beta, cell_ranges(grid).reshape(-1), res.centre, res.scale))
     a0, a1 = grid.axes
     u1 = "degree" if grid.frame == "polar" else "m"
     prob = {"units": "1", "quantity": "detection probability per scan"}
@@ -389,41 +293,27 @@ def detection_summary(res: DetectionResult) -> dict:
 
 
 def write_detection_run(res: DetectionResult, runs_dir: Path | None = None) -> Path:
-    """Write runs/NAME/ (posterior.nc, detection.nc, summary.json) atomically."""
-    runs_dir = Path(runs_dir or res.spec.recording.output_dir)
-    runs_dir.mkdir(parents=True, exist_ok=True)
-    target = runs_dir / res.spec.name
-    tmp = Path(tempfile.mkdtemp(prefix=f".{res.spec.name}.partial-", dir=runs_dir))
-    try:
+    """Write runs/NAME/ (posterior.nc, detection.nc, summary.json) atomically
+    (:func:`sceneprior.results.atomic_run_dir`)."""
+    from .results import atomic_run_dir
+
+    def files(tmp: Path) -> None:
         res.idata.to_netcdf(str(tmp / "posterior.nc"), engine="h5netcdf")
         detection_dataset(res).to_netcdf(tmp / "detection.nc", engine="h5netcdf")
         (tmp / "summary.json").write_text(json.dumps(detection_summary(res), indent=2, ensure_ascii=False) + "\n",
                                           encoding="utf-8")
-        os.chmod(tmp, 0o755)
-        if target.exists():
-            shutil.rmtree(target)
-        os.replace(tmp, target)
-    except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
-        raise
-    return target
+
+    return atomic_run_dir(runs_dir or res.spec.recording.output_dir, res.spec.name, files)
 
 
 class DetectionRun:
     """A detection run read back: ``path``, ``summary``, ``dataset`` (detection.nc), ``posterior``."""
 
     def __init__(self, path):
-        self.path = Path(path)
-        if not self.path.is_dir():
-            raise InputError(f"{self.path}: not a detection run directory (expected runs/NAME/)")
-        missing = [f for f in RUN_FILES if not (self.path / f).is_file()]
-        if missing:
-            raise InputError(f"{self.path}: not a detection run (missing {', '.join(missing)}); write one with "
-                             "`sceneprior detection SPEC.toml`")
-        self.summary = json.loads((self.path / "summary.json").read_text(encoding="utf-8"))
-        if self.summary.get("schema") != DETECTION_SCHEMA:
-            raise InputError(f"{self.path}: not a detection run (summary schema {self.summary.get('schema')!r}, "
-                             f"expected {DETECTION_SCHEMA!r})")
+        from .results import read_run_summary
+
+        self.path, self.summary = read_run_summary(path, RUN_FILES, DETECTION_SCHEMA, "detection run",
+                                                   "write one with `sceneprior detection SPEC.toml`")
         self._ds = None
 
     @property
@@ -446,11 +336,11 @@ class DetectionRun:
 
 
 def describe(res: DetectionResult, path: Path) -> str:
-    """Short human summary of a detection fit (the CLI prints it)."""
+    """Short human summary of a detection fit (the CLI prints it), read from its run ``path``."""
     from .results import CAUTION
 
-    s = json.loads((path / "summary.json").read_text(encoding="utf-8"))
-    ds = detection_dataset(res)
+    run = DetectionRun(path)
+    s, ds = run.summary, run.dataset
     c, g = s["data"], s["gate"]
     r, m, lo, hi = (ds["curve_range"].values, ds["pd_curve_mean"].values, ds["pd_curve_q05"].values,
                     ds["pd_curve_q95"].values)

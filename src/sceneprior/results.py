@@ -376,8 +376,8 @@ def write_run(result, runs_dir: Path | None = None) -> Path:
 RUN_FILES = ("posterior.nc", "intensity.nc", "cell_draws.nc", "scans.nc", "summary.json")
 DETECTION_SCHEMA = "sceneprior.detection/1"
 # what each summary schema's run is and which command writes it (messages about runs of the wrong kind)
-RUN_KINDS = {SUMMARY_SCHEMA: "fit run (written by `sceneprior fit`: clutter, or a birth mixture)",
-             DETECTION_SCHEMA: "detection run (written by `sceneprior detection`)"}
+RUN_KINDS = {SUMMARY_SCHEMA: "fit run written by `sceneprior fit` (a clutter map or a birth mixture)",
+             DETECTION_SCHEMA: "detection run written by `sceneprior detection`"}
 
 
 def read_run_summary(path, files, schema: str, kind: str, remedy: str) -> tuple[Path, dict]:
@@ -400,7 +400,7 @@ def read_run_summary(path, files, schema: str, kind: str, remedy: str) -> tuple[
         got = summary.get("schema") if isinstance(summary, dict) else None
         if got != schema:
             if got in RUN_KINDS:
-                raise InputError(f"{path}: a {RUN_KINDS[got]} (summary schema {got!r}), not a {kind}")
+                raise InputError(f"{path}: a {RUN_KINDS[got]} (summary schema {got!r}), not a {kind}; {remedy}")
             raise InputError(f"{path}: {kind} written by another sceneprior version (summary schema {got!r}, "
                              f"this version reads {schema!r}); {remedy}")
     missing = [f for f in files if not (path / f).is_file()]

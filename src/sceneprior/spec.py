@@ -531,3 +531,105 @@ def _per_scan_options(kind: str, options: dict, data: DataSpec, source: str):
     if not cov:
         options.pop("scan_covariates", None)
     return composite_kind(kind, options), options
+
+
+# ----------------------------------------------------------------------------- detection specs
+DETECTION_KINDS = ("logit_range",)  # models/detection.py
+_DETECTION_SCHEMA: dict[str, Any] = {
+    "name": None,
+    "description": None,
+    "recording": None,
+    "model": {"kind": None, "range_bins": None, "clutter_run": None, "prior": None},
+    "sampler": {"chains": None, "warmup": None, "draws": None, "seed": None, "progress": None, "method": None},
+    "output": {"dir": None},
+}
+
+
+@dataclass
+class DetectionSpec:
+    """A detection-probability spec (``sceneprior detection``; :mod:`sceneprior.detprob`):
+    ``recording`` is the recording's own :class:`FitSpec` (its data, gates and space), with
+    the detection spec's name, sampler and output folder in place of its own."""
+
+    name: str
+    source: str
+    recording: FitSpec
+    kind: str
+    prior: dict
+    range_bins: int
+    clutter_run: Path | None
+    raw: dict = field(default_factory=dict, repr=False)
+
+
+def load_detection_spec(path) -> DetectionSpec:
+    """Read and validate a detection spec: ``name``, ``recording`` (the recording's fit spec,
+    which must have ``data.objects``), ``[model]`` (kind, range_bins 1..1000, clutter_run,
+    ``[model.prior]`` intercept_sd and coef_sd > 0, both ``inf`` for a flat prior),
+    ``[sampler]`` (NUTS only) and ``[output] dir``; paths relative to the spec's folder.
+    One-line InputError otherwise."""
+    import math
+
+    from .models.detection import DEFAULT_PRIOR
+
+    path = Path(path)
+    source = str(path)
+    if not path.is_file():
+        raise InputError(f"{source}: detection specification file not found")
+    try:
+        raw = tomllib.loads(path.read_text(encoding="utf-8"))
+    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
+        raise InputError(f"{source}: cannot parse TOML: {exc}") from None
+    _check_keys(raw, _DETECTION_SCHEMA, "", source)
+    name = raw.get("name")
+    if not isinstance(name, str) or not name or "/" in name or name.startswith("."):
+        raise InputError(f"{source}: 'name' (the run's name under the output folder) is required, "
+                         "a plain name such as \"lowmarsh-detection\"")
+    rec = raw.get("recording")
+    if not isinstance(rec, str) or not rec:
+        raise InputError(f"{source}: 'recording' must name the recording's fit specification (a TOML path) "
+                         "whose [data] has objects and gates")
+    base = path.parent
+
+    def resolve(p: str) -> Path:
+        return Path(p) if Path(p).is_absolute() else (base / p).resolve()
+
+    model = raw.get("model") or {}
+    kind = model.get("kind", "logit_range")
+    if kind not in DETECTION_KINDS:
+        raise InputError(f"{source}: unknown detection model kind {kind!r}; available: {', '.join(DETECTION_KINDS)}")
+    bins = model.get("range_bins", 20)
+    if isinstance(bins, bool) or not isinstance(bins, int) or not 1 <= bins <= 1000:
+        raise InputError(f"{source}: 'model.range_bins' must be a whole number 1..1000, got {bins!r}")
+    prior = dict(DEFAULT_PRIOR)
+    given = model.get("prior") or {}
+    if not isinstance(given, dict):
+        raise InputError(f"{source}: 'model.prior' must be a table ([model.prior])")
+    for k, v in given.items():
+        if k not in DEFAULT_PRIOR:
+            raise InputError(f"{source}: unknown prior parameter 'model.prior.{k}' for the detection model; "
+                             f"allowed: {', '.join(DEFAULT_PRIOR)}")
+        if isinstance(v, bool) or not isinstance(v, (int, float)) or not v > 0:
+            raise InputError(f"{source}: 'model.prior.{k}' must be a positive number (inf for flat), got {v!r}")
+        prior[k] = float(v)
+    if math.isinf(prior["coef_sd"]) != math.isinf(prior["intercept_sd"]):
+        raise InputError(f"{source}: a flat prior applies to both coefficients: set intercept_sd and coef_sd "
+                         "both to inf, or both finite")
+    clutter = model.get("clutter_run")
+    if clutter is not None:
+        if not isinstance(clutter, str) or not clutter:
+            raise InputError(f"{source}: 'model.clutter_run' must be a run directory path (a string)")
+        clutter = resolve(clutter)
+    smp = {"method": "nuts", "chains": 4, "warmup": 500, "draws": 1000, "seed": 0, "progress": True,
+           **(raw.get("sampler") or {})}  # the detection spec's own sampler, not the recording's
+    if smp.get("method") != "nuts":
+        raise InputError(f"{source}: the detection model is sampled with NUTS; 'sampler.method' must be \"nuts\"")
+    out_dir = (raw.get("output") or {}).get("dir", "runs")
+    if not isinstance(out_dir, str) or not out_dir:
+        raise InputError(f"{source}: 'output.dir' must be a folder path (a string)")
+    rec_path = resolve(rec)
+    recording = load_spec(rec_path, overrides={"name": name, "sampler": smp, "output": {"dir": str(resolve(out_dir))}})
+    if recording.data.objects is None:
+        raise InputError(f"{rec_path}: the recording has no objects table; set data.objects (and [data.gates]) "
+                         "to fit the detection probability of known objects")
+    return DetectionSpec(name=name, source=source, recording=recording, kind=kind, prior=prior,
+                         range_bins=bins, clutter_run=clutter, raw=raw)

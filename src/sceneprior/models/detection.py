@@ -57,18 +57,23 @@ def detection_model(X, detected=None, intercept_sd=1.5, coef_sd=2.5, flat=False,
     numpyro.sample("detected", dist.Bernoulli(logits=eta).to_event(1), obs=detected)
 
 
-def range_standardisation(region, grid) -> tuple[float, float]:
-    """(m, s): window-area-weighted mean and sd of range [m] over the grid cells (cell centre
-    ranges weighted by |c ∩ W|; polar cells use their area-weighted mean range
-    2(r₂³ − r₁³)/(3(r₂² − r₁²))). Geometry only."""
-    w = np.asarray(region.cell_window_area(grid), float).reshape(-1)
+def cell_ranges(grid) -> np.ndarray:
+    """(n0, n1) range of each cell from the sensor (origin) [m]: on polar grids the cell's
+    area-weighted mean range ∫r·r dr / ∫r dr = 2(r₂³ − r₁³)/(3(r₂² − r₁²)); on Cartesian grids
+    the range of the cell centre."""
     if grid.frame == "polar":
         e = np.asarray(grid.edges0, float)
         rc = 2.0 * (e[1:] ** 3 - e[:-1] ** 3) / (3.0 * (e[1:] ** 2 - e[:-1] ** 2))
-        r = np.repeat(rc, grid.shape[1])
-    else:
-        X, Y = np.meshgrid(grid.centres0, grid.centres1, indexing="ij")
-        r = np.hypot(X, Y).reshape(-1)
+        return np.repeat(rc[:, None], grid.shape[1], axis=1)
+    X, Y = np.meshgrid(grid.centres0, grid.centres1, indexing="ij")
+    return np.hypot(X, Y)
+
+
+def range_standardisation(region, grid) -> tuple[float, float]:
+    """(m, s): window-area-weighted mean and sd of range [m] over the grid cells (the ranges of
+    :func:`cell_ranges` weighted by |c ∩ W|). Geometry only."""
+    w = np.asarray(region.cell_window_area(grid), float).reshape(-1)
+    r = cell_ranges(grid).reshape(-1)
     m = float(np.sum(w * r) / np.sum(w))
     s = float(math.sqrt(np.sum(w * (r - m) ** 2) / np.sum(w)))
     return m, (s if s > 0 else 1.0)
