@@ -21,6 +21,7 @@ from __future__ import annotations
 
 import json
 import math
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -274,7 +275,52 @@ def test_export_refuses_a_detection_run_of_another_region(pd_runs, tmp_path, cap
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "region" in err[0] and "differs from the clutter run's" in err[0]
     assert main(["export", str(tmp_path / "runs" / "narrow-clutter"), "--detection", str(tmp_path)]) == 2
-    assert "not a detection run" in capsys.readouterr().err
+    assert "incomplete detection run, missing posterior.nc, detection.nc, summary.json" in capsys.readouterr().err
+
+
+def test_export_names_a_run_of_the_wrong_kind_and_its_flag(pd_runs, capsys):
+    """A run passed where export takes another kind is refused in one line (exit 2) naming its
+    kind (its summary schema) and the argument that takes it, before any file check."""
+    tmp, _ = pd_runs
+    clutter, pd_run = str(tmp / "runs" / "rec-clutter"), str(tmp / "runs" / "rec-pd")
+    for cmd, words in ((["export", clutter, "--birth", pd_run], ("detection run", "given as --birth",
+                                                                  "takes it with --detection")),
+                       (["export", pd_run], ("detection run", "given as RUN", "takes it with --detection")),
+                       (["export", clutter, "--detection", clutter],
+                        ("fit run", "given as --detection", "as RUN (a clutter run) or with --birth"))):
+        assert main(cmd) == 2
+        err = capsys.readouterr().err.strip().splitlines()
+        assert len(err) == 1 and all(w in err[0] for w in words) and "missing" not in err[0], (cmd, err)
+
+
+def test_detection_run_write_is_atomic(tmp_path, monkeypatch):
+    """Rewriting a detection run that crashes at the final rename leaves the old run in place
+    (DESIGN.md §5: a crash never loses or half-writes a run) and no temporary folders."""
+    import os
+
+    from sceneprior.detprob import DetectionRun, fit_detection, load_detection_spec, write_detection_run
+
+    simulate_recording(tmp_path, np.random.default_rng(6), n_scans=40, name="atomic")
+    spec = load_detection_spec(write_spec(tmp_path / "a.toml", {
+        "name": "atomic-pd", "recording": "recording.toml", "output": {"dir": "runs"},
+        "sampler": {"chains": 1, "warmup": 20, "draws": 20, "seed": 2, "progress": False}}))
+    res = fit_detection(spec, progress=False, log=lambda m: None)
+    path = write_detection_run(res)
+    before = (path / "summary.json").read_text()
+    real = os.replace
+
+    def crash_at_the_rename(src, dst):
+        if Path(src).name.startswith(".atomic-pd.partial-"):
+            raise OSError("simulated crash between writing the new run and renaming it into place")
+        return real(src, dst)
+
+    monkeypatch.setattr(os, "replace", crash_at_the_rename)
+    with pytest.raises(OSError, match="simulated crash"):
+        write_detection_run(res)
+    monkeypatch.undo()
+    assert (path / "summary.json").read_text() == before
+    assert DetectionRun(path).name == "atomic-pd"
+    assert sorted(p.name for p in path.parent.iterdir()) == ["atomic-pd"]
 
 
 def test_detection_spec_errors(tmp_path, capsys):

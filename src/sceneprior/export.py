@@ -48,7 +48,7 @@ import numpy as np
 
 from . import __version__
 from .errors import InputError
-from .results import CAUTION, load_run
+from .results import CAUTION, DETECTION_SCHEMA, SUMMARY_SCHEMA, load_run
 
 TRACKER_SCHEMA = "sceneprior.tracker/1"
 SCHEMA_FILE = "tracker-1.schema.json"
@@ -370,7 +370,7 @@ def export_run(run, quantile: float | None = None, override_gate: bool = False,
     copy there; ``detection`` / ``birth`` add the P_D and birth sections of other runs
     (:func:`build_config`). Returns (document, paths written)."""
     if not hasattr(run, "summary"):
-        run = load_run(run)
+        run = open_run_as(run, "RUN")
     check_quantile(quantile)
     doc = build_config(run, quantile=quantile, override_gate=override_gate, detection=detection, birth=birth)
     paths = [Path(run.path) / TRACKER_FILE]
@@ -408,6 +408,30 @@ def describe(doc: dict, paths) -> str:
 
 
 # ----------------------------------------------------------------------- combining runs
+# the summary schema each export argument takes, and where each kind of run goes
+_TAKES = {"RUN": SUMMARY_SCHEMA, "--birth": SUMMARY_SCHEMA, "--detection": DETECTION_SCHEMA}
+_GOES = {SUMMARY_SCHEMA: "as RUN (a clutter run) or with --birth (a birth-mixture run)",
+         DETECTION_SCHEMA: "with --detection"}
+
+
+def open_run_as(path, argument: str):
+    """The run given to ``sceneprior export`` as ``argument`` ("RUN", "--birth" or
+    "--detection"), its summary schema checked first: a run of another kind is refused in one
+    line that names its kind and the argument that takes it (InputError, exit 2)."""
+    from .detprob import DetectionRun
+    from .results import RUN_KINDS
+
+    want = _TAKES[argument]
+    try:
+        got = json.loads((Path(path) / "summary.json").read_text(encoding="utf-8")).get("schema")
+    except (OSError, ValueError, AttributeError):
+        got = None  # no readable summary: the run's own reader says what is wrong
+    if got != want and got in _GOES:
+        raise InputError(f"{path}: a {RUN_KINDS[got]} (summary schema {got!r}), given as {argument}; "
+                         f"`sceneprior export` takes it {_GOES[got]}")
+    return DetectionRun(path) if want == DETECTION_SCHEMA else load_run(path)
+
+
 def _spec_sensor(summary: dict):
     raw = (summary.get("data") or {}).get("spec_content") or {}
     return raw.get("sensor")
@@ -430,7 +454,7 @@ def _combine(doc: dict, run, region_sec: dict, detection, birth, override_gate: 
                              "--birth, or export a clutter-only run with --birth")
         from .gate import require
 
-        brun = birth if hasattr(birth, "summary") else load_run(birth)
+        brun = birth if hasattr(birth, "summary") else open_run_as(birth, "--birth")
         g = require(brun, override=override_gate)
         if _spec_sensor(brun.summary) != _spec_sensor(run.summary):
             raise InputError(f"{brun.path}: the birth run's [sensor] placement {_spec_sensor(brun.summary)!r} differs "
@@ -466,9 +490,9 @@ def detection_section(detection, region_sec: dict | None, override_gate: bool = 
     the posterior of P_D(r) on a fine range curve (mean, 5/50/95 %) and per range bin, the
     coefficients, the association gate, and provenance. ``region_sec`` (the clutter
     export's region) must equal the detection run's region (frame, bounds, masks)."""
-    from .detprob import DetectionRun, gate_entry
+    from .detprob import gate_entry
 
-    drun = detection if hasattr(detection, "dataset") else DetectionRun(detection)
+    drun = detection if hasattr(detection, "dataset") else open_run_as(detection, "--detection")
     s = drun.summary
     if region_sec is not None and not _same_region(s["region"], region_sec):
         raise InputError(f"{drun.path}: the detection run's region (frame {s['region']['frame']}, bounds "
