@@ -472,7 +472,7 @@ def _add_tracklog_parsers(sub) -> None:
 
 
 def cmd_births(args) -> int:
-    from .tracklog import births_from_spec
+    from .births import births_from_spec
 
     births_from_spec(args.spec, args.out, time_column=args.time_column, fmt=args.format, log=print,
                      gap_factor=args.gap_factor, max_unseen=args.max_unseen,
