@@ -330,77 +330,29 @@ def test_grad_through_eigenvalues_is_finite_and_correct():
                                    np.asarray(geom.eigenvalues(np.asarray(ls), 1.0)), atol=1e-11)
 
 
-# -------------------------------------------------------------------- spectral modes
+# -------------------------------------------------------------------- periodised spectrum
 
-@pytest.mark.parametrize("torus", [(12, 10), (11, 9), (12, 9)])
-def test_full_mode_basis_reproduces_embedding(torus):
-    # All modes kept (delta = 0): z -> field is linear with J J^T equal to the wrapped
-    # kernel covariance (Wood & Chan 1994); even and odd torus sides (Hermitian edges).
-    grid, spacing, ls, var = (5, 4), (1.0, 1.5), np.array([1.0, 2.0]), 1.3
-    geom = emb.TorusGeometry("matern32", grid, spacing, torus)
-    lam = jax.jit(geom.eigenvalues)(jnp.asarray(ls), var)
-    modes = spe.select_modes(geom, ls, delta=0.0)
-    assert modes.n_params == geom.n_torus
-    jac = linear_map_matrix(lambda z: modes.white_to_field(z, lam).reshape(-1), jnp.zeros(modes.n_params))
-    dense = wrapped_dense_covariance("matern32", grid, spacing, torus, var, ls)
-    np.testing.assert_allclose(np.asarray(jac @ jac.T), dense, atol=1e-12)
-
-
-def test_truncated_modes_drop_the_stated_variance():
-    # Truncation at delta: the truncated field's covariance is the inverse DFT of the
-    # kept eigenvalues (Fourier representation of the torus field), its pointwise
-    # variance is sigma^2 x retained fraction, the retained fraction at the selection
-    # length scale is >= 1 - delta, and it only grows for longer length scales
-    # (spectral scaling S_l(s) = l^2 S_1(l s), Rasmussen & Williams 2006 eq. 4.15).
-    grid, spacing, var, delta = (16, 16), (1.0, 1.0), 0.9, 1e-2
-    geom = emb.TorusGeometry("matern32", grid, spacing, (40, 40))
-    ls_min = 2.0
-    modes = spe.select_modes(geom, ls_min, delta=delta)
-    assert modes.n_params < geom.n_torus
-    assert 1 - delta <= modes.retained_fraction_at_selection < 1 - delta + 1e-3
-    eig = jax.jit(geom.eigenvalues)
-    lam = eig(jnp.asarray(ls_min), var)
-    jac = linear_map_matrix(lambda z: modes.white_to_field(z, lam).reshape(-1), jnp.zeros(modes.n_params))
-    cov = np.asarray(jac @ jac.T)
-    # reference: numpy irfft2 of the eigenvalues restricted to the kept entries
-    kept = modes.kept_mask > 0
-    row = np.fft.irfft2(np.where(kept, np.maximum(np.asarray(lam), 0), 0.0), s=geom.torus_shape)
-    np.testing.assert_allclose(cov, emb.grid_covariance(row, grid), atol=1e-12)
-    np.testing.assert_allclose(np.diag(cov), var * float(modes.retained_fraction(lam)), rtol=1e-10)
-    np.testing.assert_allclose(float(modes.retained_fraction(lam)), modes.retained_fraction_at_selection, rtol=1e-12)
-    fractions = [float(modes.retained_fraction(eig(jnp.asarray(ls), var)))
-                 for ls in (ls_min, 1.5 * ls_min, 2 * ls_min, 4 * ls_min)]
-    assert all(b >= a - 1e-12 for a, b in zip(fractions, fractions[1:]))
-    # jit + grad through the truncated map w.r.t. the length scale are finite
-    z = jnp.asarray(np.random.default_rng(5).normal(size=modes.n_params))
-    g = jax.jit(jax.grad(lambda l: jnp.sum(modes.white_to_field(z, geom.eigenvalues(l, var)) ** 2)))(jnp.asarray(3.0))
-    assert np.isfinite(float(g))
-
-
-def _continuum_modes(name, length_scale, torus_side, delta):
-    """Modes holding 1 - delta of the variance in the continuum limit: the disc of
-    radius r (cycles per unit) whose outside holds delta of the 2-D spectral mass.
-    Matérn (Rasmussen & Williams eq. 4.15): tail(r) = (1 + 4 pi^2 l^2 r^2 / (2 nu))^-nu;
-    SE (eq. 4.20): tail(r) = exp(-2 pi^2 l^2 r^2). Returns (pi R^2, R), R = r T."""
-    if name == "squared_exponential":
-        r2 = math.log(1 / delta) / (2 * math.pi**2 * length_scale**2)
-    else:
-        nu = NU[name]
-        r2 = 2 * nu / (4 * math.pi**2 * length_scale**2) * (delta ** (-1 / nu) - 1)
-    R = math.sqrt(r2) * torus_side
-    return math.pi * R * R, R
-
-
-@pytest.mark.parametrize("name, cells, ls", [("matern32", 128, 0.15), ("squared_exponential", 64, 0.05),
-                                             ("matern52", 128, 0.15)])
-def test_mode_counts_match_spectral_continuum(name, cells, ls):
-    # Box side L = 1, 2x-padded torus (side T = 2). The count of torus modes holding
-    # 99.9 % of the variance against pi R^2 from the analytic spectral tail. Tolerance:
-    # the lattice points counted lie between the discs of radius R -+ sqrt(2)/2, so
-    # |count - pi R^2| <= pi (sqrt(2) R + 1/2) (Gauss circle problem, trivial bound).
-    out = spe.modes_for_box(name, cells, ls, pad_factor=2.0, level=0.999)
-    area, R = _continuum_modes(name, ls, 2.0, 1e-3)
-    assert abs(out["n_modes"] - area) <= math.pi * (math.sqrt(2) * R + 0.5)
+def test_spectrum_fast_form_matches_the_general_density():
+    # The rsqrt form of the unit density (used on every torus mode at every gradient)
+    # against the pow form of Rasmussen & Williams (2006) eq. 4.15 written out here, and
+    # the periodised spectrum (one length scale per axis) against a direct double loop over
+    # the half spectrum and the alias terms with the anisotropic density.
+    u2 = np.linspace(0.0, 40.0, 201)
+    for name, nu in NU.items():
+        ref = 4 * math.pi * nu * (2 * nu) ** nu * (2 * nu + 4 * math.pi**2 * u2) ** (-(nu + 1))
+        np.testing.assert_allclose(ker.unit_spectral_density(name, u2), ref, rtol=1e-13)
+    geom = emb.TorusGeometry("matern32", (5, 4), (2.0, 3.0), (11, 8))
+    ls, var = np.array([4.0, 5.0]), 0.7
+    lam = np.asarray(spe.aliased_eigenvalues(geom, ls, var, n_alias=1))
+    (m0, m1), (h0, h1) = geom.torus_shape, geom.spacing
+    want = np.zeros((m0, m1 // 2 + 1))
+    for i, k0 in enumerate(np.fft.fftfreq(m0, 1.0 / m0)):
+        for k1 in range(m1 // 2 + 1):
+            for q0 in (-1, 0, 1):
+                for q1 in (-1, 0, 1):
+                    s0, s1 = (k0 + q0 * m0) / (m0 * h0), (k1 + q1 * m1) / (m1 * h1)
+                    want[i, k1] += ker.spectral_density("matern32", (np.array(s0), np.array(s1)), var, ls)
+    np.testing.assert_allclose(lam, want / (h0 * h1), rtol=1e-12)
 
 
 @pytest.mark.parametrize("name", KERNELS)

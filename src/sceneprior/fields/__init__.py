@@ -3,7 +3,7 @@
 Modules, one per mathematical idea:
   kernels    stationary kernels of distance (Rasmussen & Williams 2006, §4.2)
   embedding  circulant embedding on a padded torus (Wood & Chan 1994; Dietrich & Newsam 1997)
-  spectral   Fourier-mode bookkeeping of the embedded field (mode counts, periodised spectra)
+  spectral   the torus eigenvalues a fit uses: embedding, or the periodised (aliased) spectrum
   preconditioning  the data-informed white-noise coordinates the LGCP sampler moves in
 """
 
@@ -17,13 +17,7 @@ from sceneprior.fields.embedding import (
     validate_embedding,
 )
 from sceneprior.fields.kernels import KERNEL_NAMES, anisotropic_kernel, get_kernel
-from sceneprior.fields.spectral import (
-    RetainedModes,
-    aliased_eigenvalues,
-    count_modes,
-    modes_for_box,
-    select_modes,
-)
+from sceneprior.fields.spectral import Spectrum, aliased_eigenvalues, periodised_report
 
 __all__ = [
     "KERNEL_NAMES",
@@ -36,9 +30,7 @@ __all__ = [
     "sample_field",
     "implied_first_row",
     "grid_covariance",
-    "RetainedModes",
-    "select_modes",
-    "count_modes",
-    "modes_for_box",
+    "Spectrum",
     "aliased_eigenvalues",
+    "periodised_report",
 ]

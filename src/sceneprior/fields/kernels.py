@@ -39,6 +39,7 @@ __all__ = [
     "scaled_distance",
     "anisotropic_kernel",
     "spectral_density",
+    "unit_spectral_density",
 ]
 
 
@@ -152,16 +153,31 @@ def anisotropic_kernel(name: str, lags, variance, length_scales):
 _MATERN_NU = {"matern12": 0.5, "matern32": 1.5, "matern52": 2.5}
 
 
+def unit_spectral_density(name: str, u2, xp=np):
+    """2-D spectral density S₁ of the unit-length-scale, unit-variance kernel at squared
+    frequency u2 = |s|² (cycles per unit length): Rasmussen & Williams (2006), D = 2,
+      Matérn (eq. 4.15):  S₁ = 4π ν (2ν)^ν (2ν + 4π² u2)^-(ν+1)
+      squared exponential (eq. 4.20):  S₁ = 2π exp(−2π² u2).
+    The Matérn powers (ν + 1 = 3/2, 5/2, 7/2) are written with one reciprocal square root
+    and products: pow is slow on CPU, and the periodised spectrum evaluates this on every
+    torus mode at every gradient."""
+    get_kernel(name)
+    if name == "squared_exponential":
+        return 2.0 * math.pi * xp.exp(-2.0 * math.pi**2 * u2)
+    nu = _MATERN_NU[name]
+    t = 2.0 * nu + 4.0 * math.pi**2 * u2
+    r = 1.0 / xp.sqrt(t)
+    tail = {"matern12": r / t, "matern32": r / (t * t), "matern52": r / (t * t * t)}[name]
+    return 4.0 * math.pi * nu * (2.0 * nu) ** nu * tail
+
+
 def spectral_density(name: str, freqs, variance, length_scales):
     """2-D spectral density S(s) of an axis-scaled kernel, s in cycles per axis unit.
 
     Convention k(x) = ∫ S(s) exp(2 pi i s.x) ds, so ∫ S = k(0) = sigma^2.
-    Rasmussen & Williams (2006) with D = 2:
-      Matérn (eq. 4.15):  S(s) = sigma^2 4 pi nu (2 nu)^nu / l^(2 nu) (2 nu / l^2 + 4 pi^2 s^2)^-(nu+1)
-      squared exponential (eq. 4.20):  S(s) = sigma^2 2 pi l^2 exp(-2 pi^2 l^2 s^2)
-    With one length scale per axis, S(s) = l0 l1 S_1(|(l0 s0, l1 s1)|), S_1 the density
-    at unit length scale (change of variables in the Fourier integral).
-    ``freqs`` is a pair of per-axis frequency arrays (broadcastable).
+    With one length scale per axis, S(s) = sigma² l0 l1 S_1(|(l0 s0, l1 s1)|), S_1 the
+    density at unit length scale (:func:`unit_spectral_density`; change of variables in
+    the Fourier integral). ``freqs`` is a pair of per-axis frequency arrays (broadcastable).
     """
     get_kernel(name)
     xp = _xp(variance, length_scales, *freqs)
@@ -169,10 +185,4 @@ def spectral_density(name: str, freqs, variance, length_scales):
     for a, s in enumerate(freqs):
         u = s * length_scales[a]
         u2 = u2 + u * u
-    jac = length_scales[0] * length_scales[1]
-    if name == "squared_exponential":
-        g = 2.0 * math.pi * xp.exp(-2.0 * math.pi**2 * u2)
-    else:
-        nu = _MATERN_NU[name]
-        g = 4.0 * math.pi * nu * (2.0 * nu) ** nu * (2.0 * nu + 4.0 * math.pi**2 * u2) ** (-(nu + 1.0))
-    return variance * jac * g
+    return variance * length_scales[0] * length_scales[1] * unit_spectral_density(name, u2, xp)

@@ -52,8 +52,9 @@ import numpyro
 import numpyro.distributions as dist
 
 from ..errors import InputError
-from ..fields.embedding import TorusGeometry, implied_first_row, plan_torus, torus_shape_for
-from ..fields.kernels import KERNEL_NAMES, anisotropic_kernel
+from ..fields.embedding import TorusGeometry, plan_torus, torus_shape_for
+from ..fields.kernels import KERNEL_NAMES
+from ..fields.spectral import Spectrum, periodised_report
 from ..fields.preconditioning import build_preconditioner, field_and_prior
 
 DEFAULT_PRIOR = {
@@ -65,90 +66,6 @@ _LS_KEYS = ("length_scale_min", "length_scale_max",  # cartesian, m
             "range_length_scale_min", "range_length_scale_max",  # polar, m
             "bearing_length_scale_min", "bearing_length_scale_max")  # polar, degrees
 PADDINGS = (1.0, 2.0, 3.0, 4.0)  # minimum-image embedding tried on tori up to 2× the grid
-N_ALIAS = 1  # alias terms per side for the periodised-kernel spectrum (3×3 terms)
-
-
-_NU = {"matern12": 0.5, "matern32": 1.5, "matern52": 2.5}
-
-
-def _density_unit(kernel: str, u2, xp):
-    """Spectral density of the unit-length-scale, unit-variance 2-D kernel at |u|² = u2
-    (Rasmussen & Williams 2006, eq. 4.15 Matérn and 4.20 squared exponential, D = 2).
-    Powers t^-(ν+1) are written with rsqrt (ν + 1 = 3/2, 5/2, 7/2): pow is slow on CPU."""
-    if kernel == "squared_exponential":
-        return 2.0 * math.pi * xp.exp(-2.0 * math.pi**2 * u2)
-    nu = _NU[kernel]
-    t = 2.0 * nu + 4.0 * math.pi**2 * u2
-    r = 1.0 / xp.sqrt(t)
-    tail = {"matern12": r / t, "matern32": r / (t * t), "matern52": r / (t * t * t)}[kernel]
-    return 4.0 * math.pi * nu * (2.0 * nu) ** nu * tail
-
-
-@dataclass(frozen=True, eq=False)
-class Spectrum:
-    """Torus eigenvalues, by one of two valid constructions (chosen once per fit):
-
-    "embedding": FFT of the minimum-image first row (Wood & Chan 1994), used when it is
-        valid (no eigenvalue below −1e-10·max) on a torus at most twice the grid per axis;
-    "periodised": the spectral density summed over aliases (Poisson summation),
-        Λ_k = (h₀h₁)⁻¹ Σ_q S((k + q∘m)/T), i.e. the circulant embedding of the periodised
-        kernel Σ_j k(d + jT), non-negative on any torus. Used on the 2×-padded torus when
-        the minimum-image row would need more padding (Matérn 3/2 and 1/2 at long length
-        scales need 10–12 length scales). Its covariance differs from the planar kernel by
-        the wrap error in the report; the alias sum is truncated at |q| ≤ N_ALIAS, which
-        lowers the variance by the reported deficit.
-    """
-
-    geom: TorusGeometry
-    method: str
-
-    def _tables(self):
-        """Squared scaled-free frequencies of the alias terms, per axis: row table
-        (m0//2+1, 2·N_ALIAS+1) for |k0| = 0..m0/2 (the density depends on s0² only, and the
-        alias set {(k0 + q·m0)²} is the same for −k0), column table (m1//2+1, ·), and the
-        row index that mirrors |k0| back to the m0 rows of the half spectrum."""
-        (m0, m1), (h0, h1) = self.geom.torus_shape, self.geom.spacing
-        q = np.arange(-N_ALIAS, N_ALIAS + 1, dtype=float)
-        k0 = np.arange(m0 // 2 + 1, dtype=float)
-        k1 = np.arange(m1 // 2 + 1, dtype=float)
-        s0 = ((k0[:, None] + q[None, :] * m0) / (m0 * h0)) ** 2
-        s1 = ((k1[:, None] + q[None, :] * m1) / (m1 * h1)) ** 2
-        rows = np.abs(np.fft.fftfreq(m0, d=1.0 / m0)).astype(np.int64)
-        return s0, s1, rows
-
-    def _periodised(self, length_scales, variance, xp):
-        """Λ on the half spectrum (m0, m1//2+1): variance·ℓ₀ℓ₁/(h₀h₁) Σ_q S₁(ℓ∘s_q)."""
-        ls = length_scales if np.ndim(length_scales) and np.shape(length_scales)[0] == 2 else \
-            xp.stack([xp.reshape(length_scales, ()), xp.reshape(length_scales, ())])
-        s0, s1, rows = self._tables()
-        u2 = (s0 * ls[0] ** 2)[:, None, :, None] + (s1 * ls[1] ** 2)[None, :, None, :]
-        dens = _density_unit(self.geom.kernel, u2, xp).sum(axis=(2, 3))[rows]
-        h0, h1 = self.geom.spacing
-        return variance * ls[0] * ls[1] * dens / (h0 * h1)
-
-    def eigenvalues(self, length_scales, variance):
-        """Half spectrum (m0, m1//2+1)."""
-        if self.method == "embedding":
-            return self.geom.eigenvalues(length_scales, variance)
-        xp = jnp if isinstance(length_scales, jax.Array) or isinstance(variance, jax.Array) else np
-        return self._periodised(length_scales, variance, xp)
-
-
-def _periodised_report(geom: TorusGeometry, spec: "Spectrum", lo2, hi2) -> dict:
-    """Wrap error of the periodised covariance against the planar kernel on grid lags (at
-    the largest length scales), and the variance lost by truncating the alias sum (at the
-    shortest), both as fractions of σ²."""
-    n0, n1 = geom.grid_shape
-    h0, h1 = geom.spacing
-    row = np.asarray(implied_first_row(np.asarray(spec.eigenvalues(hi2, 1.0)), geom.torus_shape))
-    lags = ((h0 * np.arange(n0))[:, None], (h1 * np.arange(n1))[None, :])
-    planar = anisotropic_kernel(geom.kernel, lags, 1.0, hi2)
-    wrap = float(np.max(np.abs(row[:n0, :n1] - planar)))
-    var_lo = float(np.asarray(implied_first_row(np.asarray(spec.eigenvalues(lo2, 1.0)), geom.torus_shape))[0, 0])
-    return {"method": "periodised", "torus_shape": list(geom.torus_shape), "grid_shape": [n0, n1],
-            "wrap_error": wrap, "alias_terms_per_side": N_ALIAS,
-            "alias_variance_deficit_at_shortest_length_scale": max(0.0, 1.0 - var_lo),
-            "valid": "eigenvalues are non-negative by construction"}
 
 
 def gamma_prior(rate_median: float, rate_log_sd: float, window_area: float) -> tuple[float, float]:
@@ -310,7 +227,7 @@ def plan(stats, kernel: str, prior: dict):
             raise InputError(f"grid {stats.grid.shape} needs a torus of {geom.n_torus} cells, beyond what "
                              "this machine can sample; use a coarser grid")
         spectrum = Spectrum(geom, "periodised")
-        report = _periodised_report(geom, spectrum, lo2, hi2)
+        report = periodised_report(spectrum, lo2, hi2)
     return spectrum, report, lo, hi
 
 
