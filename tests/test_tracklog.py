@@ -271,9 +271,27 @@ def test_births_and_detection_bad_input_one_line_exit_2(tmp_path, capsys, case, 
 
 def test_births_option_errors(tmp_path, capsys):
     spec = polar_log(tmp_path)
-    for opts, message in ((["--gap-factor", "0.5"], "gap factor must be a number > 1"),
-                          (["--max-unseen", "-1"], "max unseen scans"),
-                          (["--detection-probability", "1.5"], "detection probability must lie in (0, 1]")):
+    for opts, message in ((["--gap-factor", "0.5"], "gap factor (--gap-factor) must be a finite number > 1"),
+                          (["--gap-factor", "nan"], "gap factor (--gap-factor) must be a finite number > 1"),
+                          (["--max-unseen", "-1"], "max unseen scans (--max-unseen)"),
+                          (["--detection-probability", "1.5"],
+                           "detection probability (--detection-probability) must lie in (0, 1]"),
+                          (["--time-column", "stamp"], "--time-column stamp: the scans table")):
         assert main(["births", str(spec), "--out", str(tmp_path / "b"), *opts]) == 2
         err = capsys.readouterr().err.strip().splitlines()
         assert len(err) == 1 and message in err[0], err
+
+
+def test_gaps_without_times_from_the_id_steps():
+    """Without scan times a gap is an id jump > gap_factor × the median id step: a log that
+    keeps every other frame (ids 0, 2, 4, …) has no gaps, a jump of 10 there is one; a scan
+    list whose steps are as often long as short is refused (the period cannot be told)."""
+    from sceneprior.errors import InputError
+    from sceneprior.tracklog import scan_steps
+
+    ids = np.concatenate([np.arange(0, 40, 2), np.arange(50, 90, 2)])
+    st_ = scan_steps(ids)
+    assert int(st_.gap_before.sum()) == 1 and ids[st_.order][st_.gap_before].tolist() == [50]
+    assert not scan_steps(np.arange(0, 80, 2)).gap_before.any()
+    with pytest.raises(InputError, match="cannot be told from data gaps"):
+        scan_steps(np.array([0, 1, 5, 6, 10, 11, 15]))

@@ -17,12 +17,16 @@ from .errors import InputError
 from .tracklog import Births, births_summary, derive_births
 
 
-def births_from_spec(spec_path, out_dir, *, time_column: str = "time", fmt: str = "csv", log=print,
+def births_from_spec(spec_path, out_dir, *, time_column: str | None = None, fmt: str = "csv", log=print,
                      **options) -> tuple[Births, dict]:
     """What ``sceneprior births SPEC.toml`` calls: read the recording named by a fit spec
     (its scans table and ``data.objects``, validated by :mod:`sceneprior.tables`), derive
     the births (``options`` go to ``tracklog.derive_births``) and write them to ``out_dir``
-    (:func:`write_births`). Returns (births, summary)."""
+    (:func:`write_births`). Returns (births, summary).
+
+    ``time_column``: the scans-table column with scan times (seconds or ISO-8601); a named
+    column that the table lacks is refused (one line). None: ``time`` when the table has
+    it, else the scans are ordered by id."""
     import dataclasses
 
     from .fitting import region_from_spec
@@ -41,9 +45,16 @@ def births_from_spec(spec_path, out_dir, *, time_column: str = "time", fmt: str 
     region = region_from_spec(spec.space)
     rec = read_recording(data, region)
     obj = read_objects(data, region, rec)
+    if time_column is not None and time_column not in rec.scans_meta:
+        where = (f"the scans table {data.scans} has no column '{time_column}' (columns: "
+                 f"{', '.join(sorted(rec.scans_meta)) or 'none besides the scan id'})" if data.scans is not None
+                 else "the recording has no scans table (data.n_scans), so no scan times")
+        raise InputError(f"--time-column {time_column}: {where}; name the column that holds the scan times, or "
+                         "leave the option out to order the scans by id")
+    column = time_column or "time"
     times = None
-    if time_column in rec.scans_meta:
-        times = time_seconds(rec.scans_meta[time_column], time_column, str(data.scans))
+    if column in rec.scans_meta:
+        times = time_seconds(rec.scans_meta[column], column, str(data.scans))
     b = derive_births(rec.scan_ids, times, obj.scan_index, obj.object_id, obj.c0, obj.c1,
                       frame=region.frame, **options)
     summary = births_summary(b)

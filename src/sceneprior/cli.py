@@ -430,7 +430,7 @@ def _add_tracklog_parsers(sub) -> None:
         description="Read the recording named by SPEC (its scans table and data.objects: scan, object id, "
         "position) and derive the birth events — the first appearance of each object id — and the steps at "
         "which a birth could be seen. Objects at the start of the recording or right after a data gap (a time "
-        "jump > GAP_FACTOR × the median scan period, or a missing scan id) are left-censored: not births, and "
+        "jump > GAP_FACTOR × the median scan period; without times, a scan-id jump > GAP_FACTOR × the median id step) are left-censored: not births, and "
         "those steps leave the exposure. An id unseen for more than --max-unseen scans that reappears is a new "
         "object. Writes births.csv (step, x, y [m], vx, vy [m/s]; polar positions converted to Cartesian), "
         "steps.csv (exposed steps with their duration [s]) and births.json (counts, rules, the birth rate per "
@@ -440,7 +440,8 @@ def _add_tracklog_parsers(sub) -> None:
     b.add_argument("spec", metavar="SPEC.toml", help="the recording's fit specification, with data.objects")
     b.add_argument("--out", metavar="DIR", required=True, help="folder for births.csv, steps.csv, births.json")
     b.add_argument("--gap-factor", type=float, default=1.5,
-                   help="a data gap is a scan-time jump above this × the median scan period (default %(default)s)")
+                   help="a data gap is a scan-time jump above this × the median scan period (without times: a "
+                   "scan-id jump above this × the median id step) (default %(default)s)")
     b.add_argument("--max-unseen", type=int, default=3,
                    help="an id unseen for more than this many scans that reappears is a new object; set it to "
                    "your tracker's track-deletion threshold (default %(default)s)")
@@ -454,8 +455,9 @@ def _add_tracklog_parsers(sub) -> None:
                    "--detection-probability)")
     b.add_argument("--position-sd", type=float, default=0.0, metavar="M",
                    help="position noise sd of the log [m], for the lag correction's variance (default 0)")
-    b.add_argument("--time-column", default="time",
-                   help="scans-table column with scan times, seconds or ISO-8601 (default %(default)s)")
+    b.add_argument("--time-column", metavar="NAME",
+                   help="scans-table column with scan times, seconds or ISO-8601 (default: 'time' when the table "
+                   "has it, else the scans are ordered by id); a named column the table lacks is refused")
     b.add_argument("--format", choices=("csv", "parquet"), default="csv", help="table format (default %(default)s)")
     d = sub.add_parser(
         "detection", help="fit the detection probability P_D(range) of known objects (run directory)",

@@ -19,9 +19,13 @@ Steps, gaps and censoring
 -------------------------
 Scans are ordered by time (by id when the scans table has no time). Step k is the
 interval from scan k−1 to scan k; an object first listed at scan k was born in step k.
-A **data gap** before scan k is a jump in scan time larger than ``gap_factor`` × the
-median scan period (default 1.5), or a jump in whole-number scan ids larger than 1 (a
-missing scan). Objects listed at the first scan, or at the first scan after a gap, may
+A **data gap** before scan k is, when the scans have times, a jump in scan time larger
+than ``gap_factor`` × the median scan period (default 1.5) — the ids are then not looked
+at, so a log that keeps every other frame (ids 0, 2, 4, … at regular times) has no gaps;
+without times, a jump in whole-number scan ids larger than ``gap_factor`` × the median id
+step. A scan list in which half the steps or more would be gaps is refused: the period
+cannot be told from the gaps (at most half the steps can exceed ``gap_factor`` > 1 times
+the median, so this happens only when the steps are as often long as short). Objects listed at the first scan, or at the first scan after a gap, may
 have appeared at any time before: they are **left-censored**, not births, and those steps
 leave the birth exposure — the exposed-steps table omits them, so the birth model sees
 fewer steps (a births table alone would bias the rate downward; counting censored objects
@@ -55,9 +59,28 @@ annotated truth listing each object from its appearance):
    start is listed within the censored scans with probability ≥ 99 % (else it would be a
    false birth);
 2. birth positions are back-propagated by the expected lag with the differenced velocity:
-   x̂ = x_f − v̂·T·E[L], with per-axis error variance T²·(v̂² Var[L] + E[L]²·Var(v̂)) + σ²,
-   Var(v̂) = 2σ²/Δt² for a position noise sd σ (``position_sd``) and Δt the time to the
-   segment's next row (constant velocity assumed); written as ``x_sd``, ``y_sd``.
+   x̂ = x_f − v̂·T·E[L], v̂ = (x_n − x_f)/Δt from the segment's next row x_n, Δt later
+   (constant velocity v assumed); written with the sd of its error as ``x_sd``, ``y_sd``.
+   Derivation, per axis, with position noise sd σ (``position_sd``) on every listed row:
+   x_f = x_a + v·T·L + e_f and v̂ = v + (e_n − e_f)/Δt, so the error of x̂ about the birth
+   position x_a is
+
+       x̂ − x_a = T·v·(L − E[L]) + e_f − T·E[L]·(v̂ − v),
+
+   three terms: L is independent of the noise; v is fixed, so no product of two random
+   factors (Goodman's Var(XY)) enters — v̂ multiplies the constant E[L]; and e_f enters both
+   x_f and v̂ (Cov(e_f, v̂) = −σ²/Δt). Hence
+
+       Var(x̂ − x_a) = T²·(v²·Var[L] + E[L]²·Var(v̂)) + σ²·(1 + 2·T·E[L]/Δt),
+       Var(v̂) = 2σ²/Δt².
+
+   v² is unknown and is replaced by v̂², which overstates it by Var(v̂) on average
+   (E[v̂²] = v² + Var(v̂)): the reported sd leans conservative. Subtracting Var(v̂)
+   would make the variance unbiased, but the sd is used as a divisor (a z-score, a
+   gate) and 1/sd² is convex, so the unbiased variance gives over-confident z-scores
+   (P_D = 0.6, 4000 births as in tests/test_tracklog.py: mean z² 1.51 with v̂² − Var(v̂),
+   1.16 ± 0.08 with v̂²; the error is not Gaussian — the lag is geometric — so z² has a
+   heavy tail, median 0.37).
    The birth keeps the step of its first listing (the mean lag is not a whole step); the
    rate per step is unaffected apart from births in the last E[L] steps of the recording.
 
@@ -113,18 +136,21 @@ def scan_steps(scan_ids, times=None, *, gap_factor: float = GAP_FACTOR, settle_s
                scan_period_s: float | None = None) -> ScanSteps:
     """Order the scans, find the data gaps and mark censored steps (module docstring).
 
-    scan_ids (K,): unique ids (whole numbers or text); times (K,) seconds or None. Without
-    times, scans are ordered by id (which must then be whole numbers) and ``scan_period_s``
-    (if given) sets the durations. Raises InputError (one line) on bad values."""
+    scan_ids (K,): unique ids (whole numbers or text); times (K,) seconds or None. With
+    times, a gap is a time jump > gap_factor × the median period (ids not looked at);
+    without, scans are ordered by id (which must then be whole numbers), a gap is an id jump
+    > gap_factor × the median id step, and ``scan_period_s`` (if given) sets the durations.
+    Raises InputError (one line) on bad values, and when half the steps or more are gaps."""
     ids = np.asarray(scan_ids)
     K = ids.size
     if K == 0:
         raise InputError("the scan list is empty: a track log needs the scans it covers")
-    if not (isinstance(gap_factor, (int, float)) and gap_factor > 1):
-        raise InputError(f"gap factor must be a number > 1 (a data gap is a time jump larger than "
-                         f"factor × the median scan period), got {gap_factor!r}")
+    if isinstance(gap_factor, bool) or not (isinstance(gap_factor, (int, float)) and math.isfinite(gap_factor)
+                                            and gap_factor > 1):
+        raise InputError(f"gap factor (--gap-factor) must be a finite number > 1 (a data gap is a step longer "
+                         f"than factor × the median step), got {gap_factor!r}")
     if isinstance(settle_scans, bool) or not isinstance(settle_scans, (int, np.integer)) or settle_scans < 0:
-        raise InputError(f"settle scans must be a whole number ≥ 0, got {settle_scans!r}")
+        raise InputError(f"settle scans (--settle-scans) must be a whole number ≥ 0, got {settle_scans!r}")
     if times is not None:
         t = np.asarray(times, dtype=np.float64)
         order = np.argsort(t, kind="stable")
@@ -144,15 +170,17 @@ def scan_steps(scan_ids, times=None, *, gap_factor: float = GAP_FACTOR, settle_s
         order = np.argsort(ids, kind="stable")
         t = None
         period = float(scan_period_s) if scan_period_s else None
-        gap = np.zeros(K, bool)
+        jump = np.diff(ids[order].astype(np.int64))  # > 0: ids are unique
+        gap = np.concatenate([[False], jump > gap_factor * np.median(jump)]) if jump.size else np.zeros(1, bool)
         duration = np.full(K, np.nan)
         if period is not None:
-            duration[1:] = period * np.diff(ids[order]).astype(float)
-    sid = ids[order]
-    if sid.dtype.kind in "iu" and K > 1:
-        jump = np.diff(sid.astype(np.int64))
-        if (jump > 0).all():  # ids increase with time: a missing id is a missing scan
-            gap[1:] |= jump > 1
+            duration[1:] = period * jump.astype(float)
+    if gap.any() and 2 * int(gap.sum()) >= K - 1:
+        what = ("scan times: their steps" if times is not None else
+                "scan ids (no times): their id steps")
+        raise InputError(f"{int(gap.sum())} of the {K - 1} steps between the {what} are longer than "
+                         f"{gap_factor:g} × their median, so the scan period cannot be told from data gaps; "
+                         "check the scans table's order and times, or raise --gap-factor")
     censor = np.zeros(K, np.int8)
     idx = np.arange(K)
     starts = np.flatnonzero(gap)
@@ -171,12 +199,16 @@ def settle_scans_for(detection_probability: float) -> int:
     p = float(detection_probability)
     if p >= 1.0:
         return 0
-    return max(0, math.ceil(math.log(SETTLE_MISS_PROB) / math.log1p(-p)) - 1)
+    # h + 1 = ceil(log 0.01 / log(1 − P)); the quotient is a whole number at the boundary cases
+    # (P = 0.99: h = 0; P = 0.9: h = 1) but comes out a few ulps above it (1.0000000000000002),
+    # so a relative 1e-9 is taken off before rounding up
+    x = math.log(SETTLE_MISS_PROB) / math.log1p(-p)
+    return max(0, math.ceil(x * (1.0 - 1e-9)) - 1)
 
 
 def check_detection_probability(p) -> float:
     if isinstance(p, bool) or not isinstance(p, (int, float)) or not (0 < p <= 1):
-        raise InputError(f"detection probability must lie in (0, 1], got {p!r}")
+        raise InputError(f"detection probability (--detection-probability) must lie in (0, 1], got {p!r}")
     return float(p)
 
 
@@ -230,9 +262,10 @@ def derive_births(scan_ids, times, obj_scan_index, object_id, c0, c1, *, frame: 
     must be unique (the table reader refuses duplicates). Vectorised: sorts and
     differences, no loop per object or scan."""
     if isinstance(max_unseen, bool) or not isinstance(max_unseen, (int, np.integer)) or max_unseen < 0:
-        raise InputError(f"max unseen scans must be a whole number ≥ 0, got {max_unseen!r}")
-    if not (isinstance(position_sd, (int, float)) and position_sd >= 0 and math.isfinite(position_sd)):
-        raise InputError(f"position sd must be a number ≥ 0 (m), got {position_sd!r}")
+        raise InputError(f"max unseen scans (--max-unseen) must be a whole number ≥ 0, got {max_unseen!r}")
+    if isinstance(position_sd, bool) or not (isinstance(position_sd, (int, float)) and position_sd >= 0
+                                             and math.isfinite(position_sd)):
+        raise InputError(f"position sd (--position-sd) must be a finite number ≥ 0 (m), got {position_sd!r}")
     p = None if detection_probability is None else check_detection_probability(detection_probability)
     if settle_scans is None:
         settle_scans = settle_scans_for(p) if p is not None else 0
@@ -298,8 +331,15 @@ def derive_births(scan_ids, times, obj_scan_index, object_id, c0, c1, *, frame: 
         bx = np.where(have_v, bx - vx * T * m, bx)
         by = np.where(have_v, by - vy * T * m, by)
         s2 = position_sd**2  # the first listed position's own noise
-        x_sd = np.where(have_v, np.sqrt(T * T * (vx**2 * var_l + m * m * var_v) + s2), np.nan)
-        y_sd = np.where(have_v, np.sqrt(T * T * (vy**2 * var_l + m * m * var_v) + s2), np.nan)
+        cross = np.full(bi.size, np.nan)  # σ²·2·T·E[L]/Δt: e_f in both x_f and v̂ (module docstring)
+        if dt is not None:
+            cross[ok] = 2.0 * s2 * T * m / dt
+
+        def lag_sd(v):  # v² estimated by v̂² (conservative; module docstring)
+            var = T * T * (v**2 * var_l + m * m * var_v) + s2 + cross
+            return np.where(have_v, np.sqrt(var), np.nan)
+
+        x_sd, y_sd = lag_sd(vx), lag_sd(vy)
         lag = {"expected_missed_scans": m, "variance_missed_scans": var_l, "scan_period_s": T,
                "expected_shift": "v·T·(1 − P_D)/P_D along the track",
                "births_without_velocity_uncorrected": int((~have_v).sum())}
@@ -322,9 +362,10 @@ def derive_births(scan_ids, times, obj_scan_index, object_id, c0, c1, *, frame: 
     }
     ids_t = np.asarray(scan_ids)[st.order]
     rules = {
-        "gap": f"a time jump > {gap_factor:g} × the median scan period"
-               + (f" ({gap_factor * st.period_s:.4g} s)" if st.period_s else "")
-               + ", or a jump in whole-number scan ids > 1",
+        "gap": (f"a time jump > {gap_factor:g} × the median scan period"
+                + (f" ({gap_factor * st.period_s:.4g} s)" if st.period_s else "") + "; scan ids not looked at"
+                if st.times is not None else
+                f"no scan times: a jump in whole-number scan ids > {gap_factor:g} × the median id step"),
         "censoring": f"objects first listed at the first {settle_scans + 1} scan(s) of the recording or "
                      f"after a gap are left-censored; those steps are not exposed",
         "reappearance": f"an id unseen for more than {max_unseen} scans that reappears is a new object "
