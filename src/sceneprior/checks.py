@@ -394,7 +394,7 @@ def prior_predictive(rb: dict, n_obs, rng, draws: int = 1000, seed: int = 0, lev
                                                                               **setup.inputs)
             except (NotImplementedError, ValueError) as exc:
                 return {"status": "not available", "reason": f"the prior cannot be sampled ({type(exc).__name__}: "
-                                                              f"{str(exc).splitlines()[0][:120]}); an improper prior?"}
+                                                              f"{(str(exc).splitlines() or ['no message'])[0][:120]}); an improper prior?"}
             pd = {k: np.asarray(v, float) for k, v in pd.items()}
             if "rate" not in pd:
                 return {"status": "not available", "reason": f"the '{kind.name}' model has no rate site to sample"}

@@ -117,6 +117,9 @@ def build_parser() -> argparse.ArgumentParser:
     e.add_argument("--override-gate", action="store_true",
                    help="export even if the convergence gate fails (written into the file)")
     e.add_argument("--out", metavar="FILE", help="also write the configuration to FILE")
+    e.add_argument("--site", metavar="NAME",
+                   help="for a run fitted to several sites (kind lgcp_sites): export this site's map "
+                   "(written to RUN/tracker-NAME.json); required there")
 
     r = sub.add_parser(
         "report", help="write report.html (maps, counts, rate, sampler diagnostics) of a run",
@@ -175,7 +178,7 @@ def cmd_export(args) -> int:
     from .export import describe, export_run
 
     doc, paths = export_run(args.run, quantile=args.quantile, override_gate=args.override_gate, out=args.out,
-                            detection=args.detection, birth=args.birth)
+                            detection=args.detection, birth=args.birth, site=args.site)
     print(describe(doc, paths))
     return 0
 

@@ -86,6 +86,10 @@ def side_from_run(run) -> Side:
     sc = (run.summary.get("data") or {}).get("spec_content") or {}
     region, grid = _region_from_space(sc.get("space") or {}, str(run.path))
     cd = run.cell_draws
+    if "site_intensity" in cd:
+        raise InputError(f"{run.path}: run {run.name} has a map per site (kind \"lgcp_sites\"), and compare takes "
+                         "runs with one map; its summary.json lists each site's rate posterior (lgcp_sites.sites), "
+                         "or fit the sites separately to compare them")
     lam = np.asarray(cd["intensity"].values, dtype=np.float64)
     lam = _per_m2(lam, str(cd["intensity"].attrs.get("units", "")), grid, str(run.path / "cell_draws.nc"))
     wa = np.asarray(run.intensity["window_area"].values, dtype=np.float64).reshape(-1)

@@ -234,10 +234,53 @@ def _birth_region(region_sec: dict) -> dict:
 
 
 # ----------------------------------------------------------------------- main
+def site_choice(run, site: str | None) -> tuple[int, str] | None:
+    """(index, name) of the site whose map a run with a map per site (kind ``lgcp_sites``:
+    intensity.nc has a ``site`` dimension) exports, or None for other runs. Such a run needs
+    ``site``; other runs refuse it (InputError, one line)."""
+    ds = run.intensity
+    if "site_intensity_mean" not in ds:
+        if site is not None:
+            raise InputError(f"{run.path}: --site applies to runs with a map per site (kind \"lgcp_sites\"); run "
+                             f"{run.name} is '{run.summary['model']['kind']}' with one map")
+        return None
+    sites = [str(x) for x in ds["site"].values]
+    if site is None:
+        raise InputError(f"{run.path}: run {run.name} has a map per site ({', '.join(sites)}); choose one with "
+                         "--site NAME")
+    if str(site) not in sites:
+        raise InputError(f"{run.path}: no site {site!r} in run {run.name}; its sites: {', '.join(sites)}")
+    return sites.index(str(site)), str(site)
+
+
+def _site_gate(run, g, j_name, override_gate: bool) -> None:
+    """Add the per-cell checks over every site's cells (results.site_cell_checks, from
+    cell_draws.nc) to the gate verdict ``g`` of a run with a map per site; raise
+    ConvergenceGateError (exit 3) when they fail and the gate is not overridden."""
+    from .errors import ConvergenceGateError
+    from .results import site_cell_checks
+
+    cd = run.cell_draws
+    window = np.asarray(run.intensity["window_area"].values).reshape(-1) > 0
+    checks, notes = site_cell_checks(np.asarray(cd["site_intensity"].values), window,
+                                     int(run.summary["diagnostics"]["chains"]),
+                                     int(cd.attrs.get("draws_total", cd.sizes["sample"])),
+                                     int(cd.attrs.get("thinning", 1)))
+    g.checks.extend(checks)
+    g.notes.extend(notes)
+    if not g.passed and not override_gate:
+        raise ConvergenceGateError(f"run {run.name}: {g.message()}; nothing exported "
+                                   "(--override-gate exports anyway and records it in the file)")
+
+
 def build_config(run, quantile: float | None = None, override_gate: bool = False,
-                 detection=None, birth=None) -> dict:
+                 detection=None, birth=None, site: str | None = None) -> dict:
     """The tracker configuration (a dict) of a loaded run. Raises ConvergenceGateError when
     the gate fails and ``override_gate`` is false; InputError on a bad quantile.
+
+    ``site``: for a run with a map per site (kind ``lgcp_sites``), the site whose map, rate
+    posterior and cardinality are exported (required there, refused elsewhere); the gate
+    then also judges every site's cells.
 
     ``detection``: a detection run (path or :class:`~sceneprior.detprob.DetectionRun`)
     whose P_D(range) goes into ``detection_probability``; ``birth``: a birth-mixture run
@@ -246,27 +289,36 @@ def build_config(run, quantile: float | None = None, override_gate: bool = False
     from .gate import require
 
     q = check_quantile(quantile)
+    chosen = site_choice(run, site)
     g = require(run, quantile=q is not None, override=override_gate)
+    if chosen is not None:
+        _site_gate(run, g, chosen, override_gate)
     s = run.summary
     region, grid, w = run_geometry(run)
     ds = run.intensity
     n0, n1 = grid.shape
     masked = ~(w > 0)
+    var = "intensity" if chosen is None else "site_intensity"
+
+    def pick(a):  # the chosen site's slice of a per-site array (site axis first after draws)
+        return a if chosen is None else a[chosen[0]]
+
     if q is None:
-        lam = np.asarray(ds["intensity_mean"].values, dtype=float)
+        lam = pick(np.asarray(ds[f"{var}_mean"].values, dtype=float))
         estimate = {"kind": "posterior_mean", "quantile": None,
-                    "source": "intensity.nc 'intensity_mean' (all posterior draws, float64)",
+                    "source": f"intensity.nc '{var}_mean' (all posterior draws, float64)",
                     "draws_used": int(s["diagnostics"]["chains"] * s["diagnostics"]["draws"]),
                     "note": "per-cell posterior mean of the intensity; its integral is the posterior "
                             "mean of the rate"}
     else:
         cd = run.cell_draws
-        draws = np.asarray(cd["intensity"].values, dtype=np.float64)
+        draws = np.asarray(cd[var].values, dtype=np.float64)
+        draws = draws if chosen is None else draws[:, chosen[0]]
         if draws.shape[1] != n0 * n1:
             raise InputError(f"{run.path / 'cell_draws.nc'}: {draws.shape[1]} cells, the grid has {n0 * n1}")
         lam = np.quantile(draws, q, axis=0).reshape(n0, n1)
         estimate = {"kind": "quantile", "quantile": q,
-                    "source": f"cell_draws.nc 'intensity': per-cell {q:g} quantile over "
+                    "source": f"cell_draws.nc '{var}': per-cell {q:g} quantile over "
                               f"{draws.shape[0]} kept draws (thinning {int(cd.attrs.get('thinning', 1))}, "
                               "float32 draws, quantile in float64)",
                     "draws_used": int(draws.shape[0]),
@@ -277,7 +329,8 @@ def build_config(run, quantile: float | None = None, override_gate: bool = False
     if not rate_value > 0:
         raise InputError(f"{run.path}: the exported map integrates to {rate_value}; nothing to export")
     density = lam / rate_value
-    post = {k: s["rate"][k] for k in ("mean", "sd", "q05", "q50", "q95")}
+    rate_post = s["rate"] if chosen is None else s[s["model"]["kind"]]["sites"][chosen[1]]["rate"]
+    post = {k: rate_post[k] for k in ("mean", "sd", "q05", "q50", "q95")}
     vals = lam[~masked]
     uniform = None
     if vals.size and np.ptp(vals) == 0:
@@ -313,10 +366,17 @@ def build_config(run, quantile: float | None = None, override_gate: bool = False
         },
         "intensity": {"units": "m-2 scan-1", "values": _grid_list(lam, masked)},
         "density": {"units": "m-2", "values": _grid_list(density, masked)},
-        "intensity_sd": {"units": "m-2 scan-1", "values": _grid_list(np.asarray(ds["intensity_sd"].values, float), masked),
+        "intensity_sd": {"units": "m-2 scan-1", "values": _grid_list(pick(np.asarray(ds[f"{var}_sd"].values, float)),
+                                                                       masked),
                          "note": "per-cell posterior sd of the intensity (all draws)"},
         "interpolation": dict(INTERPOLATION),
     }
+    if chosen is not None:
+        column = (s.get(s["model"]["kind"]) or {}).get("site_column", "site")
+        clutter["site"] = {"name": chosen[1], "column": column,
+                           "note": f"the map, rate and cardinality of site {chosen[1]!r} of a run fitted to several "
+                                   "sites (a shared field plus site deviations); export each site separately"}
+        estimate["site"] = chosen[1]
     if grid.frame == "polar":
         r_mid = 0.5 * (grid.edges0[:-1] + grid.edges0[1:])
         clutter["intensity_polar"] = {
@@ -365,15 +425,21 @@ def _write_json(doc: dict, path: Path) -> None:
 
 
 def export_run(run, quantile: float | None = None, override_gate: bool = False,
-               out: str | Path | None = None, detection=None, birth=None) -> tuple[dict, list[Path]]:
-    """Export a run (a path or a loaded Run): writes RUN/tracker.json and, with ``out``, a
-    copy there; ``detection`` / ``birth`` add the P_D and birth sections of other runs
+               out: str | Path | None = None, detection=None, birth=None,
+               site: str | None = None) -> tuple[dict, list[Path]]:
+    """Export a run (a path or a loaded Run): writes RUN/tracker.json (RUN/tracker-SITE.json
+    for one site of a run with a map per site) and, with ``out``, a copy there; ``detection``
+    / ``birth`` add the P_D and birth sections of other runs, ``site`` picks a site's map
     (:func:`build_config`). Returns (document, paths written)."""
     if not hasattr(run, "summary"):
         run = open_run_as(run, "RUN")
     check_quantile(quantile)
-    doc = build_config(run, quantile=quantile, override_gate=override_gate, detection=detection, birth=birth)
-    paths = [Path(run.path) / TRACKER_FILE]
+    doc = build_config(run, quantile=quantile, override_gate=override_gate, detection=detection, birth=birth,
+                       site=site)
+    chosen = doc["clutter"].get("site")
+    safe = None if chosen is None else "".join(ch if ch.isalnum() or ch in "._-" else "_" for ch in chosen["name"])
+    name = TRACKER_FILE if chosen is None else f"{Path(TRACKER_FILE).stem}-{safe}.json"
+    paths = [Path(run.path) / name]
     if out is not None:
         paths.append(Path(out))
     for p in paths:
@@ -387,7 +453,8 @@ def describe(doc: dict, paths) -> str:
     r = c["rate"]
     est = doc["estimate"]
     what = "posterior mean" if est["kind"] == "posterior_mean" else f"per-cell {est['quantile']:g} quantile"
-    lines = [f"tracker configuration of run {doc['provenance']['run']} written to "
+    at = f" (site {c['site']['name']})" if c.get("site") else ""
+    lines = [f"tracker configuration of run {doc['provenance']['run']}{at} written to "
              + ", ".join(str(p) for p in paths),
              f"  map: {what} ({c['spatial_model']}, {doc['region']['frame']} frame); "
              f"rate = its integral {r['value']:.4g} detections/scan; rate posterior 90 % interval "

@@ -160,6 +160,10 @@ def load_draws(run, max_draws: int | None = 1000) -> RunDraws:
     used for the count-level checks (None: all)."""
     post = run.posterior.posterior
     kind = run.summary["model"]["kind"]
+    if kind == "lgcp_sites":  # each scan's law depends on its site's own map, not a scale of one map
+        raise InputError(f"{run.path}: run {run.name} has a map per site (kind \"lgcp_sites\"); check and rank "
+                         "read one map scaled per scan and do not handle per-site maps yet — fit each site with "
+                         "kind \"lgcp\" to check or rank it")
     S_total = int(post.sizes["chain"] * post.sizes["draw"])
     cd = run.cell_draws
     step = int(cd.attrs.get("thinning", 1))

@@ -463,6 +463,36 @@ def _num(v, fmt=".4g"):
         return html.escape(str(v))
 
 
+SITE_PANELS = 6  # site maps drawn per report (the first ones, in the run's site order)
+
+
+def _sites_html(s: dict, ds, grid, region, sites: list, cmap) -> str:
+    """The per-site section of a run with a map per site: each site's posterior mean map on a
+    common colour scale (the first SITE_PANELS sites) and a table of the sites' rates."""
+    esc = html.escape
+    shown = sites[:SITE_PANELS]
+    vals = np.asarray(ds["site_intensity_mean"].values, float) * 1e6
+    top = float(np.nanmax(vals[: len(shown)]))
+    fig = _map_figure(grid, region, [(f"Site {name}, posterior mean", vals[j], cmap, "detections per km² per scan",
+                                      0.0, top) for j, name in enumerate(shown)])
+    more = f" Only the first {SITE_PANELS} of {len(sites)} sites are drawn." if len(sites) > SITE_PANELS else ""
+    cap = ("Each site's clutter intensity, per-cell posterior mean (per km² per scan), on one colour scale: the shared "
+           "field plus the site's deviation at the site's baseline. A site with few detections is pulled toward the "
+           "shared field." + more)
+    info = (s.get(s["model"]["kind"]) or {}).get("sites", {})
+    rows = "".join(
+        f"<tr><td>{esc(name)}</td><td>{esc(str(info.get(name, {}).get('scans')))}</td>"
+        f"<td>{esc(str(info.get(name, {}).get('detections')))}</td><td>{_num(info.get(name, {}).get('raw_rate'))}</td>"
+        f"<td>{_num((info.get(name, {}).get('rate') or {}).get('mean'))}</td>"
+        f"<td>[{_num((info.get(name, {}).get('rate') or {}).get('q05'))}, "
+        f"{_num((info.get(name, {}).get('rate') or {}).get('q95'))}]</td></tr>" for name in sites)
+    return ("<h3>Sites</h3>" + _fig_html(_png(fig), "site intensity maps", cap)
+            + "<table><tr><th>site</th><th>scans</th><th>detections</th><th>raw rate (N/K)</th>"
+            f"<th>rate, posterior mean</th><th>90 % interval</th></tr>{rows}</table>"
+            '<p class="note">Rates: expected detections per scan over the window at each site; export a site with '
+            "<code>sceneprior export RUN --site NAME</code>.</p>")
+
+
 def build_report(run) -> str:
     """The report page (HTML text) of a loaded run."""
     from .export import run_geometry
@@ -487,7 +517,13 @@ def build_report(run) -> str:
     cap = ("Per-cell posterior mean and standard deviation of the clutter intensity (per km² per scan; "
            "1 km² = 10⁶ m²). Hatched: permanent masks (no data, zero intensity in the export)."
            + (" The model is uniform, so both maps are flat over the window." if uniform else ""))
+    sites = [str(x) for x in ds["site"].values] if "site_intensity_mean" in ds else []
+    if sites:
+        cap += (" This run has a map per site: these are its group map (the group-mean baseline times the shared "
+                "field, no site deviation); each site's own map follows.")
     parts.append(f"<section><h2>Where the clutter is</h2>{_fig_html(_png(fig), 'intensity maps', cap)}")
+    if sites:
+        parts.append(_sites_html(s, ds, grid, region, sites, cm_mean))
     exc = [v for v in ds.data_vars if "exceed" in v.lower()]
     for v in exc[:3]:
         da = ds[v]
@@ -508,6 +544,9 @@ def build_report(run) -> str:
     # counts and rate
     rate = _flat_draws(post, "rate").reshape(-1)
     counts, why = _scan_counts(run, region)
+    if sites:
+        counts, why = None, ("each scan's predictive law depends on its site and this page does not draw several "
+                             "sites' laws yet; the per-site rates are in the table above")
     parts.append("<section><h2>How many per scan</h2>")
     if counts is not None:
         cp = count_predictive(run, counts)

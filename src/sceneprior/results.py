@@ -49,13 +49,7 @@ def intensity_dataset(result):
     n0, n1 = grid.shape
     lam = result.cell_intensity()  # (chain, draw, cell)
     flat = lam.reshape(-1, grid.n_cells)
-    summaries = {
-        "mean": flat.mean(axis=0),
-        "sd": flat.std(axis=0, ddof=1),
-    }
-    qs = np.quantile(flat, list(QUANTILES.values()), axis=0)
-    for (name, _), q in zip(QUANTILES.items(), qs):
-        summaries[name] = q
+    summaries = _cell_summaries(flat)
     outside = stats.window_area <= 0
     a0, a1 = grid.axes
     u1 = "degree" if grid.frame == "polar" else "m"
@@ -96,6 +90,8 @@ def intensity_dataset(result):
         data_vars["extrapolated"] = ((a0, a1), unobserved.reshape(n0, n1).astype(np.int8),
                                      {"units": "1", "long_name": "1 where the cell has window area but "
                                       "no exposure: its intensity is predicted from neighbours"})
+    if result.model.site_cell_intensity is not None:
+        _add_site_maps(result, data_vars, coords, outside)
     data_vars["counts"] = ((a0, a1), stats.counts.reshape(n0, n1),
                            {"units": "1", "long_name": "detections summed over scans (N_c)"})
     data_vars["exposure"] = ((a0, a1), stats.exposure.reshape(n0, n1),
@@ -118,6 +114,64 @@ def intensity_dataset(result):
     return ds
 
 
+def _cell_summaries(flat: np.ndarray) -> dict:
+    """Posterior mean, sd and the QUANTILES over the draws (axis 0) of per-cell draws."""
+    out = {"mean": flat.mean(axis=0), "sd": flat.std(axis=0, ddof=1)}
+    for name, q in zip(QUANTILES, np.quantile(flat, list(QUANTILES.values()), axis=0)):
+        out[name] = q
+    return out
+
+
+def site_cell_draws(result) -> np.ndarray:
+    """(chain, draw, site, n_cells) intensity draws [m⁻² scan⁻¹] of a kind with a map per site."""
+    return result.model.site_cell_intensity(result.posterior_arrays(), result.stats, result.setup)
+
+
+def _add_site_maps(result, data_vars: dict, coords: dict, outside: np.ndarray) -> None:
+    """Per-site intensity summaries (dims site, axis0, axis1) and the kind's extra maps
+    (``ModelKind.extra_maps``: values per cell, or per site and cell) into intensity.nc."""
+    grid = result.stats.grid
+    n0, n1 = grid.shape
+    a0, a1 = grid.axes
+    sites = [str(x) for x in result.setup.extra["sites"]]
+    S = len(sites)
+    column = result.setup.extra.get("site_column", "site")
+    coords["site"] = ("site", np.asarray(sites), {"long_name": f"site (scans-table column '{column}')"})
+    lam = site_cell_draws(result)
+    for name, vals in _cell_summaries(lam.reshape((-1,) + lam.shape[2:])).items():
+        v = np.where(outside, np.nan, vals).reshape(S, n0, n1)
+        data_vars[f"site_intensity_{name}"] = (
+            ("site", a0, a1), v, {"units": "m-2 scan-1", "quantity": "intensity",
+                                  "long_name": f"clutter intensity at each site, posterior {name}, per m² per scan"})
+        if grid.frame == "polar":
+            r_mid = 0.5 * (grid.edges0[:-1] + grid.edges0[1:])
+            data_vars[f"site_intensity_polar_{name}"] = (
+                ("site", a0, a1), v * r_mid[None, :, None],
+                {"units": "m-1 rad-1 scan-1", "quantity": "intensity",
+                 "long_name": f"clutter intensity at each site, posterior {name}, per m of range per rad of bearing "
+                              "(cell average; = per-m² value × mid-cell range)"})
+    extra = result.model.extra_maps(result) if result.model.extra_maps is not None else {}
+    for name, (dims, vals, attrs) in extra.items():
+        shape = tuple(S if d == "site" else n0 * n1 for d in dims)
+        v = np.where(outside, np.nan, np.asarray(vals, float).reshape(shape)).reshape(shape[:-1] + (n0, n1))
+        data_vars[name] = (tuple(d for d in dims if d != "cell") + (a0, a1), v, attrs)
+
+
+def site_cell_checks(kept: np.ndarray, window: np.ndarray, chains: int, draws_total: int, step: int):
+    """The gate's per-cell checks (99th percentile of R-hat, median bulk ESS) over every
+    site's cells inside the window, from kept per-site draws (sample, site, n_cells) laid out
+    as cell_draws.nc keeps them; returns (checks, notes) of :func:`sceneprior.gate.evaluate`."""
+    from dataclasses import replace
+
+    from .gate import chains_from_kept, evaluate
+
+    x = np.asarray(kept)[:, :, np.asarray(window, bool)]
+    g = evaluate({}, None, chains_from_kept(x.reshape(x.shape[0], -1), chains, draws_total, step))
+    checks = [replace(c, variable=f"site {c.variable} of {x.shape[1]} sites")
+              for c in g.checks if c.diagnostic.startswith("cell_")]
+    return checks, [f"sites: {n}" for n in g.notes]
+
+
 def thin_for_budget(n_draws: int, n_cells: int, budget_mb: float) -> int:
     """Thinning step so that kept per-cell draws fit ``budget_mb`` in float32."""
     per_draw = 4.0 * n_cells / 1e6  # MB
@@ -137,7 +191,19 @@ def cell_draws_dataset(result):
     step = thin_for_budget(c * d, n, result.spec.draws_budget_mb)
     kept = np.ascontiguousarray(flat[::step], dtype=np.float32)
     rate = result.rate_draws().reshape(-1)[::step]
-    return xr.Dataset(
+    site_vars = {}
+    if result.model.site_cell_intensity is not None:  # a map per site: thinned alike, S× the size
+        sl = site_cell_draws(result)
+        site_rate = np.asarray(result.idata.posterior["site_rate"], np.float64)
+        site_vars = {
+            "site_intensity": (("sample", "site", "cell"),
+                               np.ascontiguousarray(sl.reshape((c * d,) + sl.shape[2:])[::step], dtype=np.float32),
+                               {"units": "m-2 scan-1", "long_name": "posterior draws of the cell intensity at each site "
+                                "(thinned like 'intensity'; not counted in the budget)"}),
+            "site_rate": (("sample", "site"), site_rate.reshape(c * d, -1)[::step],
+                          {"units": "detections per scan", "long_name": "posterior draws of each site's rate"}),
+        }
+    ds = xr.Dataset(
         {"intensity": (("sample", "cell"), kept,
                        {"units": "m-2 scan-1", "long_name": "posterior draws of the cell intensity"}),
          "rate": (("sample",), rate.astype(np.float64),
@@ -146,6 +212,9 @@ def cell_draws_dataset(result):
                "precision": "float32 (intensity); the summaries in intensity.nc use all draws in float64",
                "order": "sample = chain-major flattening of (chain, draw), then thinned"},
     )
+    if site_vars:
+        ds = ds.assign(site_vars).assign_coords(site=[str(x) for x in result.setup.extra["sites"]])
+    return ds
 
 
 def scans_dataset(result):
@@ -204,7 +273,22 @@ def _gate_entry(result) -> dict:
     run unconverged (``sceneprior fit`` then exits 3 and export refuses it)."""
     from .gate import summary_entry
 
-    return summary_entry(result)
+    entry = summary_entry(result)
+    if result.model.site_cell_intensity is None:
+        return entry
+    # a map per site: the per-cell checks over every site's cells too, on the draws kept
+    lam = site_cell_draws(result)
+    c, d, S, n = lam.shape
+    step = thin_for_budget(c * d, n, result.spec.draws_budget_mb)
+    kept = np.asarray(lam.reshape(c * d, S, n)[::step], dtype=np.float32)
+    checks, notes = site_cell_checks(kept, result.stats.window_area > 0, c, c * d, step)
+    ok = all(ch.passed for ch in checks)
+    entry["checks"] += [ch.to_dict() for ch in checks]
+    entry["failures"] += [ch.describe() for ch in checks if not ch.passed]
+    entry["notes"] += notes
+    entry["converged"] = entry["converged"] and ok
+    entry["quantile_export_ok"] = entry["quantile_export_ok"] and ok
+    return entry
 
 
 def _zone_rates(result) -> dict:

@@ -71,6 +71,9 @@ _SCHEMA["sensor"] = {"x": None, "y": None, "heading": None, "frame": None}
 MODEL_KINDS = MODEL_KINDS + ("sites",)
 MODEL_OPTIONS = {k: tuple(v) + SCAN_OPTIONS for k, v in MODEL_OPTIONS.items()}
 MODEL_OPTIONS["sites"] = ("site_column",)
+SITE_KINDS = ("sites", "lgcp_sites")  # kinds that read a site column of the scans table
+MODEL_KINDS = MODEL_KINDS + ("lgcp_sites",)
+MODEL_OPTIONS["lgcp_sites"] = ("kernel", "site_column")
 
 # Known objects and their gates (issue 7): an objects table named in [data], gate options in
 # [data.gates], its column names in [data.columns] beside the detections' ones.
@@ -513,14 +516,14 @@ def _per_scan_options(kind: str, options: dict, data: DataSpec, source: str):
         col = t.get("column", "time")
         if not isinstance(col, str) or not col:
             raise InputError(f"{source}: 'model.time.column' must be a column name (a string)")
-    if kind == "sites":
+    if kind in SITE_KINDS:
         sc = options.get("site_column", "site")
         if not isinstance(sc, str) or not sc:
             raise InputError(f"{source}: 'model.site_column' must be a column name (a string)")
-    needs_table = bool(cov) or t is not None or kind == "sites"
+    needs_table = bool(cov) or t is not None or kind in SITE_KINDS
     if needs_table:
         if data.scans is None:
-            what = "the sites model" if kind == "sites" else "model.scan_covariates / [model.time]"
+            what = f"model kind '{kind}'" if kind in SITE_KINDS else "model.scan_covariates / [model.time]"
             raise InputError(f"{source}: {what} reads columns of the scans table; set data.scans "
                              "(data.n_scans has no columns)")
         options = {**options, "_scans": {"path": str(data.scans), "scan": data.columns["scan"]}}

@@ -107,7 +107,7 @@ def _y_map(u, pre: dict, use_pad: bool):
     return yt - jnp.mean(yt) + ub
 
 
-def field_and_prior(u, lam, pre: dict, grid_shape, use_pad: bool):
+def field_and_prior(u, lam, pre: dict, grid_shape, use_pad: bool, info=None, shift=None):
     """Grid field f (n0·n1,) and the log prior density of the white coordinates u, up to a
     constant, given the torus eigenvalues ``lam`` (m0, m1//2+1) at the sampled σ, ℓ.
 
@@ -115,14 +115,24 @@ def field_and_prior(u, lam, pre: dict, grid_shape, use_pad: bool):
     f ~ N(0, C_θ) gives  log p(u) = −½ yᵀ(I + w̄ C_θ)⁻¹ y − ½ log det(I + w̄ C_θ) + const
     (L_θ C_θ⁻¹ L_θ = (I + w̄C_θ)⁻¹, log det L_θ = ½ log det C_θ − ½ log det(I + w̄C_θ)),
     both evaluated on the half spectrum with Parseval weights (1/N Σ_k mult_k |Y_k|²).
+
+    Two optional generalisations for fields that share data (several fields on one torus,
+    ``models/lgcp_sites.py``); both keep the formula above exact:
+    ``info`` (m0, m1//2+1): the data information per mode, d_k = 1 + info_k, in place of
+    w̄Λ_k (any non-negative function of θ; the zero mode stays d_0 = 1);
+    ``shift`` (m0, m1//2+1) complex: subtracted from Y = rfft2(y) before step 3 — a shear
+    by another field's coordinates (unit Jacobian when it does not depend on u), so that
+    f = L_θ(y − y_shift) and y is replaced by y − y_shift in log p(u).
     """
     m0, m1 = u.shape
     n_torus = m0 * m1
     y = _y_map(u, pre, use_pad)
     Y = jnp.fft.rfft2(y)
+    if shift is not None:
+        Y = Y - shift
     lam = jnp.maximum(lam, 0.0)
     zero = jnp.ones_like(lam).at[0, 0].set(0.0)
-    d = 1.0 + pre["w_scale"] * zero * lam
+    d = 1.0 + zero * (pre["w_scale"] * lam if info is None else info)
     mult = jnp.asarray(half_multiplicity((m0, m1)))
     quad = jnp.sum(mult * (Y.real**2 + Y.imag**2) / d) / n_torus
     logdet = jnp.sum(mult * jnp.log(d))
@@ -133,17 +143,21 @@ def field_and_prior(u, lam, pre: dict, grid_shape, use_pad: bool):
 
 # ----------------------------------------------------------------------------- set-up
 def pilot_hyperparameters(counts, exposure, grid_shape, spacing, kernel, ls_lo, ls_hi,
-                          sigma_scale) -> dict:
+                          sigma_scale, offset=None) -> dict:
     """Rough σ, ℓ from moments of the empirical log intensity g_c = log((N_c+½)/E_c) on
     exposed cells: σ² = var(g) − mean Poisson noise (≈ 1/(N_c+½)), ℓ per axis from the
     lag-one correlation along that axis (solving k(h)/σ² = ρ₁), clipped to the prior's
-    range. Only used to build the fixed preconditioner; never enters the posterior."""
+    range. ``offset`` (n0·n1,): a log intensity explained by other fields, subtracted from
+    g first (a deviation field's pilot). Only used to build the fixed preconditioner; never
+    enters the posterior."""
     n0, n1 = grid_shape
     counts = np.asarray(counts, float).reshape(n0, n1)
     exposure = np.asarray(exposure, float).reshape(n0, n1)
     ok = exposure > 0
     g = np.full((n0, n1), np.nan)
     g[ok] = np.log((counts[ok] + 0.5) / exposure[ok])
+    if offset is not None:
+        g[ok] -= np.asarray(offset, float).reshape(n0, n1)[ok]
     noise = np.where(ok, 1.0 / (counts + 0.5), np.nan)
     s2 = float(np.nanvar(g) - np.nanmean(noise)) if ok.sum() > 1 else 0.0
     s2 = float(np.clip(s2, (0.05 * sigma_scale) ** 2, (3.0 * sigma_scale) ** 2))
@@ -171,8 +185,9 @@ def pilot_hyperparameters(counts, exposure, grid_shape, spacing, kernel, ls_lo, 
 def _energy(v, lam, pre, w, total, grid_shape, use_pad):
     """Negative log density of the Gaussian approximation at the pilot: the field prior of
     the white coordinates plus the Laplace curvature of the likelihood with weights w
-    (N_c + ½), the level direction removed (the baseline is integrated out)."""
-    f, logp = field_and_prior(v, lam, pre, grid_shape, use_pad)
+    (N_c + ½), the level direction removed (the baseline is integrated out). ``pre["info"]``,
+    when present, is the per-mode information of ``build_preconditioner(information=...)``."""
+    f, logp = field_and_prior(v, lam, pre, grid_shape, use_pad, info=pre.get("info"))
     lik = jnp.sum(w * f**2) - jnp.dot(w, f) ** 2 / jnp.maximum(total, 1e-300)
     return -logp + 0.5 * lik
 
@@ -214,17 +229,23 @@ def soft_direction(lam, pre: dict, w, grid_shape, use_pad: bool, maxiter: int = 
 
 
 def build_preconditioner(spectrum, grid_shape, counts, exposure, kernel, ls_lo, ls_hi, sigma_scale,
-                         use_pad: bool | None = None) -> Preconditioner:
+                         use_pad: bool | None = None, offset=None, information=None) -> Preconditioner:
     """Pilot hyperparameters, padding correction and soft direction for this data set.
 
     counts, exposure: (n0·n1,) per grid cell (exposure 0 where a cell carries no data).
-    use_pad None: on when max_k w̄ Λ̂_k > PAD_THRESHOLD (strongly informed modes exist)."""
+    use_pad None: on when max_k w̄ Λ̂_k > PAD_THRESHOLD (strongly informed modes exist).
+    offset: passed to :func:`pilot_hyperparameters` (a deviation field's pilot).
+    information: for a field whose partial centring uses ``field_and_prior(info=...)``, a
+    callable (Λ̂ at the pilot with Λ̂_0 = 0, w̄) → that per-mode information at the pilot; it
+    then replaces w̄Λ̂_k in the use_pad decision, in κ_k = √(1 + info_k) and in the soft
+    direction. Default (None): w̄Λ̂_k."""
     geom = spectrum.geom
     m0, m1 = geom.torus_shape
     n0, n1 = grid_shape
     counts = np.asarray(counts, float).reshape(-1)
     exposure = np.asarray(exposure, float).reshape(-1)
-    pilot = pilot_hyperparameters(counts, exposure, grid_shape, geom.spacing, kernel, ls_lo, ls_hi, sigma_scale)
+    pilot = pilot_hyperparameters(counts, exposure, grid_shape, geom.spacing, kernel, ls_lo, ls_hi, sigma_scale,
+                                  offset=offset)
     ls_hat = np.resize(np.asarray(pilot["length_scale"], float), 2)
     lam_hat = np.maximum(np.asarray(spectrum.eigenvalues(ls_hat, pilot["sigma"] ** 2), float), 0.0)
     exposed = np.zeros((m0, m1))
@@ -233,16 +254,19 @@ def build_preconditioner(spectrum, grid_shape, counts, exposure, kernel, ls_lo, 
     w_bar = float(counts.sum() / n_exp)
     lam_nz = lam_hat.copy()
     lam_nz[0, 0] = 0.0
-    info = float(w_bar * lam_nz.max())
+    mode_info = w_bar * lam_nz if information is None else np.asarray(information(lam_nz, w_bar), float)
+    info = float(mode_info.max())
     if use_pad is None:
         use_pad = info > PAD_THRESHOLD
     if use_pad:
-        kappa = np.sqrt(1.0 + w_bar * lam_nz)
+        kappa = np.sqrt(1.0 + mode_info)
     else:  # no padding correction: spread the data over the torus in the mode scaling instead
         w_bar = float(counts.sum() / (m0 * m1))
         kappa = np.ones_like(lam_hat)
     pre = {"exposed": jnp.asarray(exposed), "kappa": jnp.asarray(kappa), "w_scale": jnp.asarray(w_bar),
            "soft": jnp.zeros((m0, m1)), "soft_scale": jnp.asarray(1.0)}
+    if information is not None:  # the soft direction's Gaussian approximation uses it too (_energy)
+        pre["info"] = jnp.asarray(information(lam_nz, w_bar), dtype=float)
     w = np.zeros(n0 * n1)
     w[exposure > 0] = counts[exposure > 0] + 0.5
     g, s = soft_direction(jnp.asarray(lam_hat), pre, jnp.asarray(w), (n0, n1), use_pad)

@@ -38,6 +38,11 @@ class ModelKind:
     summary: Callable | None = None
     optional_prior: tuple[str, ...] = ()  # prior keys without a default
     per_cell: bool = False  # cell-level parameters: per-cell R-hat/ESS are computed and gated
+    # several sites with a map each (lgcp_sites): (posterior, stats, setup) -> (chain, draw, site,
+    # n_cells) per m² per scan, site names in setup.extra["sites"]; written to intensity.nc and
+    # cell_draws.nc with a site dimension and gated over every site's cells (results.py)
+    site_cell_intensity: Callable | None = None
+    extra_maps: Callable | None = None  # (result) -> {name: (dims ⊆ (site, cell), values, attrs)}
 
 
 @dataclass
@@ -103,6 +108,24 @@ MODELS["sites"] = ModelKind(
     describe_prior=hierarchical.describe_prior,
     hyper=("log_mu", "cv", "site_rate"),
     summary=hierarchical.summary,
+)
+
+
+from . import lgcp_sites  # noqa: E402  (a shared field plus site deviations, issue 6)
+
+MODELS["lgcp_sites"] = ModelKind(
+    name="lgcp_sites",
+    fn=lgcp_sites.lgcp_sites_model,
+    default_prior=lgcp_sites.DEFAULT_PRIOR,
+    setup=lgcp_sites.setup,
+    cell_intensity=lgcp_sites.cell_intensity,
+    describe_prior=lgcp_sites.describe_prior,
+    hyper=("level", "cv", "sigma", "sigma_dev", "length_scale", "site_rate"),
+    summary=lgcp_sites.summary,
+    optional_prior=lgcp._LS_KEYS,
+    per_cell=True,
+    site_cell_intensity=lgcp_sites.site_cell_intensity,
+    extra_maps=lgcp_sites.extra_maps,
 )
 
 
