@@ -204,6 +204,7 @@ N_CELLS = 5  # 5 × 5 grid
 SCANS = (60, 6)  # the second site has few scans
 PER_CELL = 1.5  # prior median detections per cell per scan… over the window, at the group baseline
 WARMUP, DRAWS = 150, 150
+N_SETS = 12  # simulated data sets (two sites each), fitted in one vectorised run
 
 
 @pytest.fixture(scope="module")
@@ -308,7 +309,7 @@ def simulated_fits(machinery):
     rng = np.random.default_rng(2027)
     area = m["inp"]["window_area"]
     truths, data = [], []
-    for _ in range(16):
+    for _ in range(N_SETS):
         log_lam, rates = _draw_truth(m, rng)
         truths.append((log_lam, rates))
         site = np.repeat([0, 1], SCANS)
@@ -318,7 +319,7 @@ def simulated_fits(machinery):
 
 def test_coverage_of_every_site_cell(simulated_fits):
     """Pooled 90 % coverage of the true cell log intensities of both sites, in a two-sided
-    99 % t-band from the spread across 16 data sets; site rates in a binomial band."""
+    99 % t-band from the spread across N_SETS (12) data sets; site rates in a binomial band."""
     truths, fits = simulated_fits
     cover = np.zeros(len(fits))
     rate_hits = []
@@ -329,7 +330,7 @@ def test_coverage_of_every_site_cell(simulated_fits):
         rate_hits += list((rates >= rlo) & (rates <= rhi))
     half = st.t.ppf(0.995, cover.size - 1) * cover.std(ddof=1) / math.sqrt(cover.size)
     assert cover.mean() - half <= 0.90 <= cover.mean() + half, (cover.mean(), half)
-    n = len(rate_hits)  # 32 site rates: two-sided 99 % binomial band of the number covered
+    n = len(rate_hits)  # 2·N_SETS site rates: two-sided 99 % binomial band of the number covered
     lo, hi = st.binom.ppf(0.005, n, 0.9), st.binom.isf(0.005, n, 0.9)
     assert lo <= sum(rate_hits) <= hi, (sum(rate_hits), lo, hi)
 
