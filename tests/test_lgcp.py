@@ -401,3 +401,36 @@ def test_prior_draws_rate_mean_and_prior_predictive_check(tmp_path):
     pp = out["prior_predictive"]
     assert "status" not in pp and 0.0 <= pp["observed_quantile"] <= 1.0
     assert pp["prior_rate_q05"] < pp["prior_rate_q50"] < pp["prior_rate_q95"]
+
+
+def test_smooth_kernel_gradient_stays_finite_where_eigenvalues_underflow():
+    """A squared-exponential field on a fine grid: e^{−2π²ℓ²s²} underflows to exactly 0 at
+    high frequencies, and the gradient of the potential in σ and ℓ must stay finite there
+    (√ of a zero eigenvalue once made it NaN: NUTS diverged on every draw or found no start).
+    Reference: the analytic derivative of √(σ²·0) in σ is 0 (calculus, no library)."""
+    import scipy.sparse as sp
+    from numpyro.infer.util import potential_energy
+
+    from sceneprior.binning import BinnedStats
+    from sceneprior.geometry import Region
+    from sceneprior.models.registry import get_model, resolve_prior
+    from sceneprior.spec import ModelSpec
+
+    n, K = 256, 100
+    reg = Region("cartesian", (0.0, 1000.0), (0.0, 1000.0))
+    g = reg.grid((n, n))
+    area = g.cell_area().ravel()
+    counts = np.random.default_rng(3).poisson(0.3, n * n)
+    stats = BinnedStats(reg, g, counts, K * area, area, area, K, np.arange(K), np.zeros(K, np.int64),
+                        sp.csr_matrix((K, n * n)))
+    kind = get_model("lgcp")
+    prior = resolve_prior(kind, {"length_scale_min": 50.0, "length_scale_max": 250.0}, "test")
+    setup = kind.setup(stats, prior, ModelSpec("lgcp", {}, {"kernel": "squared_exponential"}))
+    n_t = setup.extra["geom"].geom.n_torus
+    lam = np.asarray(setup.extra["geom"].eigenvalues(np.array([50.0, 50.0]), 1.0))
+    assert (lam == 0).any()  # the case under test: eigenvalues that underflow
+    rng = np.random.default_rng(0)
+    q = {"sigma": jnp.log(0.05), "ls_unit": jnp.asarray([-2.9]), "u_soft": jnp.asarray(0.3),
+         "u_rest": jnp.asarray(rng.uniform(-2, 2, n_t - 1))}  # unconstrained: σ = 0.05, ℓ near its minimum
+    grad = jax.grad(lambda z: potential_energy(kind.fn, (), setup.inputs, z))(q)
+    assert all(np.isfinite(np.asarray(v)).all() for v in grad.values()), grad

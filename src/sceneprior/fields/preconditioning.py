@@ -107,6 +107,14 @@ def _y_map(u, pre: dict, use_pad: bool):
     return yt - jnp.mean(yt) + ub
 
 
+def safe_sqrt(x):
+    """√x with a finite gradient where x = 0: a smooth kernel's eigenvalues underflow to
+    exactly 0 at high frequencies (squared exponential: e^{−2π²ℓ²s²}), where jnp.sqrt's
+    derivative is infinite and 0·∞ made the gradient in σ and ℓ NaN."""
+    pos = x > 0
+    return jnp.where(pos, jnp.sqrt(jnp.where(pos, x, 1.0)), 0.0)
+
+
 def field_and_prior(u, lam, pre: dict, grid_shape, use_pad: bool, info=None, shift=None):
     """Grid field f (n0·n1,) and the log prior density of the white coordinates u, up to a
     constant, given the torus eigenvalues ``lam`` (m0, m1//2+1) at the sampled σ, ℓ.
@@ -136,7 +144,7 @@ def field_and_prior(u, lam, pre: dict, grid_shape, use_pad: bool, info=None, shi
     mult = jnp.asarray(half_multiplicity((m0, m1)))
     quad = jnp.sum(mult * (Y.real**2 + Y.imag**2) / d) / n_torus
     logdet = jnp.sum(mult * jnp.log(d))
-    f = jnp.fft.irfft2(jnp.sqrt(lam / d) * Y, s=(m0, m1))
+    f = jnp.fft.irfft2(safe_sqrt(lam / d) * Y, s=(m0, m1))
     n0, n1 = grid_shape
     return f[:n0, :n1].reshape(-1), -0.5 * quad - 0.5 * logdet
 

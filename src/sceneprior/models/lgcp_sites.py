@@ -79,7 +79,7 @@ import numpyro.distributions as dist
 import scipy.sparse as sp
 
 from ..errors import InputError
-from ..fields.preconditioning import build_preconditioner, field_and_prior
+from ..fields.preconditioning import build_preconditioner, field_and_prior, safe_sqrt
 from . import lgcp
 from .likelihood import nb_cardinality_logterm
 
@@ -152,7 +152,7 @@ class SiteFieldKernels:
             # deviation s: shear by −β_s f, β_s = B w_s/(1 + B w_s), in its white coordinates
             # (f = L y: subtracting w_s √(B/d_s)·F from Y_s subtracts β_s·f from d_s)
             w_d = pre_dev["w_scale"][:, None, None]
-            shift = w_d * zero * jnp.sqrt(lam_d / (1.0 + w_d * zero * lam_d)) * F[None]
+            shift = w_d * zero * safe_sqrt(lam_d / (1.0 + w_d * zero * lam_d)) * F[None]
             dev, logp_dev = jax.vmap(lambda us, ps, sh: field_and_prior(us, lam_d, ps, grid, use_pad_dev, shift=sh))(
                 ud, pre_dev, shift)
             f = f_torus.reshape(torus)[: grid[0], : grid[1]].reshape(-1)
