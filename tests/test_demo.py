@@ -13,6 +13,7 @@ from __future__ import annotations
 import json
 import tomllib
 
+import arviz as az
 import numpy as np
 import pytest
 import xarray as xr
@@ -143,7 +144,6 @@ def test_demo_gates_the_vessels_and_naive_fit_is_biased_by_them(demo_run):
     z = (excess - v["expected_object_detections_in_window_per_scan"]) / sd
     assert abs(z) < 3.5, (excess, v["expected_object_detections_in_window_per_scan"], sd)
     assert excess > 10 * sd
-    assert 1.5 < v["mean_objects_in_window_per_scan"] < 6  # a realistic few vessels in view
 
 
 def test_models_lgcp_spec_matches_packaged_demo_spec():
@@ -170,7 +170,11 @@ def test_demo_map_spec_converges(demo_run):
     assert dg["divergences"] == 0
     assert dg["cells"]["r_hat_p99"] <= 1.02 and dg["cells"]["ess_bulk_median"] >= 400
     assert s["gate"]["converged"]
-    assert 1 <= dg["leapfrog_steps_mean"] <= dg["leapfrog_steps_max"] <= 1023  # the sampler's work is reported
+    # the sampler's work as reported equals what posterior.nc's sample_stats hold (arviz reads it)
+    ss = az.from_netcdf(demo_run / "demo-map" / "posterior.nc").sample_stats
+    steps = np.asarray(ss["n_steps"])
+    assert dg["leapfrog_steps_mean"] == pytest.approx(float(steps.mean()))
+    assert dg["leapfrog_steps_max"] == int(steps.max())
 
 
 def test_demo_map_zone_rates_cover_the_truth(demo_run):
