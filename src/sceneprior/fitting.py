@@ -60,6 +60,16 @@ class FitResult:
             self._cell_intensity = cached
         return cached
 
+    def site_cell_intensity(self) -> np.ndarray:
+        """(chain, draw, site, n_cells) intensity per site of a kind with a map per site
+        (``ModelKind.site_cell_intensity``), computed once and shared like cell_intensity."""
+        cached = getattr(self, "_site_cell_intensity", None)
+        if cached is None:
+            cached = np.asarray(self.model.site_cell_intensity(self.posterior_arrays(), self.stats, self.setup))
+            cached.setflags(write=False)
+            self._site_cell_intensity = cached
+        return cached
+
     def rate_draws(self) -> np.ndarray:
         """(chain, draw) expected detections per scan in the window."""
         return np.asarray(self.idata.posterior["rate"])

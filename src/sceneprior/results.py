@@ -122,11 +122,6 @@ def _cell_summaries(flat: np.ndarray) -> dict:
     return out
 
 
-def site_cell_draws(result) -> np.ndarray:
-    """(chain, draw, site, n_cells) intensity draws [m⁻² scan⁻¹] of a kind with a map per site."""
-    return result.model.site_cell_intensity(result.posterior_arrays(), result.stats, result.setup)
-
-
 def _add_site_maps(result, data_vars: dict, coords: dict, outside: np.ndarray) -> None:
     """Per-site intensity summaries (dims site, axis0, axis1) and the kind's extra maps
     (``ModelKind.extra_maps``: values per cell, or per site and cell) into intensity.nc."""
@@ -137,7 +132,7 @@ def _add_site_maps(result, data_vars: dict, coords: dict, outside: np.ndarray) -
     S = len(sites)
     column = result.setup.extra.get("site_column", "site")
     coords["site"] = ("site", np.asarray(sites), {"long_name": f"site (scans-table column '{column}')"})
-    lam = site_cell_draws(result)
+    lam = result.site_cell_intensity()
     for name, vals in _cell_summaries(lam.reshape((-1,) + lam.shape[2:])).items():
         v = np.where(outside, np.nan, vals).reshape(S, n0, n1)
         data_vars[f"site_intensity_{name}"] = (
@@ -193,7 +188,7 @@ def cell_draws_dataset(result):
     rate = result.rate_draws().reshape(-1)[::step]
     site_vars = {}
     if result.model.site_cell_intensity is not None:  # a map per site: thinned alike, S× the size
-        sl = site_cell_draws(result)
+        sl = result.site_cell_intensity()
         site_rate = np.asarray(result.idata.posterior["site_rate"], np.float64)
         site_vars = {
             "site_intensity": (("sample", "site", "cell"),
@@ -277,7 +272,7 @@ def _gate_entry(result) -> dict:
     if result.model.site_cell_intensity is None:
         return entry
     # a map per site: the per-cell checks over every site's cells too, on the draws kept
-    lam = site_cell_draws(result)
+    lam = result.site_cell_intensity()
     c, d, S, n = lam.shape
     step = thin_for_budget(c * d, n, result.spec.draws_budget_mb)
     kept = np.asarray(lam.reshape(c * d, S, n)[::step], dtype=np.float32)

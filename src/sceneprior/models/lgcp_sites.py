@@ -398,7 +398,7 @@ def summary(result) -> dict:
     ws = ex["site_window_scans"]
     axes_units = ["m", "degree"] if stats.grid.frame == "polar" else ["m"]
     ls = np.asarray(post["length_scale"], float)
-    lam = site_cell_intensity(result.posterior_arrays(["site_mu", "field", "deviation"]), stats, result.setup)
+    lam = result.site_cell_intensity()
     inside = stats.window_area > 0
     cells = cell_diagnostics(np.log(lam[..., inside]).reshape(lam.shape[:2] + (-1,)))
     cells["quantity"] = "log intensity per cell of every site (cells with area in the window)"
