@@ -33,6 +33,7 @@ import scipy.sparse as sp
 import scipy.stats as st
 from scipy import integrate
 
+from conftest import batched_nuts
 from sceneprior.binning import BinnedStats
 from sceneprior.fields.embedding import implied_first_row
 from sceneprior.fields.preconditioning import build_preconditioner, field_and_prior
@@ -60,16 +61,8 @@ WARMUP, DRAWS = 200, 200
 
 @pytest.fixture(scope="module")
 def machinery():
-    """The LGCP model on a 6 × 6 grid and one compiled NUTS run vectorised over data sets.
-
-    numpyro's functional NUTS (``numpyro.infer.hmc.hmc``, the kernel MCMC uses) is jitted
-    once and ``jax.vmap``-ed over replications: each data set gets its own chain, step
-    size and mass matrix (block-dense over σ and ℓ as in production), with the model's
-    data and preconditioner arrays as batched arguments. Replicated checks then cost one
-    compiled call instead of one sampler run each."""
-    from numpyro.infer.hmc import hmc
-    from numpyro.infer.util import initialize_model
-
+    """The LGCP model on a 6 × 6 grid and one compiled NUTS run vectorised over data sets
+    (``conftest.batched_nuts``)."""
     kind = get_model("lgcp")
     # units only: a baseline median of PER_CELL detections per cell over K_SCANS scans
     prior = resolve_prior(kind, {"rate_median": PER_CELL * N * N / K_SCANS, "rate_log_sd": 0.5,
@@ -80,24 +73,8 @@ def machinery():
     inp = dict(setup.inputs)
     kernels = inp.pop("kernels")
     model = partial(lgcp.lgcp_model, kernels=kernels)
-    info = initialize_model(jax.random.PRNGKey(0), model, model_kwargs=inp, dynamic_args=True)
-    init_kernel, sample_kernel = hmc(potential_fn_gen=info.potential_fn, algo="NUTS")
-    post_gen = info.postprocess_fn
-    z0 = info.param_info.z
-    keep = ("sigma", "length_scale", "field", "log_z", "log_window_integral")
-
-    def one_chain(key, kw):
-        state = init_kernel(z0, WARMUP, dense_mass=setup.extra["dense_mass"], model_kwargs=kw, rng_key=key)
-
-        def step(st, _):
-            st = sample_kernel(st, model_kwargs=kw)
-            out = post_gen(**kw)(st.z)
-            return st, {k: out[k] for k in keep} | {"num_steps": st.num_steps}
-
-        _, draws = jax.lax.scan(step, state, None, length=WARMUP + DRAWS)
-        return jax.tree.map(lambda x: x[WARMUP:], draws)
-
-    run = jax.jit(jax.vmap(one_chain))
+    run = batched_nuts(model, inp, setup.extra["dense_mass"],
+                       ("sigma", "length_scale", "field", "log_z", "log_window_integral"), WARMUP, DRAWS)
     return dict(kind=kind, prior=prior, setup=setup, inp=inp, kernels=kernels, run=run,
                 spectrum=kernels.spectrum)
 
@@ -128,9 +105,7 @@ def _fit_many(m, counts, scans, seed):
                   precond=pre.arrays())
         batch.append(kw)
         stats_list.append(stats)
-    stacked = jax.tree.map(lambda *xs: jnp.stack([jnp.asarray(x) for x in xs]), *batch)
-    keys = jax.random.split(jax.random.PRNGKey(seed), len(batch))
-    draws = jax.tree.map(np.asarray, m["run"](keys, stacked))
+    draws = m["run"](batch, seed)
     out = []
     for i, (kw, stats) in enumerate(zip(batch, stats_list)):
         post = {k: v[i][None] for k, v in draws.items() if k != "num_steps"}

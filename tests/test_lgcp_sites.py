@@ -34,7 +34,7 @@ import scipy.sparse as sp
 import scipy.stats as st
 from scipy import integrate
 
-from conftest import box_case, lane_gate_recording, write_csv
+from conftest import batched_nuts, box_case, lane_gate_recording, write_csv
 from sceneprior.binning import BinnedStats
 from sceneprior.fields.embedding import implied_first_row
 from sceneprior.fields.preconditioning import field_and_prior
@@ -209,13 +209,8 @@ N_SETS = 12  # simulated data sets (two sites each), fitted in one vectorised ru
 
 @pytest.fixture(scope="module")
 def machinery(tmp_path_factory):
-    """The model on a 5 × 5 grid with two sites and one NUTS run vectorised over data sets:
-    numpyro's functional NUTS (``numpyro.infer.hmc.hmc``) jitted once and jax.vmap-ped, one
-    chain per data set with its own adaptation (block-dense mass matrix as in production),
-    the data and preconditioner arrays batched (tests/test_lgcp.py does the same)."""
-    from numpyro.infer.hmc import hmc
-    from numpyro.infer.util import initialize_model
-
+    """The model on a 5 × 5 grid with two sites and one NUTS run vectorised over data sets
+    (``conftest.batched_nuts``; tests/test_lgcp.py uses the same)."""
     tmp = tmp_path_factory.mktemp("lgcp-sites")
     kind = get_model("lgcp_sites")
     # units only: the group baseline's median is PER_CELL detections per cell per scan
@@ -234,26 +229,11 @@ def machinery(tmp_path_factory):
     inp = dict(setup.inputs)
     kernels = inp.pop("kernels")
     model = partial(lgcp_sites.lgcp_sites_model, kernels=kernels)
-    info = initialize_model(jax.random.PRNGKey(0), model, model_kwargs=inp, dynamic_args=True,
-                            init_strategy=setup.extra["init_strategy"])
-    init_kernel, sample_kernel = hmc(potential_fn_gen=info.potential_fn, algo="NUTS")
-    post_gen = info.postprocess_fn
-    z0 = info.param_info.z
-    keep = ("level", "cv", "sigma", "sigma_dev", "field", "deviation", "log_z", "log_window_integral", "rate")
-
-    def one_chain(key, kw):
-        state = init_kernel(z0, WARMUP, dense_mass=setup.extra["dense_mass"], model_kwargs=kw, rng_key=key)
-
-        def step(s, _):
-            s = sample_kernel(s, model_kwargs=kw)
-            out = post_gen(**kw)(s.z)
-            return s, {k: out[k] for k in keep} | {"num_steps": s.num_steps}
-
-        _, draws = jax.lax.scan(step, state, None, length=WARMUP + DRAWS)
-        return jax.tree.map(lambda x: x[WARMUP:], draws)
-
+    run = batched_nuts(model, inp, setup.extra["dense_mass"],
+                       ("level", "cv", "sigma", "sigma_dev", "field", "deviation", "log_z", "log_window_integral",
+                        "rate"), WARMUP, DRAWS, init_strategy=setup.extra["init_strategy"])
     return dict(kind=kind, prior=prior, setup=setup, inp=inp, spectrum=kernels.spectrum, stats0=stats0,
-                run=jax.jit(jax.vmap(one_chain)), make_setup=make_setup, tmp=tmp)
+                run=run, make_setup=make_setup, tmp=tmp)
 
 
 def _draw_truth(m, rng):
@@ -288,8 +268,7 @@ def _fit_many(m, data, seed):
         kw.pop("kernels")
         batch.append(kw)
         setups.append(s)
-    stacked = jax.tree.map(lambda *xs: jnp.stack([jnp.asarray(x) for x in xs]), *batch)
-    draws = jax.tree.map(np.asarray, m["run"](jax.random.split(jax.random.PRNGKey(seed), len(batch)), stacked))
+    draws = m["run"](batch, seed)
     out = []
     for i, s in enumerate(setups):
         post = {k: v[i][None] for k, v in draws.items() if k != "num_steps"}
