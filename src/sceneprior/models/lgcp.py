@@ -345,22 +345,31 @@ def cell_intensity(posterior: dict, stats, setup) -> np.ndarray:
     return np.exp(cell_log_intensity(posterior, setup))
 
 
-def describe_prior(prior: dict, stats) -> dict:
+#: how the length-scale bounds default (text for describe_prior)
+LENGTH_SCALE_DEFAULTS = {"length_scale_min": "2 cell spacings",
+                         "length_scale_max": "a quarter of the region's extent along the axis"}
+
+
+def length_scale_lines(prior: dict, stats, note: str = "") -> list[str]:
+    """The length-scale prior per axis as text (units of the grid's axes)."""
     _, lo, hi = _bounds(stats, prior)
-    a, b = gamma_prior(prior["rate_median"], prior["rate_log_sd"], stats.window_total)
     unit = ["m", "degree"] if stats.grid.frame == "polar" else ["m"]
+    return [f"ℓ = {a_:g}·({b_:g}/{a_:g})^u {u_}, u ~ Beta(2, 2){note}" for a_, b_, u_ in zip(lo, hi, unit)]
+
+
+def describe_prior(prior: dict, stats) -> dict:
+    a, b = gamma_prior(prior["rate_median"], prior["rate_log_sd"], stats.window_total)
     return {
         "rho0": f"Gamma({a:.4g}, {b:.4g} m²·scan) on the baseline intensity ρ₀ = e^μ [m⁻² scan⁻¹]: median "
                 f"{prior['rate_median']:g}/|W| (|W| = {stats.window_total:.6g} m²), sd of μ = log ρ₀ "
                 f"{prior['rate_log_sd']:g}; without per-scan terms integrated out in the sampler and drawn "
                 "exactly afterwards, with them (not conjugate) sampled as the site rho0",
         "sigma": f"HalfNormal({prior['sigma_scale']:g}) on the field sd (log scale)",
-        "length_scale": [f"ℓ = {a_:g}·({b_:g}/{a_:g})^u {u_}, u ~ Beta(2, 2)" for a_, b_, u_ in zip(lo, hi, unit)],
+        "length_scale": length_scale_lines(prior, stats),
         "field": "zero-mean stationary Gaussian field, circulant embedding on a padded torus, every "
                  "torus mode kept",
         "parameters": dict(prior),
-        "defaults": {**DEFAULT_PRIOR, "length_scale_min": "2 cell spacings",
-                     "length_scale_max": "a quarter of the region's extent along the axis"},
+        "defaults": {**DEFAULT_PRIOR, **LENGTH_SCALE_DEFAULTS},
     }
 
 

@@ -364,8 +364,6 @@ def extra_maps(result) -> dict:
 
 # ----------------------------------------------------------------------------- reports
 def describe_prior(prior: dict, stats) -> dict:
-    _, lo, hi = lgcp._bounds(stats, prior)
-    unit = ["m", "degree"] if stats.grid.frame == "polar" else ["m"]
     return {
         "site_baseline": "ρ_s ~ Gamma(1/τ², 1/(τ²m)) per site: mean m, coefficient of variation τ; integrated "
                          "out in the sampler, drawn exactly afterwards",
@@ -374,13 +372,11 @@ def describe_prior(prior: dict, stats) -> dict:
         "cv": f"HalfNormal({prior['cv_scale']:g}) on τ, the between-site coefficient of variation of ρ_s",
         "sigma": f"HalfNormal({prior['sigma_scale']:g}) on the shared field's sd σ (log scale)",
         "sigma_dev": f"HalfNormal({prior['sigma_dev_scale']:g}) on the site deviations' sd σ_d (log scale)",
-        "length_scale": [f"ℓ = {a:g}·({b:g}/{a:g})^u {u}, u ~ Beta(2, 2); shared by f and every d_s"
-                         for a, b, u in zip(lo, hi, unit)],
+        "length_scale": lgcp.length_scale_lines(prior, stats, "; shared by f and every d_s"),
         "fields": "f and d_s zero-mean stationary Gaussian fields (circulant embedding on a padded torus, every "
                   "torus mode kept); each d_s enters with its window mean removed",
         "parameters": dict(prior),
-        "defaults": {**DEFAULT_PRIOR, "length_scale_min": "2 cell spacings",
-                     "length_scale_max": "a quarter of the region's extent along the axis"},
+        "defaults": {**DEFAULT_PRIOR, **lgcp.LENGTH_SCALE_DEFAULTS},
     }
 
 
