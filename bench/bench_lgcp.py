@@ -7,7 +7,14 @@
       field, with weak (≈ 0.3 detections per cell in total) and strong (≥ 50 per cell)
       data: wall time including compilation, leapfrog steps per draw, minimum bulk ESS,
       maximum R-hat, divergences, peak memory;
-  (c) fit time at 1× and 10× the number of scans on the same grid.
+  (c) fit time at 1× and 10× the number of scans on the same grid;
+  (d) where the time goes: cost of one gradient of the log density (1 chain, and the
+      chains vectorised as ``sceneprior fit`` runs them), the share of the torus spectrum
+      in it, the leapfrog steps per draw and the bookkeeping time per step of NUTS on an
+      iid N(0, I) target of the same dimension — the floor for a perfectly preconditioned
+      field — and the time chains × (warmup + draws) would take at that floor in the
+      production chain layout (``inference.chain_layout``): iterations × floor steps ×
+      (gradient + bookkeeping), per chain when chains run one after another.
 
 Usage:
     python bench/bench_lgcp.py                 # the full issue set-up (hours on 2 cores)
@@ -81,11 +88,11 @@ def _run(kind, setup, chains, warmup, draws, dense_baseline=False, setup_s=0.0):
     smp.chains, smp.warmup, smp.draws, smp.seed, smp.progress = chains, warmup, draws, 1, False
     if dense_baseline:
         fn, inputs = dense_model_inputs(setup)
-        kw = dict(init_strategy=init_to_median(num_samples=15))
+        kw = dict(init_strategy=init_to_median(num_samples=15), n_latent=len(setup.inputs["window_area"]))
     else:
         fn, inputs = kind.fn, setup.inputs
         kw = dict(init_strategy=setup.extra["init_strategy"], dense_mass=setup.extra["dense_mass"],
-                  exclude_sites=setup.extra["exclude_sites"])
+                  exclude_sites=setup.extra["exclude_sites"], n_latent=setup.extra["n_latent"])
     t = time.perf_counter()
     idata = run_nuts(fn, inputs, smp, progress=False, **kw)
     wall = time.perf_counter() - t + setup_s
@@ -144,6 +151,102 @@ def dense_model_inputs(setup):
     return model, {k: inp[k] for k in keys}
 
 
+def _timed(f, *a, reps=20, batches=5):
+    """Median wall time of one call of the compiled f over ``batches`` × ``reps`` calls."""
+    import jax
+
+    jax.block_until_ready(f(*a))
+    out = []
+    for _ in range(batches):
+        t = time.perf_counter()
+        for _ in range(reps):
+            r = f(*a)
+        jax.block_until_ready(r)
+        out.append((time.perf_counter() - t) / reps)
+    return float(np.median(out))
+
+
+def nuts_floor(dim, chains, warmup=150, draws=50, transitions=10):
+    """NUTS's own cost on an iid N(0, I) target of dimension ``dim`` (numpyro, diagonal
+    mass): the leapfrog steps per draw (mean over the draws of one adapted chain) — the
+    floor for a perfectly conditioned posterior of that size, the step size shrinking like
+    dim^(-1/4) (Beskos, Pillai, Roberts, Sanz-Serna & Stuart 2013, Bernoulli 19; from
+    memory) — and the wall time per leapfrog step of one chain and of ``chains`` chains
+    vectorised at that step size, which is the sampler's bookkeeping alone (this target's
+    gradient is one vector operation); timed over ``transitions`` compiled transitions."""
+    import jax
+    import jax.numpy as jnp
+    import numpyro
+    import numpyro.distributions as dist
+    from numpyro.infer import MCMC, NUTS
+    from numpyro.infer.hmc import hmc
+
+    def model():
+        numpyro.sample("x", dist.Normal(0.0, 1.0).expand([dim]).to_event(1))
+
+    mc = MCMC(NUTS(model), num_warmup=warmup, num_samples=draws, progress_bar=False)
+    mc.run(jax.random.PRNGKey(0), extra_fields=("num_steps",))
+    steps = float(np.mean(mc.get_extra_fields()["num_steps"]))
+    step_size = float(mc.last_state.adapt_state.step_size)
+
+    init_kernel, sample_kernel = hmc(potential_fn=lambda x: 0.5 * jnp.sum(x * x), algo="NUTS")
+
+    def per_step(n):
+        keys = jax.random.split(jax.random.PRNGKey(1), n)
+        x0 = jax.random.normal(jax.random.PRNGKey(2), (n, dim))
+        states = jax.vmap(lambda x, k: init_kernel(x, 0, step_size=step_size, adapt_step_size=False,
+                                                   adapt_mass_matrix=False, rng_key=k))(x0, keys)
+        step = jax.jit(jax.vmap(sample_kernel)) if n > 1 else jax.jit(lambda st: jax.tree.map(
+            lambda x: x[None], sample_kernel(jax.tree.map(lambda x: x[0], st))))
+        states = jax.block_until_ready(step(states))
+        t, total = time.perf_counter(), 0
+        for _ in range(transitions):
+            states = step(states)
+            total += int(np.max(np.asarray(states.num_steps)))  # vectorised: the longest chain sets the pace
+        return (time.perf_counter() - t) / total
+
+    return steps, per_step(1), per_step(chains)
+
+
+def gradient_cost(args):
+    """Part (d) for one configuration (one process)."""
+    import jax
+    import jax.numpy as jnp
+    from numpyro.infer.util import initialize_model
+
+    from sceneprior.inference import configure_jax
+
+    configure_jax()
+    size, kernel, regime = args.one
+    per_cell = {"weak": 0.3, "weak10": 3.0, "strong": 60.0}[regime]
+    kind, setup, _ = _setup(int(size), kernel, per_cell, int(args.scans))
+    info = initialize_model(jax.random.PRNGKey(0), kind.fn, model_kwargs=setup.inputs,
+                            init_strategy=setup.extra["init_strategy"])
+    pe, z = info.potential_fn, info.param_info.z
+    one_chain = _timed(jax.jit(jax.value_and_grad(pe)), z)
+    zs = jax.tree.map(lambda x: jnp.stack([x] * args.chains), z)
+    vectorised = _timed(jax.jit(jax.vmap(jax.value_and_grad(pe))), zs)
+    spectrum = setup.inputs["kernels"].spectrum
+    ls = jnp.asarray([150.0, 150.0])
+    spec_grad = jax.jit(jax.grad(lambda ls, s: jnp.sum(jnp.sqrt(spectrum.eigenvalues(ls, s**2) + 1.0)), argnums=(0, 1)))
+    spec = _timed(spec_grad, ls, jnp.asarray(1.0))
+    dim = int(sum(np.size(v) for v in jax.tree.leaves(z)))
+    floor, book1, book_vec = nuts_floor(dim, args.chains)
+    its = args.warmup + args.draws
+    from sceneprior.inference import chain_layout
+
+    layout = chain_layout(dim)
+    per_step = (args.chains * (one_chain + book1) if layout == "sequential" or args.chains == 1
+                else vectorised + book_vec)
+    print(json.dumps({"cells": f"{size}²", "kernel": kernel, "regime": regime, "dimension": dim,
+                      "pad": setup.extra["preconditioner"].use_pad, "spectrum": setup.extra["embedding"]["method"],
+                      "grad_ms_1chain": 1e3 * one_chain, "spectrum_grad_ms": 1e3 * spec,
+                      f"grad_ms_{args.chains}chains": 1e3 * vectorised, "iid_floor_steps": floor,
+                      "nuts_ms_per_step_1chain": 1e3 * book1, f"nuts_ms_per_step_{args.chains}chains": 1e3 * book_vec,
+                      "layout": layout, "floor_time_s": its * floor * per_step, "chains": args.chains, "warmup": args.warmup,
+                      "draws": args.draws}))
+
+
 def one(args):
     from sceneprior.inference import configure_jax
 
@@ -173,10 +276,11 @@ def main():
     ap.add_argument("--scans", type=int, default=100)
     ap.add_argument("--one", nargs=3, metavar=("SIZE", "KERNEL", "REGIME"))
     ap.add_argument("--dense", action="store_true")
-    ap.add_argument("--parts", default="abc")
+    ap.add_argument("--gradient", action="store_true", help="with --one: part (d) for that configuration")
+    ap.add_argument("--parts", default="abcd")
     args = ap.parse_args()
     if args.one:
-        return one(args)
+        return gradient_cost(args) if args.gradient else one(args)
     if args.quick:
         args.chains, args.warmup, args.draws = 1, 200, 200
         sizes = args.sizes or [16, 32]
@@ -224,6 +328,18 @@ def main():
         show([r1, r10])
         if "wall_s" in r1 and "wall_s" in r10:
             print(f"  time ratio 10×/1× = {r10['wall_s'] / r1['wall_s']:.3g}")
+    if "d" in args.parts:
+        print(f"\n(d) cost per gradient and the NUTS floor (time at the floor for {args.chains} chains × "
+              f"({args.warmup} + {args.draws}))")
+        dcols = ("cells", "kernel", "regime", "dimension", "pad", "spectrum", "grad_ms_1chain", "spectrum_grad_ms",
+                 f"grad_ms_{args.chains}chains", "iid_floor_steps", "nuts_ms_per_step_1chain",
+                 f"nuts_ms_per_step_{args.chains}chains", "layout", "floor_time_s")
+        rows = [call("--one", str(n), k, reg, "--gradient") for n in sizes for k in args.kernels
+                for reg in ("weak", "strong")]
+        print(" | ".join(dcols))
+        for r in rows:
+            print(" | ".join(f"{r.get(c):.4g}" if isinstance(r.get(c), float) else str(r.get(c, r.get("error", "")))
+                             for c in dcols))
 
 
 if __name__ == "__main__":

@@ -223,7 +223,8 @@ def fit(spec: FitSpec, progress: bool = True, log=print) -> FitResult:
                          dense_mass=setup.extra.get("dense_mass", False),
                          init_strategy=setup.extra.get("init_strategy"),
                          dims=setup.extra.get("dims"), coords=setup.extra.get("coords"),
-                         exclude_sites=setup.extra.get("exclude_sites", ()), thinning=thinning)
+                         exclude_sites=setup.extra.get("exclude_sites", ()), thinning=thinning,
+                         n_latent=int(setup.extra.get("n_latent", 0)))
         if setup.extra.get("complete"):  # exact conditional draws of integrated-out parameters
             idata = setup.extra["complete"](idata, stats, setup, smp.seed)
     t_mcmc = time.perf_counter()
