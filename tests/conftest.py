@@ -292,12 +292,15 @@ def rain_runs(tmp_path_factory):
 
 
 def batched_nuts(model, inputs: dict, dense_mass, keep, warmup: int, draws: int, init_strategy=None):
-    """One compiled NUTS run vectorised over data sets, for replicated checks (coverage,
-    SBC): numpyro's functional NUTS (``numpyro.infer.hmc.hmc``, the kernel ``MCMC`` uses)
-    jitted once and ``jax.vmap``-ed, so each data set gets its own chain, step size and
-    mass matrix (block-dense as in production), with the model's data and preconditioner
-    arrays as batched arguments. Replications then cost one compiled call instead of one
-    sampler run each.
+    """One compiled NUTS run over many data sets, for replicated checks (coverage, SBC):
+    numpyro's functional NUTS (``numpyro.infer.hmc.hmc``, the kernel ``MCMC`` uses) jitted
+    once and mapped over data sets with ``jax.lax.map``, so each data set gets its own
+    chain, step size and mass matrix (block-dense as in production), with the model's data
+    and preconditioner arrays as mapped arguments. Replications then cost one compiled call
+    instead of one sampler run each. ``lax.map`` rather than ``jax.vmap``: under vmap every
+    chain steps until the longest tree of the batch ends and NUTS's branches become selects
+    over all chains' states (``inference.chain_layout``); 30 data sets of the LGCP checks
+    took 30.1 s mapped against 38.5 s vmapped, compilation included (measured).
 
     ``inputs``: one data set's model arguments (fixes shapes and the starting point).
     Returns ``fit(batch, seed)``: ``batch`` a list of argument dicts of that form; result
@@ -325,7 +328,7 @@ def batched_nuts(model, inputs: dict, dense_mass, keep, warmup: int, draws: int,
         _, kept = jax.lax.scan(step, state, None, length=warmup + draws)
         return jax.tree.map(lambda x: x[warmup:], kept)
 
-    run = jax.jit(jax.vmap(one_chain))
+    run = jax.jit(lambda keys, kws: jax.lax.map(lambda a: one_chain(*a), (keys, kws)))
 
     def fit(batch, seed: int) -> dict:
         stacked = jax.tree.map(lambda *xs: jnp.stack([jnp.asarray(x) for x in xs]), *batch)

@@ -61,7 +61,7 @@ WARMUP, DRAWS = 200, 200
 
 @pytest.fixture(scope="module")
 def machinery():
-    """The LGCP model on a 6 × 6 grid and one compiled NUTS run vectorised over data sets
+    """The LGCP model on a 6 × 6 grid and one compiled NUTS run mapped over data sets
     (``conftest.batched_nuts``)."""
     kind = get_model("lgcp")
     # units only: a baseline median of PER_CELL detections per cell over K_SCANS scans
@@ -90,7 +90,7 @@ def _draw_truth(m, rng):
 
 
 def _fit_many(m, counts, scans, seed):
-    """Fit every data set (rows of ``counts``, with its number of scans) in one vectorised
+    """Fit every data set (rows of ``counts``, with its number of scans) in one compiled
     run; returns per data set dicts of draws (mu, sigma, length_scale, rate) and log λ
     (draws, n_cells), μ drawn exactly from its conjugate Gamma (``complete_posterior``)."""
     from sceneprior.inference import exact_idata

@@ -204,12 +204,12 @@ N_CELLS = 5  # 5 × 5 grid
 SCANS = (60, 6)  # the second site has few scans
 PER_CELL = 1.5  # prior median detections per cell per scan… over the window, at the group baseline
 WARMUP, DRAWS = 150, 150
-N_SETS = 12  # simulated data sets (two sites each), fitted in one vectorised run
+N_SETS = 12  # simulated data sets (two sites each), fitted in one compiled run
 
 
 @pytest.fixture(scope="module")
 def machinery(tmp_path_factory):
-    """The model on a 5 × 5 grid with two sites and one NUTS run vectorised over data sets
+    """The model on a 5 × 5 grid with two sites and one NUTS run mapped over data sets
     (``conftest.batched_nuts``; tests/test_lgcp.py uses the same)."""
     tmp = tmp_path_factory.mktemp("lgcp-sites")
     kind = get_model("lgcp_sites")
@@ -256,7 +256,7 @@ def _draw_truth(m, rng):
 
 
 def _fit_many(m, data, seed):
-    """Fit every data set (per-scan cell counts (K, n_cells)) in one vectorised run; per data
+    """Fit every data set (per-scan cell counts (K, n_cells)) in one compiled run; per data
     set: dict of draws incl. the exactly drawn site_mu, site_rate (complete_posterior) and
     log λ (draws, S, n_cells)."""
     from sceneprior.inference import exact_idata
