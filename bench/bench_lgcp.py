@@ -39,6 +39,9 @@ from functools import partial
 
 import numpy as np
 
+#: detections per cell in total, per data regime of parts (b)–(d)
+REGIMES = {"weak": 0.3, "weak10": 3.0, "strong": 60.0}
+
 
 def _setup(n, kernel, per_cell, K, seed=0):
     import jax
@@ -214,11 +217,11 @@ def gradient_cost(args):
     import jax.numpy as jnp
     from numpyro.infer.util import initialize_model
 
-    from sceneprior.inference import configure_jax
+    from sceneprior.inference import chain_layout, configure_jax
 
     configure_jax()
     size, kernel, regime = args.one
-    per_cell = {"weak": 0.3, "weak10": 3.0, "strong": 60.0}[regime]
+    per_cell = REGIMES[regime]
     kind, setup, _ = _setup(int(size), kernel, per_cell, int(args.scans))
     info = initialize_model(jax.random.PRNGKey(0), kind.fn, model_kwargs=setup.inputs,
                             init_strategy=setup.extra["init_strategy"])
@@ -233,8 +236,6 @@ def gradient_cost(args):
     dim = int(sum(np.size(v) for v in jax.tree.leaves(z)))
     floor, book1, book_vec = nuts_floor(dim, args.chains)
     its = args.warmup + args.draws
-    from sceneprior.inference import chain_layout
-
     layout = chain_layout(dim)
     per_step = (args.chains * (one_chain + book1) if layout == "sequential" or args.chains == 1
                 else vectorised + book_vec)
@@ -253,7 +254,7 @@ def one(args):
     configure_jax()
     size, kernel, regime = args.one
     size = int(size)
-    per_cell = {"weak": 0.3, "weak10": 3.0, "strong": 60.0}[regime]
+    per_cell = REGIMES[regime]
     K = int(args.scans)
     kind, setup, counts = _setup(size, kernel, per_cell, K)
     res = _run(kind, setup, args.chains, args.warmup, args.draws, dense_baseline=args.dense,

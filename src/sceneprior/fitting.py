@@ -50,25 +50,24 @@ class FitResult:
         names = names or list(post.data_vars)
         return {n: np.asarray(post[n]) for n in names}
 
+    def _cached(self, attr: str, compute) -> np.ndarray:
+        """``compute(posterior arrays, stats, setup)`` once, kept read-only under ``attr``."""
+        cached = getattr(self, attr, None)
+        if cached is None:
+            cached = np.asarray(compute(self.posterior_arrays(), self.stats, self.setup))
+            cached.setflags(write=False)
+            setattr(self, attr, cached)
+        return cached
+
     def cell_intensity(self) -> np.ndarray:
         """(chain, draw, n_cells) intensity draws [m⁻² scan⁻¹], computed once and kept (the
         run's outputs, zone rates and diagnostics all read it; read-only)."""
-        cached = getattr(self, "_cell_intensity", None)
-        if cached is None:
-            cached = np.asarray(self.model.cell_intensity(self.posterior_arrays(), self.stats, self.setup))
-            cached.setflags(write=False)
-            self._cell_intensity = cached
-        return cached
+        return self._cached("_cell_intensity", self.model.cell_intensity)
 
     def site_cell_intensity(self) -> np.ndarray:
         """(chain, draw, site, n_cells) intensity per site of a kind with a map per site
         (``ModelKind.site_cell_intensity``), computed once and shared like cell_intensity."""
-        cached = getattr(self, "_site_cell_intensity", None)
-        if cached is None:
-            cached = np.asarray(self.model.site_cell_intensity(self.posterior_arrays(), self.stats, self.setup))
-            cached.setflags(write=False)
-            self._site_cell_intensity = cached
-        return cached
+        return self._cached("_site_cell_intensity", self.model.site_cell_intensity)
 
     def rate_draws(self) -> np.ndarray:
         """(chain, draw) expected detections per scan in the window."""
