@@ -31,6 +31,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import resource
 import subprocess
 import sys
@@ -236,9 +237,12 @@ def gradient_cost(args):
     dim = int(sum(np.size(v) for v in jax.tree.leaves(z)))
     floor, book1, book_vec = nuts_floor(dim, args.chains)
     its = args.warmup + args.draws
-    layout = chain_layout(dim)
-    per_step = (args.chains * (one_chain + book1) if layout == "sequential" or args.chains == 1
-                else vectorised + book_vec)
+    layout = chain_layout(dim, args.chains)
+    if layout == "vectorized" and args.chains > 1:
+        per_step = vectorised + book_vec
+    else:  # parallel: one chain per core at a time (one chain keeps about one core busy)
+        at_once = min(args.chains, os.cpu_count() or 1) if layout == "parallel" else 1
+        per_step = args.chains * (one_chain + book1) / at_once
     print(json.dumps({"cells": f"{size}²", "kernel": kernel, "regime": regime, "dimension": dim,
                       "pad": setup.extra["preconditioner"].use_pad, "spectrum": setup.extra["embedding"]["method"],
                       "grad_ms_1chain": 1e3 * one_chain, "spectrum_grad_ms": 1e3 * spec,

@@ -171,6 +171,9 @@ def _refuse_gates(spec: FitSpec) -> None:
 
 def fit(spec: FitSpec, progress: bool = True, log=print) -> FitResult:
     """Fit the model named in ``spec``; ``log`` receives one-line progress messages."""
+    from .inference import configure_jax
+
+    configure_jax()  # before the set-up's first jax computation (device count, float64)
     t0 = time.perf_counter()
     kind = get_model(spec.model.kind)
     prior = resolve_prior(kind, spec.model.prior, spec.source)
