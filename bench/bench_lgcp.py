@@ -31,12 +31,10 @@ from __future__ import annotations
 
 import argparse
 import json
-import os
 import resource
 import subprocess
 import sys
 import time
-from functools import partial
 
 import numpy as np
 
@@ -45,7 +43,6 @@ REGIMES = {"weak": 0.3, "weak10": 3.0, "strong": 60.0}
 
 
 def _setup(n, kernel, per_cell, K, seed=0):
-    import jax
     import scipy.sparse as sp
 
     from sceneprior.binning import BinnedStats
@@ -218,7 +215,7 @@ def gradient_cost(args):
     import jax.numpy as jnp
     from numpyro.infer.util import initialize_model
 
-    from sceneprior.inference import chain_layout, configure_jax
+    from sceneprior.inference import chain_layout, configure_jax, parallel_devices
 
     configure_jax()
     size, kernel, regime = args.one
@@ -241,7 +238,7 @@ def gradient_cost(args):
     if layout == "vectorized" and args.chains > 1:
         per_step = vectorised + book_vec
     else:  # parallel: one chain per core at a time (one chain keeps about one core busy)
-        at_once = min(args.chains, os.cpu_count() or 1) if layout == "parallel" else 1
+        at_once = parallel_devices(args.chains) if layout == "parallel" else 1
         per_step = args.chains * (one_chain + book1) / at_once
     print(json.dumps({"cells": f"{size}²", "kernel": kernel, "regime": regime, "dimension": dim,
                       "pad": setup.extra["preconditioner"].use_pad, "spectrum": setup.extra["embedding"]["method"],

@@ -1,7 +1,7 @@
 """Running the samplers and reading their diagnostics.
 
 NUTS through numpyro (chains vectorised on the CPU for small models, in parallel on the
-cores — one jax CPU device per chain — for Gaussian-field models; ``chain_layout`` says
+cores — one jax CPU device per core — for Gaussian-field models; ``chain_layout`` says
 why; a progress bar for warmup and sampling), or independent draws from an exact posterior where a model has one. Both end
 as one arviz InferenceData with dimensions (chain, draw, ...); nothing downstream re-runs
 a model.
@@ -20,9 +20,9 @@ import numpy as np
 _CONFIGURED = False
 
 
-#: CPU devices jax is asked for (``configure_jax``), so that up to this many chains of a
-#: Gaussian-field model run at once (``chain_layout``); at least 4, the usual chain count
-CPU_DEVICES = max(4, os.cpu_count() or 1)
+#: CPU devices jax is asked for (``configure_jax``): one per core, so that a
+#: Gaussian-field model's chains share the cores (``chain_layout``, ``device_map``)
+CPU_DEVICES = os.cpu_count() or 1
 
 
 def configure_jax() -> None:
@@ -56,20 +56,28 @@ def configure_jax() -> None:
     _CONFIGURED = True
 
 
-#: latent dimension from which chains run one after another instead of vectorised
+#: latent dimension from which chains stop being vectorised (``chain_layout``)
 SEQUENTIAL_FROM = 1000
+#: latent dimension from which chains run one after another instead of in parallel
+PARALLEL_BELOW = 32768
 
 
 def chain_layout(n_latent: int, chains: int = 1) -> str:
     """numpyro chain method for ``chains`` chains of a model with ``n_latent`` latent values.
 
-    Gaussian-field models (n_latent ≥ SEQUENTIAL_FROM) run their chains in parallel, one
-    jax CPU device per chain, when the machine has more than one core and jax has enough
-    devices (``configure_jax``), else one after another. One chain's gradient keeps about
-    one core busy (the 128² Matérn 3/2 log-density gradient took 4.06 ms pinned to one
-    core and 5.97 ms free on two, ``bench/bench_lgcp.py --one 128 matern32 weak
-    --gradient``), so on 2 cores two chains at a time halve the wall time; with more
-    chains than cores the operating system shares the cores between them.
+    Gaussian-field models (n_latent ≥ SEQUENTIAL_FROM) run their chains in parallel over
+    the cores (one jax CPU device per core, ``configure_jax``; chains split evenly over
+    them, ``device_map``) when there is more than one core and n_latent < PARALLEL_BELOW,
+    else one after another. Measured on 2 cores (Matérn 3/2, ``bench/bench_lgcp.py --one``):
+    64² weak, 4 × (300 + 300), 148–155 s one after another against 62–69 s in parallel,
+    same draws; the demo 101–109 s → 51 s. The limit: at 128² (torus of 65 538 values,
+    periodised spectrum) a parallel run's memory grew by 13–30 MB/s for minutes (to 8.9 GB
+    at 4 × (100 + 100), with numpyro's own "parallel" and with ``device_map`` alike) while
+    the same fit one after another peaked at 1.6 GB; 64² with weak or strong data stayed
+    flat at about 1 GB. Not understood, so large fields keep the sequential layout.
+    Why parallel pays: one chain's gradient keeps about one core busy (the 128² Matérn 3/2
+    log-density gradient took 4.06 ms pinned to one core and 5.97 ms free on two,
+    ``bench/bench_lgcp.py --one 128 matern32 weak --gradient``).
 
     Vectorised chains (one jax.vmap over chains) turn NUTS's tree-building branches into
     selects over every chain's whole state, so the sampler's bookkeeping per leapfrog step
@@ -82,11 +90,36 @@ def chain_layout(n_latent: int, chains: int = 1) -> str:
     where one pass serves every chain."""
     if n_latent < SEQUENTIAL_FROM:
         return "vectorized"
-    import jax
-
-    if chains > 1 and (os.cpu_count() or 1) > 1 and jax.local_device_count() >= chains:
+    if n_latent < PARALLEL_BELOW and chains > 1 and parallel_devices(chains) > 1:
         return "parallel"
     return "sequential"
+
+
+def parallel_devices(chains: int) -> int:
+    """CPU devices the chains are spread over: the largest count ≤ the cores (and jax's
+    devices) that divides the chains evenly (4 chains on 2 cores: 2 devices × 2 chains)."""
+    import jax
+
+    most = min(os.cpu_count() or 1, jax.local_device_count(), chains)
+    return max(d for d in range(1, most + 1) if chains % d == 0)
+
+
+def device_map(n_dev: int):
+    """numpyro ``chain_method``: chains split evenly over ``n_dev`` CPU devices (jax.pmap),
+    one after another on each device (jax.lax.map). Not numpyro's own "parallel", which
+    puts every chain on a device of its own: with 4 chains on 4 devices of a 2-core machine
+    and at 128² the two both grew in memory (``chain_layout``), so device_map's gain is
+    only that jax needs no more devices than cores."""
+    import jax
+
+    def wrap(fn):
+        def run(args):
+            n = jax.tree.leaves(args)[0].shape[0]
+            split = jax.tree.map(lambda x: x.reshape((n_dev, n // n_dev) + x.shape[1:]), args)
+            out = jax.pmap(lambda a: jax.lax.map(fn, a))(split)
+            return jax.tree.map(lambda x: x.reshape((n,) + x.shape[2:]), out)
+        return run
+    return wrap
 
 
 def run_nuts(fn, inputs: dict, sampler, progress: bool = True, dense_mass: bool = False,
@@ -106,6 +139,7 @@ def run_nuts(fn, inputs: dict, sampler, progress: bool = True, dense_mass: bool 
 
     # start chains at prior medians: an arbitrary start far out in log-intensity makes
     # warmup spend its first hundreds of iterations walking in
+    layout = chain_layout(n_latent, sampler.chains)
     kernel = NUTS(fn, dense_mass=dense_mass,
                   init_strategy=init_strategy or init_to_median(num_samples=15))
     mcmc = MCMC(
@@ -113,7 +147,7 @@ def run_nuts(fn, inputs: dict, sampler, progress: bool = True, dense_mass: bool 
         num_warmup=sampler.warmup,
         num_samples=sampler.draws,
         num_chains=sampler.chains,
-        chain_method=chain_layout(n_latent, sampler.chains),
+        chain_method=(device_map(parallel_devices(sampler.chains)) if layout == "parallel" else layout),
         progress_bar=progress and sampler.progress,
         thinning=thinning,
     )
