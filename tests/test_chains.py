@@ -65,3 +65,22 @@ def test_device_map_draws_equal_sequential_and_posterior():
     assert ess > 400
     assert abs(par.mean() - post_mean) < 4 * np.sqrt(post_var / ess)
     assert abs(par.var() / post_var - 1) < 0.25
+
+
+def test_memory_check_counts_only_running_chains():
+    """A sequential field fit holds one chain's sampler state at a time: a torus whose
+    state fits once but not four times is accepted for one-after-another chains."""
+    from types import SimpleNamespace
+
+    from sceneprior.errors import InputError
+    from sceneprior.fitting import _check_memory
+
+    total = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
+    n_latent = int(0.6 * total / (12 * 8.0) / 2)  # one chain's state: half the allowance
+    assert n_latent >= inference.PARALLEL_BELOW  # so the layout is sequential
+    setup = SimpleNamespace(extra={"n_latent": n_latent})
+    stats = SimpleNamespace(grid=SimpleNamespace(n_cells=1))
+    smp = SimpleNamespace(chains=4, draws=10)
+    _check_memory(setup, stats, smp, "spec")  # 1 running chain: fits
+    with pytest.raises(InputError, match="more than this machine can hold"):
+        _check_memory(setup, stats, SimpleNamespace(chains=4, draws=10 * n_latent), "spec")

@@ -77,17 +77,23 @@ class FitResult:
 def _check_memory(setup, stats, smp, source: str, thinning: int = 1) -> None:
     """Refuse fits whose sampler state and kept draws would not fit in memory (say what would).
 
-    Per chain the sampler holds a few copies of the torus field (position, momentum,
-    gradient and the tree's end points, float64); the kept cell field (float32) is held
-    three times at the peak: by the sampler's output, by the posterior and by the cell
-    intensity draws the outputs are computed from."""
+    Each running chain holds a few copies of the torus field (position, momentum, gradient
+    and the tree's end points, float64) — all chains at once when vectorised, one per
+    device in parallel, one when they run one after another (``inference.chain_layout``);
+    the kept cell field (float32) of every chain is held three times at the peak: by the
+    sampler's output, by the posterior and by the cell intensity draws the outputs are
+    computed from."""
     import os
+
+    from .inference import chain_layout, parallel_devices
 
     n_latent = int(setup.extra.get("n_latent", 0))
     if not n_latent:
         return
     kept = -(-smp.draws // thinning)
-    need = smp.chains * (3 * kept * stats.grid.n_cells * 4.0 + 12 * n_latent * 8.0)
+    layout = chain_layout(n_latent, smp.chains)
+    running = {"vectorized": smp.chains, "sequential": 1}.get(layout) or parallel_devices(smp.chains)
+    need = smp.chains * 3 * kept * stats.grid.n_cells * 4.0 + running * 12 * n_latent * 8.0
     try:
         total = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
     except (ValueError, OSError, AttributeError):
