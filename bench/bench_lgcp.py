@@ -9,12 +9,13 @@
       maximum R-hat, divergences, peak memory;
   (c) fit time at 1× and 10× the number of scans on the same grid;
   (d) where the time goes: cost of one gradient of the log density (1 chain, and the
-      chains vectorised as ``sceneprior fit`` runs them), the share of the torus spectrum
+      chains vectorised), the share of the torus spectrum
       in it, the leapfrog steps per draw and the bookkeeping time per step of NUTS on an
       iid N(0, I) target of the same dimension — the floor for a perfectly preconditioned
       field — and the time chains × (warmup + draws) would take at that floor in the
       production chain layout (``inference.chain_layout``): iterations × floor steps ×
-      (gradient + bookkeeping), per chain when chains run one after another.
+      (gradient + bookkeeping) per chain, divided by the chains running at once
+      (at most the usable cores) when they run in parallel.
 
 Usage:
     python bench/bench_lgcp.py                 # the full issue set-up (hours on 2 cores)
@@ -215,7 +216,7 @@ def gradient_cost(args):
     import jax.numpy as jnp
     from numpyro.infer.util import initialize_model
 
-    from sceneprior.inference import chain_layout, configure_jax, parallel_devices
+    from sceneprior.inference import chain_layout, configure_jax
 
     configure_jax()
     size, kernel, regime = args.one
@@ -238,7 +239,9 @@ def gradient_cost(args):
     if layout == "vectorized" and args.chains > 1:
         per_step = vectorised + book_vec
     else:  # parallel: one chain per core at a time (one chain keeps about one core busy)
-        at_once = parallel_devices(args.chains) if layout == "parallel" else 1
+        import os
+
+        at_once = min(args.chains, len(os.sched_getaffinity(0))) if layout == "parallel" else 1
         per_step = args.chains * (one_chain + book1) / at_once
     print(json.dumps({"cells": f"{size}²", "kernel": kernel, "regime": regime, "dimension": dim,
                       "pad": setup.extra["preconditioner"].use_pad, "spectrum": setup.extra["embedding"]["method"],

@@ -497,7 +497,10 @@ def prior_sensitivity(run, rb: dict, factors=(10.0, 0.1), log=None) -> dict:
 def check_run(path, prior_side: bool = True, sensitivity: bool = True, seed: int = 0,
               max_draws: int = 1000, zones: int = 4, write: bool = True, log=None) -> dict:
     """All checks of a run; writes RUN/check.json (atomically) and returns the report."""
+    from .inference import configure_jax
     from .loo import pointwise_loglik, psis_log_weights
+
+    configure_jax()  # before the first jax operation (rebuilding a field model's set-up uses jax)
     from .predictive import load_draws
     from .results import load_run
 

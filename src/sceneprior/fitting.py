@@ -78,21 +78,21 @@ def _check_memory(setup, stats, smp, source: str, thinning: int = 1) -> None:
     """Refuse fits whose sampler state and kept draws would not fit in memory (say what would).
 
     Each running chain holds a few copies of the torus field (position, momentum, gradient
-    and the tree's end points, float64) — all chains at once when vectorised, one per
-    device in parallel, one when they run one after another (``inference.chain_layout``);
+    and the tree's end points, float64) — all chains at once when vectorised or
+    parallel, one when they run one after another (``inference.chain_layout``);
     the kept cell field (float32) of every chain is held three times at the peak: by the
     sampler's output, by the posterior and by the cell intensity draws the outputs are
     computed from."""
     import os
 
-    from .inference import chain_layout, parallel_devices
+    from .inference import chain_layout
 
     n_latent = int(setup.extra.get("n_latent", 0))
     if not n_latent:
         return
     kept = -(-smp.draws // thinning)
     layout = chain_layout(n_latent, smp.chains)
-    running = {"vectorized": smp.chains, "sequential": 1}.get(layout) or parallel_devices(smp.chains)
+    running = 1 if layout == "sequential" else smp.chains
     need = smp.chains * 3 * kept * stats.grid.n_cells * 4.0 + running * 12 * n_latent * 8.0
     try:
         total = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
@@ -114,12 +114,15 @@ def _check_grid(stats, smp, source: str) -> None:
         total = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
     except (ValueError, OSError, AttributeError):
         return
-    need = smp.chains * 12 * n_torus * 8.0 + 40 * n_torus * 8.0
+    from .inference import chain_layout
+
+    running = 1 if chain_layout(n_torus, smp.chains) == "sequential" else smp.chains  # chains at once
+    need = running * 12 * n_torus * 8.0 + 40 * n_torus * 8.0
     if need > 0.6 * total or n_torus > 2**24:
-        side = int(math.sqrt(0.6 * total / (8.0 * 4 * (12 * smp.chains + 40))))
+        side = int(math.sqrt(0.6 * total / (8.0 * 4 * (12 * running + 40))))
         raise InputError(
             f"{source}: a {stats.grid.shape[0]}×{stats.grid.shape[1]} grid needs a torus of about {n_torus} cells "
-            f"({need / 1e9:.1f} GB for {smp.chains} chains), beyond what this machine can sample; use a coarser "
+            f"({need / 1e9:.1f} GB for {running} chain(s) sampled at once), beyond what this machine can sample; use a coarser "
             f"grid (at most about {min(side, 2048)}×{min(side, 2048)} cells here)")
 
 

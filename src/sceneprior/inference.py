@@ -1,9 +1,10 @@
 """Running the samplers and reading their diagnostics.
 
-NUTS through numpyro (chains vectorised on the CPU for small models, in parallel on the
-cores — one jax CPU device per core — for Gaussian-field models; ``chain_layout`` says
-why; a progress bar for warmup and sampling), or independent draws from an exact posterior where a model has one. Both end
-as one arviz InferenceData with dimensions (chain, draw, ...); nothing downstream re-runs
+NUTS through numpyro (chains vectorised on the CPU for small models; for Gaussian-field
+models at once, one jax CPU device per chain, or one after another on large grids —
+``chain_layout`` says why; a progress bar per chain for warmup and sampling), or
+independent draws from an exact posterior where a model has one. Both end as one arviz
+InferenceData with dimensions (chain, draw, ...); nothing downstream re-runs
 a model.
 
 Precision: jax runs in float64 (``jax_enable_x64``). Counts in long recordings reach
@@ -20,9 +21,17 @@ import numpy as np
 _CONFIGURED = False
 
 
-#: CPU devices jax is asked for (``configure_jax``): one per core, so that a
-#: Gaussian-field model's chains share the cores (``chain_layout``, ``device_map``)
-CPU_DEVICES = os.cpu_count() or 1
+def usable_cores() -> int:
+    """Cores this process may run on (CPU affinity, e.g. taskset or a container's cpuset)."""
+    try:
+        return len(os.sched_getaffinity(0))
+    except (AttributeError, OSError):
+        return os.cpu_count() or 1
+
+
+#: CPU devices jax is asked for (``configure_jax``) so that a Gaussian-field model's chains
+#: can run at once, one per device (``chain_layout``); at least 4, the usual chain count
+CPU_DEVICES = max(4, usable_cores())
 
 
 def configure_jax() -> None:
@@ -36,10 +45,14 @@ def configure_jax() -> None:
     import jax
 
     jax.config.update("jax_enable_x64", True)
-    try:
-        jax.config.update("jax_num_cpu_devices", CPU_DEVICES)
-    except (RuntimeError, AttributeError):  # backend already running: chains fall back (chain_layout)
-        pass
+    if "xla_force_host_platform_device_count" not in os.environ.get("XLA_FLAGS", ""):  # the user's own count wins
+        try:
+            jax.config.update("jax_num_cpu_devices", CPU_DEVICES)
+        except (RuntimeError, AttributeError):  # backend already running: chains run one after another
+            import warnings
+
+            warnings.warn("sceneprior: jax started before configure_jax(); field chains will run one after "
+                          "another", RuntimeWarning, stacklevel=2)
     setting = os.environ.get("SCENEPRIOR_JAX_CACHE", str(Path.home() / ".cache" / "sceneprior" / "jax"))
     if not setting:  # empty: no persistent cache (in-process caching still applies)
         _CONFIGURED = True
@@ -59,25 +72,28 @@ def configure_jax() -> None:
 #: latent dimension from which chains stop being vectorised (``chain_layout``)
 SEQUENTIAL_FROM = 1000
 #: latent dimension from which chains run one after another instead of in parallel
-PARALLEL_BELOW = 32768
+PARALLEL_BELOW = 20000
 
 
 def chain_layout(n_latent: int, chains: int = 1) -> str:
     """numpyro chain method for ``chains`` chains of a model with ``n_latent`` latent values.
 
-    Gaussian-field models (n_latent ≥ SEQUENTIAL_FROM) run their chains in parallel over
-    the cores (one jax CPU device per core, ``configure_jax``; chains split evenly over
-    them, ``device_map``) when there is more than one core and n_latent < PARALLEL_BELOW,
-    else one after another. Measured on 2 cores (Matérn 3/2, ``bench/bench_lgcp.py --one``):
-    64² weak, 4 × (300 + 300), 148–155 s one after another against 62–69 s in parallel,
-    same draws; the demo 101–109 s → 51 s. The limit: at 128² (torus of 65 538 values,
-    periodised spectrum) a parallel run's memory grew by 13–30 MB/s for minutes (to 8.9 GB
-    at 4 × (100 + 100), with numpyro's own "parallel" and with ``device_map`` alike) while
-    the same fit one after another peaked at 1.6 GB; 64² with weak or strong data stayed
-    flat at about 1 GB. Not understood, so large fields keep the sequential layout.
-    Why parallel pays: one chain's gradient keeps about one core busy (the 128² Matérn 3/2
-    log-density gradient took 4.06 ms pinned to one core and 5.97 ms free on two,
-    ``bench/bench_lgcp.py --one 128 matern32 weak --gradient``).
+    Gaussian-field models (n_latent ≥ SEQUENTIAL_FROM) run their chains at once, one jax
+    CPU device per chain (numpyro's "parallel"; ``configure_jax`` asks for the devices),
+    when the process may use more than one core, jax has a device per chain and
+    n_latent < PARALLEL_BELOW; else one after another. With more chains than cores the
+    operating system shares the cores. Measured on 2 cores (Matérn 3/2, weak data,
+    ``bench/bench_lgcp.py --one 64 matern32 weak --chains 4 --warmup 300 --draws 300``, the
+    layout switched by hand, alternated in one session): 155.0 and 147.9 s one after
+    another against 61.8 and 64.4 s in parallel, 31 leapfrog steps per draw in both; the
+    demo (``sceneprior demo``) 101–109 s before, 51 s after. Why it pays: one chain's
+    gradient keeps about one core busy (the 128² log-density gradient took 4.06 ms under
+    ``taskset -c 0`` and 5.97 ms free on two cores, ``--one 128 matern32 weak
+    --gradient``). The limit: at 128² (torus of 65 538 values, periodised spectrum) a
+    parallel run's memory grew by 13–30 MB/s for minutes (8.9 GB at 4 × (100 + 100), against
+    1.6 GB one after another), while 64² (16 386 values) with weak or strong data stayed
+    flat at about 1 GB; not understood, so PARALLEL_BELOW sits just above the measured
+    flat case.
 
     Vectorised chains (one jax.vmap over chains) turn NUTS's tree-building branches into
     selects over every chain's whole state, so the sampler's bookkeeping per leapfrog step
@@ -90,36 +106,11 @@ def chain_layout(n_latent: int, chains: int = 1) -> str:
     where one pass serves every chain."""
     if n_latent < SEQUENTIAL_FROM:
         return "vectorized"
-    if n_latent < PARALLEL_BELOW and chains > 1 and parallel_devices(chains) > 1:
+    import jax
+
+    if n_latent < PARALLEL_BELOW and 1 < chains <= jax.local_device_count() and usable_cores() > 1:
         return "parallel"
     return "sequential"
-
-
-def parallel_devices(chains: int) -> int:
-    """CPU devices the chains are spread over: the largest count ≤ the cores (and jax's
-    devices) that divides the chains evenly (4 chains on 2 cores: 2 devices × 2 chains)."""
-    import jax
-
-    most = min(os.cpu_count() or 1, jax.local_device_count(), chains)
-    return max(d for d in range(1, most + 1) if chains % d == 0)
-
-
-def device_map(n_dev: int):
-    """numpyro ``chain_method``: chains split evenly over ``n_dev`` CPU devices (jax.pmap),
-    one after another on each device (jax.lax.map). Not numpyro's own "parallel", which
-    puts every chain on a device of its own: with 4 chains on 4 devices of a 2-core machine
-    and at 128² the two both grew in memory (``chain_layout``), so device_map's gain is
-    only that jax needs no more devices than cores."""
-    import jax
-
-    def wrap(fn):
-        def run(args):
-            n = jax.tree.leaves(args)[0].shape[0]
-            split = jax.tree.map(lambda x: x.reshape((n_dev, n // n_dev) + x.shape[1:]), args)
-            out = jax.pmap(lambda a: jax.lax.map(fn, a))(split)
-            return jax.tree.map(lambda x: x.reshape((n,) + x.shape[2:]), out)
-        return run
-    return wrap
 
 
 def run_nuts(fn, inputs: dict, sampler, progress: bool = True, dense_mass: bool = False,
@@ -147,7 +138,7 @@ def run_nuts(fn, inputs: dict, sampler, progress: bool = True, dense_mass: bool 
         num_warmup=sampler.warmup,
         num_samples=sampler.draws,
         num_chains=sampler.chains,
-        chain_method=(device_map(parallel_devices(sampler.chains)) if layout == "parallel" else layout),
+        chain_method=layout,
         progress_bar=progress and sampler.progress,
         thinning=thinning,
     )
