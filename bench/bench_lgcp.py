@@ -216,7 +216,7 @@ def gradient_cost(args):
     import jax.numpy as jnp
     from numpyro.infer.util import initialize_model
 
-    from sceneprior.inference import chain_layout, configure_jax
+    from sceneprior.inference import chain_layout, configure_jax, usable_cores
 
     configure_jax()
     size, kernel, regime = args.one
@@ -239,9 +239,7 @@ def gradient_cost(args):
     if layout == "vectorized" and args.chains > 1:
         per_step = vectorised + book_vec
     else:  # parallel: one chain per core at a time (one chain keeps about one core busy)
-        import os
-
-        at_once = min(args.chains, len(os.sched_getaffinity(0))) if layout == "parallel" else 1
+        at_once = min(args.chains, usable_cores()) if layout == "parallel" else 1
         per_step = args.chains * (one_chain + book1) / at_once
     print(json.dumps({"cells": f"{size}²", "kernel": kernel, "regime": regime, "dimension": dim,
                       "pad": setup.extra["preconditioner"].use_pad, "spectrum": setup.extra["embedding"]["method"],

@@ -499,10 +499,10 @@ def check_run(path, prior_side: bool = True, sensitivity: bool = True, seed: int
     """All checks of a run; writes RUN/check.json (atomically) and returns the report."""
     from .inference import configure_jax
     from .loo import pointwise_loglik, psis_log_weights
-
-    configure_jax()  # before the first jax operation (rebuilding a field model's set-up uses jax)
     from .predictive import load_draws
     from .results import load_run
+
+    configure_jax()  # before the first jax operation (rebuilding a field model's set-up uses jax)
 
     run = load_run(path)
     rng = np.random.default_rng(seed)

@@ -78,21 +78,19 @@ def _check_memory(setup, stats, smp, source: str, thinning: int = 1) -> None:
     """Refuse fits whose sampler state and kept draws would not fit in memory (say what would).
 
     Each running chain holds a few copies of the torus field (position, momentum, gradient
-    and the tree's end points, float64) — all chains at once when vectorised or
-    parallel, one when they run one after another (``inference.chain_layout``);
+    and the tree's end points, float64) — ``inference.chains_at_once`` of them at a time;
     the kept cell field (float32) of every chain is held three times at the peak: by the
     sampler's output, by the posterior and by the cell intensity draws the outputs are
     computed from."""
     import os
 
-    from .inference import chain_layout
+    from .inference import chains_at_once
 
     n_latent = int(setup.extra.get("n_latent", 0))
     if not n_latent:
         return
     kept = -(-smp.draws // thinning)
-    layout = chain_layout(n_latent, smp.chains)
-    running = 1 if layout == "sequential" else smp.chains
+    running = chains_at_once(n_latent, smp.chains)
     need = smp.chains * 3 * kept * stats.grid.n_cells * 4.0 + running * 12 * n_latent * 8.0
     try:
         total = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
@@ -114,9 +112,9 @@ def _check_grid(stats, smp, source: str) -> None:
         total = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
     except (ValueError, OSError, AttributeError):
         return
-    from .inference import chain_layout
+    from .inference import chains_at_once
 
-    running = 1 if chain_layout(n_torus, smp.chains) == "sequential" else smp.chains  # chains at once
+    running = chains_at_once(n_torus, smp.chains)
     need = running * 12 * n_torus * 8.0 + 40 * n_torus * 8.0
     if need > 0.6 * total or n_torus > 2**24:
         side = int(math.sqrt(0.6 * total / (8.0 * 4 * (12 * running + 40))))

@@ -103,7 +103,8 @@ def chain_layout(n_latent: int, chains: int = 1) -> str:
     per chain either way. Measured on the LGCP (Matérn 3/2, weak data, 4 × (150 + 150)): 64²
     cells 91.0 s sequential against 195.5 s vectorised; 32² (4 × (300 + 300)) 51.2 s
     against 60.2 s. Small models (a handful of parameters) keep the vectorised layout,
-    where one pass serves every chain."""
+    where one pass serves every chain. Asks jax for its device count, which starts jax's
+    backend: call ``configure_jax`` first."""
     if n_latent < SEQUENTIAL_FROM:
         return "vectorized"
     import jax
@@ -111,6 +112,13 @@ def chain_layout(n_latent: int, chains: int = 1) -> str:
     if n_latent < PARALLEL_BELOW and 1 < chains <= jax.local_device_count() and usable_cores() > 1:
         return "parallel"
     return "sequential"
+
+
+def chains_at_once(n_latent: int, chains: int) -> int:
+    """How many chains hold their sampler state at the same time under ``chain_layout``
+    (all when vectorised or parallel, one when they run one after another); the memory
+    checks in ``fitting`` count this many."""
+    return 1 if chain_layout(n_latent, chains) == "sequential" else chains
 
 
 def run_nuts(fn, inputs: dict, sampler, progress: bool = True, dense_mass: bool = False,
@@ -128,9 +136,9 @@ def run_nuts(fn, inputs: dict, sampler, progress: bool = True, dense_mass: bool 
 
     from numpyro.infer import init_to_median
 
+    layout = chain_layout(n_latent, sampler.chains)
     # start chains at prior medians: an arbitrary start far out in log-intensity makes
     # warmup spend its first hundreds of iterations walking in
-    layout = chain_layout(n_latent, sampler.chains)
     kernel = NUTS(fn, dense_mass=dense_mass,
                   init_strategy=init_strategy or init_to_median(num_samples=15))
     mcmc = MCMC(
