@@ -22,10 +22,17 @@ Usage:
     python bench/bench_lgcp.py --quick         # 1 chain × (200 + 200), small grids only
     python bench/bench_lgcp.py --sizes 32 64 --kernels matern32 --chains 4 --warmup 1000 --draws 1000
 
+Every configuration takes ``--variance-kept Q`` (spectral truncation, model option
+variance_kept: the Fourier modes carrying the fraction Q of the prior variance at the
+shortest length scale; 1 = every torus mode); the rows print the latent dimension and
+the kept fraction. Wall times are production layouts (``inference.chain_layout``), and
+the kept per-cell draws are thinned to the default budget as ``sceneprior fit`` does.
+
 Data are simulated from the model's own prior-shaped field (our own numbers) on a
 Cartesian box of side 1000 m. Peak memory is the process's maximum resident set size
-(resource.getrusage), so run one configuration per process for clean memory figures
-(--one SIZE KERNEL REGIME does that).
+(resource.getrusage) at the end of sampling, so run one configuration per process for
+clean memory figures (--one SIZE KERNEL REGIME does that); the per-cell diagnostics
+afterwards are computed in chunks (``inference.cell_diagnostics``).
 """
 
 from __future__ import annotations
@@ -43,7 +50,7 @@ import numpy as np
 REGIMES = {"weak": 0.3, "weak10": 3.0, "strong": 60.0}
 
 
-def _setup(n, kernel, per_cell, K, seed=0):
+def _setup(n, kernel, per_cell, K, seed=0, variance_kept=1.0):
     import scipy.sparse as sp
 
     from sceneprior.binning import BinnedStats
@@ -69,7 +76,7 @@ def _setup(n, kernel, per_cell, K, seed=0):
     f = lgcp.simulate_field(spectrum, 150.0, 1.0, rng)
     counts = rng.poisson(np.exp(np.log(per_cell / (K * area[0])) + f) * K * area)
     t = time.perf_counter()
-    setup = kind.setup(stats_for(counts), prior, ModelSpec("lgcp", {}, {"kernel": kernel}))
+    setup = kind.setup(stats_for(counts), prior, ModelSpec("lgcp", {}, {"kernel": kernel, "variance_kept": variance_kept}))
     setup.extra["bench_setup_s"] = time.perf_counter() - t  # plan, pilot, preconditioner
     return kind, setup, counts
 
@@ -78,10 +85,11 @@ def _run(kind, setup, chains, warmup, draws, dense_baseline=False, setup_s=0.0):
     """One fit through the production sampler (``inference.run_nuts``: same chain layout,
     kept sites and diagnostics as ``sceneprior fit``); wall time = set-up (pilot,
     preconditioner) + compilation + warmup + sampling."""
-    import arviz as az
     from numpyro.infer import init_to_median
 
-    from sceneprior.inference import run_nuts
+    from sceneprior.inference import cell_diagnostics, run_nuts
+    from sceneprior.results import thin_for_budget
+    from sceneprior.spec import DRAWS_BUDGET_MB
 
     class Sampler:  # the fields of spec.SamplerSpec that run_nuts reads
         pass
@@ -90,30 +98,33 @@ def _run(kind, setup, chains, warmup, draws, dense_baseline=False, setup_s=0.0):
     smp.chains, smp.warmup, smp.draws, smp.seed, smp.progress = chains, warmup, draws, 1, False
     if dense_baseline:
         fn, inputs = dense_model_inputs(setup)
-        kw = dict(init_strategy=init_to_median(num_samples=15), n_latent=len(setup.inputs["window_area"]))
+        kw = dict(init_strategy=init_to_median(num_samples=15), n_latent=len(setup.inputs["window_area"]),
+                  n_cells=len(setup.inputs["window_area"]))
     else:
         fn, inputs = kind.fn, setup.inputs
         kw = dict(init_strategy=setup.extra["init_strategy"], dense_mass=setup.extra["dense_mass"],
-                  exclude_sites=setup.extra["exclude_sites"], n_latent=setup.extra["n_latent"])
+                  exclude_sites=setup.extra["exclude_sites"], n_latent=setup.extra["n_latent"],
+                  n_cells=len(setup.inputs["window_area"]))
+    # the production thinning: kept per-cell draws within the default budget (fitting.fit)
+    thinning = thin_for_budget(draws, len(setup.inputs["window_area"]) * chains, DRAWS_BUDGET_MB)
     t = time.perf_counter()
-    idata = run_nuts(fn, inputs, smp, progress=False, **kw)
+    idata = run_nuts(fn, inputs, smp, progress=False, thinning=thinning, **kw)
     wall = time.perf_counter() - t + setup_s
+    peak_sampling = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
     # cell log intensity μ + f, μ = log ρ₀ drawn exactly from its conjugate Gamma given f
-    # (both formulations integrate ρ₀ out in the sampler)
-    f = np.asarray(idata.posterior["field"], float)
+    # (both formulations integrate ρ₀ out in the sampler); diagnostics in chunks of cells
+    f = np.array(idata.posterior["field"], np.float32)
     a, b = setup.extra["gamma_prior"]
     obs, expo = setup.inputs["obs"], setup.inputs["exposure"]
-    log_z = np.logaddexp.reduce(f[..., obs] + np.log(expo), axis=-1)
+    log_z = np.logaddexp.reduce(f[..., obs].astype(float) + np.log(expo), axis=-1)
     g = np.random.default_rng(0).standard_gamma(a + float(np.sum(setup.inputs["counts"])), size=log_z.shape)
-    log_lam = f + (np.log(g) - np.logaddexp(np.log(b), log_z))[..., None]
-    ds = az.convert_to_dataset({"x": log_lam}, dims={"x": ["cell"]})
-    ess = np.asarray(az.ess(ds, method="bulk")["x"])
-    rhat = np.asarray(az.rhat(ds)["x"]) if chains > 1 else np.full(ess.shape, np.nan)
+    f += (np.log(g) - np.logaddexp(np.log(b), log_z)).astype(np.float32)[..., None]
+    cd = cell_diagnostics(f)
     ss = idata.sample_stats
     return {"wall_s": wall, "setup_s": setup_s, "steps_per_draw": float(np.mean(ss["n_steps"])),
-            "min_ess_bulk": float(ess.min()), "max_rhat": float(np.nanmax(rhat)) if chains > 1 else None,
-            "divergences": int(np.sum(ss["diverging"])), "ess_per_s": float(ess.min() / wall),
-            "peak_rss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024,
+            "min_ess_bulk": cd["ess_bulk_min"], "max_rhat": cd["r_hat_max"] if chains > 1 else None,
+            "divergences": int(np.sum(ss["diverging"])), "ess_per_s": cd["ess_bulk_min"] / wall,
+            "peak_rss_mb": peak_sampling, "thinning": thinning,
             "chains": chains, "warmup": warmup, "draws": draws}
 
 
@@ -128,7 +139,7 @@ def dense_model_inputs(setup):
     from sceneprior.fields.kernels import anisotropic_kernel
 
     inp = setup.inputs
-    geom = inp["kernels"].spectrum.geom
+    geom = setup.extra["geom"].geom
     n0, n1 = geom.grid_shape
     h0, h1 = geom.spacing
     i0, i1 = np.meshgrid(np.arange(n0), np.arange(n1), indexing="ij")
@@ -221,21 +232,22 @@ def gradient_cost(args):
     configure_jax()
     size, kernel, regime = args.one
     per_cell = REGIMES[regime]
-    kind, setup, _ = _setup(int(size), kernel, per_cell, int(args.scans))
+    kind, setup, _ = _setup(int(size), kernel, per_cell, int(args.scans), variance_kept=args.variance_kept)
     info = initialize_model(jax.random.PRNGKey(0), kind.fn, model_kwargs=setup.inputs,
                             init_strategy=setup.extra["init_strategy"])
     pe, z = info.potential_fn, info.param_info.z
     one_chain = _timed(jax.jit(jax.value_and_grad(pe)), z)
     zs = jax.tree.map(lambda x: jnp.stack([x] * args.chains), z)
     vectorised = _timed(jax.jit(jax.vmap(jax.value_and_grad(pe))), zs)
-    spectrum = setup.inputs["kernels"].spectrum
+    kern = setup.inputs["kernels"]
+    spectrum = kern.basis if hasattr(kern, "basis") else kern.spectrum  # truncated: the kept modes only
     ls = jnp.asarray([150.0, 150.0])
     spec_grad = jax.jit(jax.grad(lambda ls, s: jnp.sum(jnp.sqrt(spectrum.eigenvalues(ls, s**2) + 1.0)), argnums=(0, 1)))
     spec = _timed(spec_grad, ls, jnp.asarray(1.0))
     dim = int(sum(np.size(v) for v in jax.tree.leaves(z)))
     floor, book1, book_vec = nuts_floor(dim, args.chains)
     its = args.warmup + args.draws
-    layout = chain_layout(dim, args.chains)
+    layout = chain_layout(dim, args.chains, len(setup.inputs["window_area"]))
     if layout == "vectorized" and args.chains > 1:
         per_step = vectorised + book_vec
     else:  # parallel: one chain per core at a time (one chain keeps about one core busy)
@@ -258,13 +270,15 @@ def one(args):
     size = int(size)
     per_cell = REGIMES[regime]
     K = int(args.scans)
-    kind, setup, counts = _setup(size, kernel, per_cell, K)
+    kind, setup, counts = _setup(size, kernel, per_cell, K, variance_kept=args.variance_kept)
     res = _run(kind, setup, args.chains, args.warmup, args.draws, dense_baseline=args.dense,
                setup_s=0.0 if args.dense else setup.extra["bench_setup_s"])
     res.update({"cells": f"{size}²", "kernel": kernel, "regime": regime, "scans": K,
                 "detections": int(counts.sum()), "pad": setup.extra["preconditioner"].use_pad,
                 "torus": setup.extra["embedding"]["torus_shape"],
-                "formulation": "dense" if args.dense else "fourier"})
+                "formulation": "dense" if args.dense else "fourier", "latent": setup.extra["n_latent"],
+                "variance_kept": (setup.extra["modes"].report["variance_fraction_kept_at_shortest_length_scale"]
+                                  if setup.extra.get("modes") is not None else 1.0)})
     print(json.dumps(res))
 
 
@@ -279,6 +293,8 @@ def main():
     ap.add_argument("--scans", type=int, default=100)
     ap.add_argument("--one", nargs=3, metavar=("SIZE", "KERNEL", "REGIME"))
     ap.add_argument("--dense", action="store_true")
+    ap.add_argument("--variance-kept", type=float, default=1.0,
+                    help="spectral truncation: fraction of the field's prior variance kept (1: every torus mode)")
     ap.add_argument("--gradient", action="store_true", help="with --one: part (d) for that configuration")
     ap.add_argument("--parts", default="abcd")
     args = ap.parse_args()
@@ -290,7 +306,7 @@ def main():
     else:
         sizes = args.sizes or [32, 64, 128, 256]
     base = [sys.executable, __file__, "--chains", str(args.chains), "--warmup", str(args.warmup),
-            "--draws", str(args.draws)]
+            "--draws", str(args.draws), "--variance-kept", str(args.variance_kept)]
 
     def call(*extra, scans=None):
         cmd = base + ["--scans", str(scans or args.scans)] + list(extra)
@@ -300,7 +316,8 @@ def main():
             return {"error": (out.stderr.strip().splitlines() or ["failed"])[-1]}
         return json.loads(line[-1])
 
-    cols = ("cells", "kernel", "regime", "formulation", "chains", "warmup", "draws", "pad", "wall_s", "steps_per_draw", "min_ess_bulk",
+    cols = ("cells", "kernel", "regime", "formulation", "latent", "variance_kept", "chains", "warmup", "draws", "pad",
+            "wall_s", "steps_per_draw", "min_ess_bulk",
             "max_rhat", "divergences", "ess_per_s", "peak_rss_mb")
 
     def show(rows):

@@ -33,6 +33,9 @@ def test_layouts_by_size_cores_and_devices(monkeypatch):
     assert inference.chain_layout(big, 1) == "sequential"
     assert inference.chain_layout(big, 5) == "sequential"  # more chains than devices
     assert inference.chain_layout(inference.PARALLEL_BELOW, 4) == "sequential"
+    # few latent values on a large grid (spectral truncation): the grid decides
+    assert inference.chain_layout(big, 4, n_cells=inference.PARALLEL_BELOW) == "sequential"
+    assert inference.chain_layout(big, 4, n_cells=64 * 64) == "parallel"
     monkeypatch.setattr(inference, "usable_cores", lambda: 1)
     assert inference.chain_layout(big, 4) == "sequential"
 
@@ -78,9 +81,9 @@ def test_memory_check_counts_only_running_chains(monkeypatch):
     setup = SimpleNamespace(extra={"n_latent": n_latent})
     stats = SimpleNamespace(grid=SimpleNamespace(n_cells=1))
     smp = SimpleNamespace(chains=4, draws=10)
-    monkeypatch.setattr(inference, "chain_layout", lambda n, c=1: "sequential")
+    monkeypatch.setattr(inference, "chain_layout", lambda n, c=1, n_cells=0: "sequential")
     fitting._check_memory(setup, stats, smp, "spec")
     for layout in ("parallel", "vectorized"):
-        monkeypatch.setattr(inference, "chain_layout", lambda n, c=1, layout=layout: layout)
+        monkeypatch.setattr(inference, "chain_layout", lambda n, c=1, n_cells=0, layout=layout: layout)
         with pytest.raises(InputError, match="more than this machine can hold"):
             fitting._check_memory(setup, stats, smp, "spec")

@@ -292,10 +292,12 @@ def test_bad_lgcp_input_is_one_line_exit_2(tmp_path, capsys):
     assert code == 2 and "coarser grid" in err and "at most about" in err
 
 
-def test_lgcp_run_outputs_on_a_polar_masked_grid(tmp_path):
+@pytest.mark.parametrize("variance_kept", [1.0, 0.99])
+def test_lgcp_run_outputs_on_a_polar_masked_grid(tmp_path, variance_kept):
     """A short LGCP fit through the pipeline on simulated Lowmarsh-like data: both polar
     units, exceedance maps, zone rates, the embedding and parametrisation reports; the rate
-    against the simulator's truth (∫_W λ by quadrature) with |z| < 3.5."""
+    against the simulator's truth (∫_W λ by quadrature) with |z| < 3.5. With every torus
+    mode and with spectral truncation (the kept modes and variance reported)."""
     import json
 
     import xarray as xr
@@ -317,7 +319,7 @@ def test_lgcp_run_outputs_on_a_polar_masked_grid(tmp_path):
         "data": {"detections": "det.csv", "n_scans": K},
         "space": {"frame": "polar", "range": [200.0, 6000.0], "bearing": [-70.0, 70.0], "cells": [10, 7],
                   "masks": [{"name": "land", "bearing": [42.0, 70.0]}]},
-        "model": {"kind": "lgcp", "kernel": "matern52"},
+        "model": {"kind": "lgcp", "kernel": "matern52", "variance_kept": variance_kept},
         "zones": [{"name": "shoal", "range": [2600.0, 3800.0], "bearing": [-40.0, -10.0]}],
         "sampler": {"chains": 2, "warmup": 200, "draws": 200, "seed": 4, "progress": False},
         "output": {"dir": "runs", "thresholds": [2e-7]},
@@ -329,7 +331,13 @@ def test_lgcp_run_outputs_on_a_polar_masked_grid(tmp_path):
     z = (s["rate"]["mean"] - truth) / s["rate"]["sd"]
     assert abs(z) < 3.5, z
     assert s["lgcp"]["embedding"]["method"] in ("embedding", "periodised")
-    assert s["lgcp"]["field_parameters"]["truncation"].startswith("none")
+    if variance_kept == 1.0:
+        assert s["lgcp"]["field_parameters"]["truncation"].startswith("none")
+    else:
+        tr = s["lgcp"]["field_parameters"]["truncation"]
+        assert tr["modes_kept"] < tr["torus_modes"]
+        assert variance_kept <= tr["variance_fraction_kept_at_shortest_length_scale"] <= 1.0
+        assert s["lgcp"]["embedding"]["method"] == "periodised"
     assert "padding_correction" in s["lgcp"]["parametrisation"]
     assert "range" in s["lgcp"]["stationarity"] and "shoal" in s["zones"]
     assert s["diagnostics"]["cells"]["n_cells"] > 0

@@ -90,7 +90,7 @@ def _check_memory(setup, stats, smp, source: str, thinning: int = 1) -> None:
     if not n_latent:
         return
     kept = -(-smp.draws // thinning)
-    running = chains_at_once(n_latent, smp.chains)
+    running = chains_at_once(n_latent, smp.chains, stats.grid.n_cells)
     need = smp.chains * 3 * kept * stats.grid.n_cells * 4.0 + running * 12 * n_latent * 8.0
     try:
         total = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
@@ -233,7 +233,7 @@ def fit(spec: FitSpec, progress: bool = True, log=print) -> FitResult:
                          init_strategy=setup.extra.get("init_strategy"),
                          dims=setup.extra.get("dims"), coords=setup.extra.get("coords"),
                          exclude_sites=setup.extra.get("exclude_sites", ()), thinning=thinning,
-                         n_latent=int(setup.extra.get("n_latent", 0)))
+                         n_latent=int(setup.extra.get("n_latent", 0)), n_cells=stats.grid.n_cells)
         if setup.extra.get("complete"):  # exact conditional draws of integrated-out parameters
             idata = setup.extra["complete"](idata, stats, setup, smp.seed)
     t_mcmc = time.perf_counter()

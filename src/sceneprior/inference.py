@@ -75,8 +75,9 @@ SEQUENTIAL_FROM = 1000
 PARALLEL_BELOW = 20000
 
 
-def chain_layout(n_latent: int, chains: int = 1) -> str:
-    """numpyro chain method for ``chains`` chains of a model with ``n_latent`` latent values.
+def chain_layout(n_latent: int, chains: int = 1, n_cells: int = 0) -> str:
+    """numpyro chain method for ``chains`` chains of a model with ``n_latent`` latent values
+    on a grid of ``n_cells`` cells.
 
     Gaussian-field models (n_latent ≥ SEQUENTIAL_FROM) run their chains at once, one jax
     CPU device per chain (numpyro's "parallel"; ``configure_jax`` asks for the devices),
@@ -92,8 +93,16 @@ def chain_layout(n_latent: int, chains: int = 1) -> str:
     --gradient``). The limit: at 128² (torus of 65 538 values, periodised spectrum) a
     parallel run's memory grew by 13–30 MB/s for minutes (8.9 GB at 4 × (100 + 100), against
     1.6 GB one after another), while 64² (16 386 values) with weak or strong data stayed
-    flat at about 1 GB; not understood, so PARALLEL_BELOW sits just above the measured
-    flat case.
+    flat at about 1 GB. Cause, found later: when several XLA executions run at once on the
+    CPU (pmap over devices, or threads), a log-density gradient over a grid-sized array
+    grows the process's memory call after call (a logsumexp over 65 536 cells inside a
+    jax.lax.fori_loop: 8–20 MB/s with 4 concurrent executions — under pmap, with threads
+    on four devices and with threads on one device — and flat with one execution at a
+    time; glibc's malloc settings and XLA's threading flags did not stop it). So the
+    parallel layout also needs the grid (``n_cells``, which the spectrally truncated field
+    evaluates directly, with few latent values) below PARALLEL_BELOW: a 256² truncated fit
+    (1 765 latent values) grew by about 9.6 MB/s in parallel (3.95 GB at 4 × (1000 + 1000))
+    and stayed at 1.4–2.4 GB one chain after another.
 
     Vectorised chains (one jax.vmap over chains) turn NUTS's tree-building branches into
     selects over every chain's whole state, so the sampler's bookkeeping per leapfrog step
@@ -109,26 +118,27 @@ def chain_layout(n_latent: int, chains: int = 1) -> str:
         return "vectorized"
     import jax
 
-    if n_latent < PARALLEL_BELOW and 1 < chains <= jax.local_device_count() and usable_cores() > 1:
+    if (max(n_latent, n_cells) < PARALLEL_BELOW and 1 < chains <= jax.local_device_count()
+            and usable_cores() > 1):
         return "parallel"
     return "sequential"
 
 
-def chains_at_once(n_latent: int, chains: int) -> int:
+def chains_at_once(n_latent: int, chains: int, n_cells: int = 0) -> int:
     """How many chains hold their sampler state at the same time under ``chain_layout``
     (all when vectorised or parallel, one when they run one after another); the memory
     checks in ``fitting`` count this many."""
-    return 1 if chain_layout(n_latent, chains) == "sequential" else chains
+    return 1 if chain_layout(n_latent, chains, n_cells) == "sequential" else chains
 
 
 def run_nuts(fn, inputs: dict, sampler, progress: bool = True, dense_mass: bool = False,
              dims: dict | None = None, coords: dict | None = None, init_strategy=None,
-             exclude_sites=(), thinning: int = 1, n_latent: int = 0):
+             exclude_sites=(), thinning: int = 1, n_latent: int = 0, n_cells: int = 0):
     """Sample ``fn(**inputs)`` with NUTS; returns InferenceData whose sample_stats hold the
     leapfrog steps and divergences per draw. ``exclude_sites``: latent sites not kept (a
     field's white noise; its deterministic images are kept instead); ``thinning``: keep
     every n-th draw (memory budget of per-cell draws); ``n_latent``: the model's latent
-    dimension, which picks the chain layout (:func:`chain_layout`)."""
+    dimension and ``n_cells`` its grid's cells, which pick the chain layout (:func:`chain_layout`)."""
     configure_jax()
     import arviz as az
     import jax
@@ -136,7 +146,7 @@ def run_nuts(fn, inputs: dict, sampler, progress: bool = True, dense_mass: bool 
 
     from numpyro.infer import init_to_median
 
-    layout = chain_layout(n_latent, sampler.chains)
+    layout = chain_layout(n_latent, sampler.chains, n_cells)
     # start chains at prior medians: an arbitrary start far out in log-intensity makes
     # warmup spend its first hundreds of iterations walking in
     kernel = NUTS(fn, dense_mass=dense_mass,

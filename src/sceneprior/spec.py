@@ -42,6 +42,7 @@ _SCHEMA: dict[str, Any] = {
         "covariates": None,  # loglinear
         "rasters": None,  # loglinear: [[model.rasters]] name, file
         "kernel": None,  # lgcp
+        "variance_kept": None,  # lgcp: spectral truncation
         "components": None,  # mixture
         "diagonal": None,  # mixture
     },
@@ -60,7 +61,10 @@ _MASK_KEYS = {"name": None, "polygon": None, "range": None, "bearing": None}
 
 MODEL_KINDS = ("uniform", "loglinear", "lgcp", "mixture")
 # model-table keys each kind accepts besides kind and prior
-MODEL_OPTIONS = {"uniform": (), "loglinear": ("covariates", "rasters"), "lgcp": ("kernel",), "mixture": ("components", "diagonal")}
+MODEL_OPTIONS = {"uniform": (), "loglinear": ("covariates", "rasters"), "lgcp": ("kernel", "variance_kept"),
+                 "mixture": ("components", "diagonal")}
+#: default memory budget of the kept per-cell draws [MB] (output.draws_budget_mb)
+DRAWS_BUDGET_MB = 1024
 FRAMES = ("cartesian", "polar")
 
 # Per-scan terms (any binned kind), the sites model and the sensor's placement (issue 6).
@@ -405,7 +409,7 @@ def spec_from_dict(
         raise InputError(f"{source}: 'output.thresholds' must be a list of positive intensities in "
                          f"m⁻² scan⁻¹ (exceedance maps P(λ > t)), got {thresholds!r}")
     out_dir = resolve("output.dir", out["dir"]) if "dir" in out else Path("runs").resolve()
-    budget = out.get("draws_budget_mb", 1024)
+    budget = out.get("draws_budget_mb", DRAWS_BUDGET_MB)
     if not isinstance(budget, (int, float)) or isinstance(budget, bool) or budget <= 0:
         raise InputError(f"{source}: 'output.draws_budget_mb' must be a positive number of MB")
 

@@ -41,9 +41,7 @@ Priors (units only — region and cell size — never the counts):
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass
-from functools import partial
 
 import jax
 import jax.numpy as jnp
@@ -55,7 +53,8 @@ from ..errors import InputError
 from ..fields.embedding import TorusGeometry, plan_torus, torus_shape_for
 from ..fields.kernels import KERNEL_NAMES
 from ..fields.spectral import Spectrum, periodised_report
-from ..fields.preconditioning import build_preconditioner, field_and_prior
+from ..fields.preconditioning import build_preconditioner, field_and_prior, safe_sqrt
+from ..fields.truncation import DENSE_MAX, ModeBasis, dense_preconditioner, field_from_coefficients, mode_basis
 
 DEFAULT_PRIOR = {
     "rate_median": 10.0,
@@ -102,18 +101,24 @@ def lgcp_model(counts, exposure, window_area, obs, gamma_a, gamma_b, sigma_scale
     sigma = numpyro.sample("sigma", dist.HalfNormal(sigma_scale))
     u01 = numpyro.sample("ls_unit", dist.Beta(2.0, 2.0).expand([ls_lo.shape[0]]).to_event(1))
     ls = numpyro.deterministic("length_scale", ls_lo * (ls_hi / ls_lo) ** u01)
-    u_soft = numpyro.sample("u_soft", dist.Normal(0.0, 1.0))
-    u_rest = numpyro.sample("u_rest", dist.Normal(0.0, 1.0).expand([kernels.n_torus - 1]).to_event(1))
-    u = kernels.rotate(u_soft, u_rest, precond["householder"])
-    f, log_prior_u, log_z, log_w = kernels.evaluate(u, sigma, ls, precond, exposure, obs, window_area)
+    if isinstance(kernels, TruncatedFieldKernels):
+        u_modes = numpyro.sample("u_modes", dist.Normal(0.0, 1.0).expand([kernels.n_latent]).to_event(1))
+        f, log_prior_u, log_z, log_w = kernels.evaluate(u_modes, sigma, ls, precond, exposure, obs, window_area)
+        white = jnp.sum(u_modes * u_modes)
+    else:
+        u_soft = numpyro.sample("u_soft", dist.Normal(0.0, 1.0))
+        u_rest = numpyro.sample("u_rest", dist.Normal(0.0, 1.0).expand([kernels.n_torus - 1]).to_event(1))
+        u = kernels.rotate(u_soft, u_rest, precond["householder"])
+        f, log_prior_u, log_z, log_w = kernels.evaluate(u, sigma, ls, precond, exposure, obs, window_area)
+        white = u_soft**2 + jnp.sum(u_rest * u_rest)
     # the N(0, 1) site densities are replaced by the exact density of u under the field prior
-    numpyro.factor("field_prior", log_prior_u + 0.5 * (u_soft**2 + jnp.sum(u_rest * u_rest)))
+    numpyro.factor("field_prior", log_prior_u + 0.5 * white)
     numpyro.deterministic("field", f.astype(jnp.float32))
     numpyro.deterministic("log_z", log_z)
     numpyro.deterministic("log_window_integral", log_w)
     total = jnp.sum(counts)
     if scan_terms is None:
-        numpyro.factor("loglik", jnp.dot(counts, f[obs])
+        numpyro.factor("loglik", _count_dot(f, precond, obs, counts)
                        - (gamma_a + total) * jnp.logaddexp(jnp.log(gamma_b), log_z))
         return
     from .scanterms import ppp_factor
@@ -121,8 +126,34 @@ def lgcp_model(counts, exposure, window_area, obs, gamma_a, gamma_b, sigma_scale
     rho0 = numpyro.sample("rho0", dist.Gamma(gamma_a, gamma_b))
     mu = numpyro.deterministic("mu", jnp.log(rho0))
     base = jnp.exp(mu + log_w)  # Λ = Σ_c λ_c |c ∩ W|
-    mult = ppp_factor(total * mu + jnp.dot(counts, f[obs]), base, scan_terms)
+    mult = ppp_factor(total * mu + _count_dot(f, precond, obs, counts), base, scan_terms)
     numpyro.deterministic("rate", base * mult)
+
+
+def grid_data(counts, exposure, obs, n_cells) -> dict:
+    """N_c and log E_c on every grid cell (0 and −∞ where a cell has no exposure), so the
+    likelihood reads the field without an index gather: under numpyro's "parallel" chains
+    (jax.pmap on CPU devices) a gather of a grid-sized field inside the sampler's loop
+    grew the process's memory by about 8 KB per call (measured: 0.8 GB in 100 000 calls at
+    65 536 cells, flat under jit and vmap), which is what made parallel runs of large
+    grids grow by gigabytes."""
+    c = np.zeros(n_cells)
+    c[obs] = counts
+    le = np.full(n_cells, -np.inf)
+    le[obs] = np.log(exposure)
+    return {"counts_grid": jnp.asarray(c), "log_exposure_grid": jnp.asarray(le)}
+
+
+def _count_dot(f, pre, obs, counts):
+    """Σ_c N_c f_c."""
+    return jnp.dot(pre["counts_grid"], f) if "counts_grid" in pre else jnp.dot(counts, f[obs])
+
+
+def _log_exposed_integral(f, pre, obs, exposure):
+    """log Σ_c E_c e^{f_c} over cells with exposure."""
+    if "log_exposure_grid" in pre:
+        return jax.scipy.special.logsumexp(f + pre["log_exposure_grid"])
+    return jax.scipy.special.logsumexp(f[obs] + jnp.log(exposure))
 
 
 @dataclass(frozen=True, eq=False)
@@ -156,7 +187,52 @@ class FieldKernels:
         def evaluate(u, sigma, ls, pre, exposure, obs, window_area):
             lam = spectrum.eigenvalues(jnp.broadcast_to(ls, (2,)), sigma**2)
             f, logp = field_and_prior(u, lam, pre, grid_shape, use_pad)
-            log_z = jax.scipy.special.logsumexp(f[obs] + jnp.log(exposure))
+            log_z = _log_exposed_integral(f, pre, obs, exposure)
+            inside = window_area > 0
+            log_w = jax.scipy.special.logsumexp(jnp.where(inside, f + jnp.log(jnp.where(inside, window_area, 1.0)),
+                                                          -jnp.inf))
+            return f, logp, log_z, log_w
+
+        object.__setattr__(self, "evaluate", jax.jit(evaluate))
+
+
+@dataclass(frozen=True, eq=False)
+class TruncatedFieldKernels:
+    """The field from a fixed set of Fourier modes (``fields.truncation``): coefficients
+    u_modes with per-mode partial centring d_k = 1 + w̄Λ_k (d = 1 for the zero mode, whose
+    level the integrated-out baseline absorbs), f = Σ_k √(Λ_k/d_k) Y_k(u) on the grid, and
+    the exact prior density of u: u_j ~ N(0, d_k(j))."""
+
+    basis: ModeBasis
+
+    @property
+    def n_latent(self):
+        return self.basis.n_latent
+
+    @property
+    def grid_shape(self):
+        return self.basis.geom.grid_shape
+
+    def __post_init__(self):
+        basis = self.basis
+        zero = np.ones(basis.rep_k0.size)
+        zero[(basis.rep_k0 == 0) & (basis.rep_k1 == 0)] = 0.0
+        zero = jnp.asarray(zero)
+        box, grid = basis.box_shape, basis.geom.grid_shape
+
+        def evaluate(u, sigma, ls, pre, exposure, obs, window_area):
+            lam = jnp.maximum(basis.eigenvalues(jnp.broadcast_to(ls, (2,)), sigma**2), 0.0)
+            d = 1.0 + zero * pre["w_scale"] * lam
+            amp = safe_sqrt(lam / d)
+            y = u
+            if "dense" in pre:
+                y = pre["dense"] @ u
+            elif "low_rank_vectors" in pre:
+                y = u + pre["low_rank_vectors"] @ (pre["low_rank_scale"] * (u @ pre["low_rank_vectors"]))
+            f = field_from_coefficients(y, amp, pre["modes"], box, grid)
+            dj = d[pre["modes"]["coef_rep"]]
+            logp = -0.5 * jnp.sum(y * y / dj) - 0.5 * jnp.sum(jnp.log(dj))
+            log_z = _log_exposed_integral(f, pre, obs, exposure)
             inside = window_area > 0
             log_w = jax.scipy.special.logsumexp(jnp.where(inside, f + jnp.log(jnp.where(inside, window_area, 1.0)),
                                                           -jnp.inf))
@@ -231,6 +307,56 @@ def plan(stats, kernel: str, prior: dict):
     return spectrum, report, lo, hi
 
 
+def truncated_plan(stats, kernel, prior, variance_kept):
+    """Spectral truncation (``fields.truncation``), data-independent part: the periodised
+    spectrum on the 2×-padded torus and the modes kept for ``variance_kept`` of the prior
+    variance at the shortest length scales. Returns (spectrum, report, lo, hi, basis)."""
+    if kernel not in KERNEL_NAMES:
+        plan(stats, kernel, prior)  # raises the unknown-kernel error
+    if isinstance(variance_kept, bool) or not isinstance(variance_kept, (int, float)) or not 0.5 <= variance_kept <= 1.0:
+        raise InputError(f"model.variance_kept: the fraction of the field's prior variance the kept Fourier modes "
+                         f"carry, a number in [0.5, 1] (1: every mode), got {variance_kept!r}")
+    spacing, lo, hi = _bounds(stats, prior)
+    lo2 = np.resize(lo, 2) if lo.size == 1 else lo
+    hi2 = np.resize(hi, 2) if hi.size == 1 else hi
+    geom = TorusGeometry(kernel, stats.grid.shape, spacing, torus_shape_for(stats.grid.shape, spacing, hi2, 0.0, 2.0))
+    spectrum = Spectrum(geom, "periodised")
+    report = periodised_report(spectrum, lo2, hi2)
+    basis = mode_basis(geom, lo2, hi2, float(variance_kept))
+    report["truncation"] = dict(basis.report)
+    return spectrum, report, lo, hi, basis
+
+
+def truncated_preconditioner(basis, counts, exposure, lo, hi, sigma_scale):
+    """Data-dependent part: pilot σ, ℓ from the binned pair correlation, w̄ = detections per
+    torus cell for the partial centring, and the fixed map y = L z of
+    ``fields.truncation.dense_preconditioner`` (identity above DENSE_MAX coefficients).
+    counts, exposure: (n_cells,) with 0 where a cell has no exposure. Returns
+    (Preconditioner for the report, model arrays, report of the map)."""
+    from ..fields.preconditioning import Preconditioner, pair_correlation_pilot
+
+    geom = basis.geom
+    counts = np.asarray(counts, float)
+    exposure = np.asarray(exposure, float)
+    pilot = pair_correlation_pilot(counts, exposure, geom.grid_shape, geom.spacing, geom.kernel, lo, hi, sigma_scale)
+    w_bar = float(np.sum(counts) / geom.n_torus)
+    m0, m1 = geom.torus_shape
+    n0, n1 = geom.grid_shape
+    exposed = np.zeros((m0, m1))
+    exposed[:n0, :n1] = (exposure > 0).reshape(n0, n1)
+    pre = Preconditioner((m0, m1), exposed, np.ones(geom.half_shape), w_bar, np.zeros((m0, m1)), 1.0, False, pilot)
+    arrays = {"w_scale": jnp.asarray(w_bar), "modes": basis.arrays()}
+    rep = {"form": "identity", "reason": f"more than {DENSE_MAX} coefficients"}
+    if basis.n_latent <= DENSE_MAX:
+        lam = np.maximum(np.asarray(basis.eigenvalues(np.resize(np.asarray(pilot["length_scale"], float), 2),
+                                                      pilot["sigma"] ** 2)), 0.0)
+        d = 1.0 + w_bar * lam * ((basis.rep_k0 != 0) | (basis.rep_k1 != 0))
+        weights = np.where(exposure > 0, counts + 0.5, 0.0)
+        maps, rep = dense_preconditioner(basis, np.sqrt(lam / d), d, weights)
+        arrays.update({k: jnp.asarray(v) for k, v in maps.items()})
+    return pre, arrays, rep
+
+
 def scipy_fast(n: int) -> int:
     import scipy.fft
 
@@ -241,20 +367,30 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None):
     from .registry import ModelSetup
 
     kernel = model_spec.options.get("kernel", "matern32")
-    spectrum, report, lo, hi = plan(stats, kernel, prior)
-    geom = spectrum.geom
+    variance_kept = model_spec.options.get("variance_kept", 1.0)
     obs = np.flatnonzero(stats.exposure > 0)
     a, b = gamma_prior(prior["rate_median"], prior["rate_log_sd"], stats.window_total)
     counts_all = np.zeros(stats.grid.n_cells)
     counts_all[obs] = stats.counts[obs]
-    pre = build_preconditioner(spectrum, stats.grid.shape, counts_all, np.where(stats.exposure > 0, stats.exposure, 0.0),
-                               kernel, lo, hi, prior["sigma_scale"], use_pad=use_pad)
-    kernels = FieldKernels(spectrum, pre.use_pad)
+    exposure_all = np.where(stats.exposure > 0, stats.exposure, 0.0)
+    if variance_kept != 1.0:
+        spectrum, report, lo, hi, basis = truncated_plan(stats, kernel, prior, variance_kept)
+        pre, precond, report["truncation"]["mode_preconditioner"] = truncated_preconditioner(
+            basis, counts_all, exposure_all, lo, hi, prior["sigma_scale"])
+        kernels = TruncatedFieldKernels(basis)
+        n_latent, dense_mass, exclude = basis.n_latent, [("sigma", "ls_unit")], ["u_modes"]
+    else:
+        spectrum, report, lo, hi = plan(stats, kernel, prior)
+        pre = build_preconditioner(spectrum, stats.grid.shape, counts_all, exposure_all,
+                                   kernel, lo, hi, prior["sigma_scale"], use_pad=use_pad)
+        kernels, precond, basis = FieldKernels(spectrum, pre.use_pad), pre.arrays(), None
+        n_latent, dense_mass, exclude = spectrum.geom.n_torus, [("sigma", "ls_unit", "u_soft")], ["u_rest"]
+    precond = {**precond, **grid_data(stats.counts[obs].astype(float), stats.exposure[obs], obs, stats.grid.n_cells)}
     inputs = dict(
         counts=stats.counts[obs].astype(float), exposure=stats.exposure[obs],
         window_area=stats.window_area, obs=obs, gamma_a=a, gamma_b=b,
         sigma_scale=prior["sigma_scale"], ls_lo=lo, ls_hi=hi,
-        precond=pre.arrays(), kernels=kernels,
+        precond=precond, kernels=kernels,
     )
     u_pilot = np.clip((np.log(np.asarray(pre.pilot["length_scale"])) - np.log(lo)) / (np.log(hi) - np.log(lo)),
                       0.05, 0.95)
@@ -264,9 +400,9 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None):
         "kernel": kernel, "geom": spectrum, "embedding": report, "preconditioner": pre,
         "ls_bounds": {"min": lo.tolist(), "max": hi.tolist()},
         "gamma_prior": (a, b),
-        "n_latent": geom.n_torus,
-        "dense_mass": [("sigma", "ls_unit", "u_soft")],
-        "exclude_sites": ["u_rest"],
+        "n_latent": n_latent, "modes": basis,
+        "dense_mass": dense_mass,
+        "exclude_sites": exclude,
         # ρ₀ (sampled only with per-scan terms) starts at its conditional mean given a flat field
         "init_strategy": init_to_value(values={"sigma": max(pre.pilot["sigma"], 0.05),
                                                "ls_unit": u_pilot[: lo.size],
@@ -315,7 +451,8 @@ def prior_draws(prior: dict, stats, setup, rng: np.random.Generator, n: int) -> 
     """Independent draws from the model's prior (for the prior predictive check): ρ₀ ~
     Gamma(a, b), σ, ℓ from their priors and the field by circulant embedding with every
     torus mode (``simulate_field``); returns (n,) arrays ``rate`` = ρ₀ Σ_c |c ∩ W| e^{f_c}
-    [detections per scan], ``mu``, ``sigma``. (numpyro's Predictive cannot sample this
+    [detections per scan], ``mu``, ``sigma`` — with spectral truncation, the field from the
+    kept modes only, as the model has it. (numpyro's Predictive cannot sample this
     model's field: its white coordinates get their prior through a factor.)"""
     a, b = setup.extra["gamma_prior"]
     inp = setup.inputs
@@ -327,8 +464,15 @@ def prior_draws(prior: dict, stats, setup, rng: np.random.Generator, n: int) -> 
     area = stats.window_area
     inside = area > 0
     log_w = np.empty(n)
+    basis = setup.extra.get("modes")
+    arr = basis.arrays() if basis is not None else None
     for i in range(n):
-        f = simulate_field(spectrum, ls[i], sigma[i], rng)
+        if basis is None:
+            f = simulate_field(spectrum, ls[i], sigma[i], rng)
+        else:  # the truncated field the model samples: the kept modes only
+            lam = np.maximum(np.asarray(basis.eigenvalues(np.resize(ls[i], 2), sigma[i] ** 2)), 0.0)
+            f = np.asarray(field_from_coefficients(jnp.asarray(rng.standard_normal(basis.n_latent)), jnp.sqrt(lam),
+                                                   arr, basis.box_shape, basis.geom.grid_shape))
         log_w[i] = np.logaddexp.reduce(f[inside] + np.log(area[inside]))
     with np.errstate(over="ignore"):
         rate = np.exp(np.log(rho0) + log_w)
@@ -366,8 +510,9 @@ def describe_prior(prior: dict, stats) -> dict:
                 "exactly afterwards, with them (not conjugate) sampled as the site rho0",
         "sigma": f"HalfNormal({prior['sigma_scale']:g}) on the field sd (log scale)",
         "length_scale": length_scale_lines(prior, stats),
-        "field": "zero-mean stationary Gaussian field, circulant embedding on a padded torus, every "
-                 "torus mode kept",
+        "field": "zero-mean stationary Gaussian field, circulant embedding on a padded torus: every "
+                 "torus mode, or with model.variance_kept < 1 the Fourier modes that carry that fraction "
+                 "of the prior variance at the shortest length scales (summary: field_parameters)",
         "parameters": dict(prior),
         "defaults": {**DEFAULT_PRIOR, **LENGTH_SCALE_DEFAULTS},
     }
@@ -396,10 +541,16 @@ def summary(result) -> dict:
         "length_scale_bounds": ex["ls_bounds"],
         "posterior": _hyper_summary(result),
         "embedding": ex["embedding"],
-        "field_parameters": {"torus_cells": int(ex["geom"].geom.n_torus), "truncation": "none (every torus mode kept)"},
+        "field_parameters": ({"torus_cells": int(ex["geom"].geom.n_torus), "truncation": "none (every torus mode kept)"}
+                             if ex.get("modes") is None else
+                             {"torus_cells": int(ex["geom"].geom.n_torus), "truncation": ex["embedding"]["truncation"]}),
         "parametrisation": {
-            "description": "white noise on the torus; per-mode partial centring d_k = 1 + w̄Λ_k, padding "
-                           "correction at pilot hyperparameters, one soft direction (fields/preconditioning.py); "
+            "description": ("white noise on the torus; per-mode partial centring d_k = 1 + w̄Λ_k, padding "
+                            "correction at pilot hyperparameters, one soft direction (fields/preconditioning.py); "
+                            if ex.get("modes") is None else
+                            "coefficients of the kept Fourier modes; per-mode partial centring d_k = 1 + w̄Λ_k "
+                            "(w̄ per torus cell), a fixed linear map from the data's Gaussian approximation at "
+                            "pilot hyperparameters (fields/truncation.py); ")
                            + ("baseline ρ₀ sampled (per-scan terms make it non-conjugate)"
                               if "scan_terms" in result.setup.inputs else
                               "baseline ρ₀ integrated out (conjugate Gamma) and drawn exactly per draw"),

@@ -1,0 +1,234 @@
+"""Spectral truncation of the LGCP field (``fields.truncation``, model option variance_kept).
+
+References:
+- Circulant embedding (Wood & Chan 1994, §2): the covariance of a torus field is the
+  inverse DFT of its eigenvalues; a field that keeps a subset of modes has the inverse
+  DFT of the eigenvalues with the others set to zero. Built here with numpy's FFT
+  (``implied_first_row``), independently of the model's two dense products.
+- Change of variables: with f = J u linear and log p(u) = −½ uᵀ P u + const, Cov f =
+  J P⁻¹ Jᵀ, whatever fixed preconditioning map sits inside J and P.
+- Simulation-based calibration (Talts, Betancourt, Simpson, Vehtari & Gelman 2018): ranks
+  of the truth among thinned posterior draws are uniform; χ² per quantity
+  (scipy.stats.chisquare) at a Bonferroni level of 0.01. The data are simulated from the
+  FULL torus field (every mode), so a truncation that mattered would show.
+"""
+
+from __future__ import annotations
+
+import math
+from functools import partial
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+import pytest
+import scipy.sparse as sp
+import scipy.stats as st
+
+from conftest import batched_nuts
+from sceneprior.binning import BinnedStats
+from sceneprior.fields.embedding import TorusGeometry, grid_covariance, half_multiplicity, implied_first_row
+from sceneprior.fields.spectral import aliased_eigenvalues
+from sceneprior.fields.truncation import field_from_coefficients, mode_basis
+from sceneprior.geometry import Region
+from sceneprior.models import lgcp
+from sceneprior.models.registry import get_model, resolve_prior
+from sceneprior.spec import ModelSpec
+
+CASES = [("matern32", (6, 5), (12, 10)), ("squared_exponential", (5, 7), (11, 13)), ("matern12", (4, 4), (9, 8))]
+
+
+def _design(basis, lam_rep):
+    """G (n_cells, n_latent): the grid field of each unit coefficient at amplitudes √Λ."""
+    arr = basis.arrays()
+    amp = jnp.sqrt(jnp.asarray(lam_rep))
+    return np.asarray(jax.vmap(lambda e: field_from_coefficients(e, amp, arr, basis.box_shape,
+                                                                 basis.geom.grid_shape))(jnp.eye(basis.n_latent))).T
+
+
+def _kept_half_mask(basis):
+    (m0, m1) = basis.geom.torus_shape
+    mask = np.zeros((m0, m1 // 2 + 1))
+    for k0, k1 in zip(basis.rep_k0.astype(int), basis.rep_k1.astype(int)):
+        mask[k0 % m0, k1] = 1.0
+        if k1 == 0 or (m1 % 2 == 0 and k1 == m1 // 2):
+            mask[(-k0) % m0, k1] = 1.0  # its mirror in the same column
+    return mask
+
+
+@pytest.mark.parametrize("kernel,grid,torus", CASES)
+def test_every_mode_gives_the_circulant_covariance(kernel, grid, torus):
+    geom = TorusGeometry(kernel, grid, (1.0, 1.5), torus)
+    basis = mode_basis(geom, np.array([1.0, 1.5]), np.array([3.0, 3.0]), 1.0)
+    ls = np.array([1.7, 2.2])
+    G = _design(basis, basis.eigenvalues(ls, 1.3))
+    ref = grid_covariance(implied_first_row(np.asarray(aliased_eigenvalues(geom, ls, 1.3)), torus), grid)
+    np.testing.assert_allclose(G @ G.T, ref, atol=1e-12)
+    assert basis.report["modes_kept"] == geom.n_torus
+
+
+@pytest.mark.parametrize("kernel,grid,torus", CASES)
+def test_truncated_field_has_the_kept_modes_covariance(kernel, grid, torus):
+    geom = TorusGeometry(kernel, grid, (1.0, 1.5), torus)
+    lo = np.array([1.0, 1.5])
+    basis = mode_basis(geom, lo, np.array([3.0, 3.0]), 0.9)
+    assert basis.report["modes_kept"] < geom.n_torus
+    ls = np.array([1.7, 2.2])
+    lam = np.asarray(aliased_eigenvalues(geom, ls, 1.3))
+    mask = _kept_half_mask(basis)
+    G = _design(basis, basis.eigenvalues(ls, 1.3))
+    ref = grid_covariance(implied_first_row(lam * mask, torus), grid)
+    np.testing.assert_allclose(G @ G.T, ref, atol=1e-12)
+    # the reported kept fraction at the shortest length scales is the kept share of the sum
+    lam_lo = np.asarray(aliased_eigenvalues(geom, lo, 1.0))
+    mult = half_multiplicity(torus)
+    kept = np.sum(mult * lam_lo * mask) / np.sum(mult * lam_lo)
+    assert kept == pytest.approx(basis.report["variance_fraction_kept_at_shortest_length_scale"], abs=1e-12)
+    assert kept >= 0.9
+
+
+@pytest.mark.parametrize("kernel", ["matern12", "matern32", "squared_exponential"])
+def test_kept_fraction_is_least_at_the_shortest_length_scales(kernel):
+    """The module's claim: the spectral density decreases in |diag(ℓ) s|, so the kept set
+    (chosen at ℓ_min) carries at least as much of the variance at every ℓ ≥ ℓ_min per axis."""
+    geom = TorusGeometry(kernel, (16, 12), (1.0, 2.0), (32, 24))
+    lo, hi = np.array([2.0, 4.0]), np.array([6.0, 10.0])
+    basis = mode_basis(geom, lo, hi, 0.95)
+    mask = _kept_half_mask(basis)
+    mult = half_multiplicity(geom.torus_shape)
+    floor = basis.report["variance_fraction_kept_at_shortest_length_scale"]
+    for l0 in np.geomspace(lo[0], hi[0], 5):
+        for l1 in np.geomspace(lo[1], hi[1], 5):
+            lam = np.asarray(aliased_eigenvalues(geom, np.array([l0, l1]), 1.0))
+            assert np.sum(mult * lam * mask) / np.sum(mult * lam) >= floor - 1e-12
+
+
+def _stats(n, side, counts, K):
+    reg = Region("cartesian", (0.0, side), (0.0, side))
+    g = reg.grid((n, n))
+    area = g.cell_area().ravel()
+    return BinnedStats(reg, g, np.asarray(counts, np.int64), K * area, area, area, K, np.arange(K),
+                       np.zeros(K, np.int64), sp.csr_matrix((K, g.n_cells)))
+
+
+def test_model_prior_on_the_field_is_the_truncated_field():
+    """At hyperparameters away from the pilot, with the data-built map y = L z in place, the
+    model's prior density of its coordinates implies exactly the truncated field's
+    covariance on the grid (change of variables; Wood & Chan 1994)."""
+    kind = get_model("lgcp")
+    n = 8
+    prior = resolve_prior(kind, {"rate_median": 40.0 * n * n / 20, "length_scale_min": 150.0,
+                                 "length_scale_max": 400.0}, "test")
+    rng = np.random.default_rng(4)
+    stats0 = _stats(n, 800.0, np.zeros(n * n), 20)
+    spectrum = lgcp.truncated_plan(stats0, "matern52", prior, 0.99)[0]
+    f = lgcp.simulate_field(spectrum, 250.0, 1.0, rng)
+    counts = rng.poisson(40.0 * np.exp(f))  # strong data: the map L is far from the identity
+    setup = kind.setup(_stats(n, 800.0, counts, 20), prior, ModelSpec("lgcp", {}, {"kernel": "matern52",
+                                                                                     "variance_kept": 0.99}))
+    kern, pre = setup.inputs["kernels"], setup.inputs["precond"]
+    assert "dense" in pre or "low_rank_vectors" in pre
+    assert setup.extra["embedding"]["truncation"]["mode_preconditioner"]["rank"] > 0
+    sigma, ls = jnp.asarray(0.8), jnp.asarray([320.0])  # not the pilot
+    inp = setup.inputs
+
+    def parts(u):
+        return kern.evaluate(u, sigma, ls, pre, inp["exposure"], inp["obs"], inp["window_area"])[:2]
+
+    u0 = jnp.zeros(kern.n_latent)
+    J = np.asarray(jax.jacfwd(lambda u: parts(u)[0])(u0))
+    P = -np.asarray(jax.hessian(lambda u: parts(u)[1])(u0))
+    cov = J @ np.linalg.solve(P, J.T)
+    basis = setup.extra["modes"]
+    lam = np.asarray(aliased_eigenvalues(basis.geom, np.array([320.0, 320.0]), 0.64))
+    ref = grid_covariance(implied_first_row(lam * _kept_half_mask(basis), basis.geom.torus_shape), (n, n))
+    np.testing.assert_allclose(cov, ref, atol=1e-9 * ref.max())
+
+
+def test_variance_kept_outside_its_range_is_refused(tmp_path, capsys):
+    from conftest import box_case
+    from sceneprior.cli import main
+
+    spec = box_case(tmp_path, [0, 1], [10.0, 20.0], [10.0, 20.0], n_scans_table=3,
+                    model={"kind": "lgcp", "variance_kept": 0.2})
+    code = main(["fit", str(spec), "--out", str(tmp_path / "runs"), "--quiet"])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert code == 2 and "variance_kept" in err[-1] and "[0.5, 1]" in err[-1]
+
+
+# --------------------------------------------------------------------------- calibration
+N, SIDE, K_SCANS, PER_CELL, KEPT = 8, 800.0, 50, 5.0, 0.95
+WARMUP, DRAWS = 200, 200
+
+
+def _as_dense(pre):
+    """The low-rank form of y = L z as the same map in dense form (fixed shapes across
+    data sets for one compiled run)."""
+    pre = dict(pre)
+    if "low_rank_vectors" in pre:
+        V, s = np.asarray(pre.pop("low_rank_vectors")), np.asarray(pre.pop("low_rank_scale"))
+        pre["dense"] = jnp.asarray(np.eye(V.shape[0]) + (V * s) @ V.T)
+    elif "dense" not in pre:
+        pre["dense"] = jnp.eye(pre["modes"]["coef_rep"].shape[0])
+    return pre
+
+
+@pytest.mark.slow
+def test_simulation_based_calibration_with_truncation():
+    """SBC of the truncated model (95 % of the prior variance kept at ℓ_min) with data from
+    the full torus field: μ, σ, ℓ and three cells' log intensity, 100 replications."""
+    from sceneprior.inference import exact_idata
+
+    kind = get_model("lgcp")
+    prior = resolve_prior(kind, {"rate_median": PER_CELL * N * N / K_SCANS, "rate_log_sd": 0.5,
+                                 "sigma_scale": 0.7, "length_scale_min": 150.0, "length_scale_max": 400.0}, "test")
+    stats0 = _stats(N, SIDE, np.full(N * N, int(PER_CELL)), K_SCANS)
+    opts = {"kernel": "matern32", "variance_kept": KEPT}
+    setup = kind.setup(stats0, prior, ModelSpec("lgcp", {}, opts))
+    basis = setup.extra["modes"]
+    assert basis.report["variance_fraction_kept_at_shortest_length_scale"] < 0.999  # something is dropped
+    inp = dict(setup.inputs)
+    kernels = inp.pop("kernels")
+    inp["precond"] = _as_dense(inp["precond"])
+    run = batched_nuts(partial(lgcp.lgcp_model, kernels=kernels), inp, setup.extra["dense_mass"],
+                       ("sigma", "length_scale", "field", "log_z", "log_window_integral"), WARMUP, DRAWS)
+    full = setup.extra["geom"]  # the periodised spectrum on the same torus, EVERY mode
+    rng = np.random.default_rng(2018)
+    reps, L = 100, 19
+    cells = [0, 27, 63]
+    names = ["mu", "sigma", "length_scale"] + [f"cell {c}" for c in cells]
+    area = stats0.exposure
+    truths, batch, stats_list = [], [], []
+    for _ in range(reps):
+        rho0 = rng.gamma(inp["gamma_a"], 1.0 / inp["gamma_b"])
+        sigma = abs(rng.normal(0.0, inp["sigma_scale"]))
+        ls = inp["ls_lo"] * (inp["ls_hi"] / inp["ls_lo"]) ** rng.beta(2.0, 2.0, size=inp["ls_lo"].shape)
+        log_lam = math.log(rho0) + lgcp.simulate_field(full, ls, sigma, rng)
+        truths.append(np.array([math.log(rho0), sigma, float(ls[0])] + [log_lam[c] for c in cells]))
+        counts = rng.poisson(np.exp(log_lam) * area)
+        stats = _stats(N, SIDE, counts, K_SCANS)
+        _, arrays, _ = lgcp.truncated_preconditioner(basis, counts, stats.exposure, inp["ls_lo"], inp["ls_hi"],
+                                                     inp["sigma_scale"])
+        kw = dict(inp)
+        kw.update(counts=jnp.asarray(counts[inp["obs"]], float),
+                  precond=_as_dense({**arrays, **lgcp.grid_data(counts[inp["obs"]].astype(float),
+                                                                stats.exposure[inp["obs"]], inp["obs"], N * N)}))
+        batch.append(kw)
+        stats_list.append(stats)
+    draws = run(batch, 2018)
+    ranks = np.zeros((reps, len(names)), int)
+    for i, (kw, stats, truth) in enumerate(zip(batch, stats_list, truths)):
+        post = {k: v[i][None] for k, v in draws.items() if k != "num_steps"}
+        s = type(setup)(inputs={**kw, "counts": np.asarray(kw["counts"])}, extra=setup.extra)
+        idata = lgcp.complete_posterior(exact_idata(post), stats, s, 2018 + i)
+        mu = np.asarray(idata.posterior["mu"])[0]
+        field = np.asarray(idata.posterior["field"])[0].astype(float) + mu[:, None]
+        d = np.column_stack([mu, np.asarray(idata.posterior["sigma"])[0],
+                             np.asarray(idata.posterior["length_scale"])[0][:, 0]] + [field[:, c] for c in cells])
+        idx = np.linspace(0, d.shape[0] - 1, L).astype(int)  # about every 10th of 200 draws
+        ranks[i] = (d[idx] < truth[None, :]).sum(axis=0)
+    level = 0.01 / len(names)
+    for j, name in enumerate(names):
+        counts = np.bincount(ranks[:, j] // 4, minlength=5)  # 5 bins of 4 ranks, 20 expected each
+        p = st.chisquare(counts).pvalue
+        assert p > level, (name, counts, p)
