@@ -338,7 +338,7 @@ def test_lgcp_run_outputs_on_a_polar_masked_grid(tmp_path, variance_kept):
         assert tr["modes_kept"] < tr["torus_modes"]
         assert variance_kept <= tr["variance_fraction_kept_at_shortest_length_scale"] <= 1.0
         assert s["lgcp"]["embedding"]["method"] == "periodised"
-    assert "padding_correction" in s["lgcp"]["parametrisation"]
+    assert ("padding_correction" if variance_kept == 1.0 else "mode_map") in s["lgcp"]["parametrisation"]
     assert "range" in s["lgcp"]["stationarity"] and "shoal" in s["zones"]
     assert s["diagnostics"]["cells"]["n_cells"] > 0
     ds = xr.open_dataset(path / "intensity.nc", engine="h5netcdf")

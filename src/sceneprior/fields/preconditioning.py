@@ -216,7 +216,7 @@ def pair_correlation_pilot(counts, exposure, grid_shape, spacing, kernel, ls_lo,
         return np.fft.irfft2(X * np.conj(X), s=shape)
 
     rho = N.sum() / E.sum()
-    sn, se = autocorr(N), autocorr(E)
+    sn, se = np.rint(autocorr(N)), autocorr(E)  # pair counts are integers: drop FFT round-off
     h0, h1 = spacing
     k0 = np.fft.fftfreq(shape[0], 1.0 / shape[0])
     k1 = np.fft.fftfreq(shape[1], 1.0 / shape[1])

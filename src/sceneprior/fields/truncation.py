@@ -10,12 +10,15 @@ sampler one latent dimension. This module keeps a FIXED set of modes, chosen onc
 
 at the shortest length scales the prior allows (ℓ_min per axis) and a target fraction q of
 the prior variance (``variance_kept``). The spectral density S(|D s|), D = diag(ℓ), is a
-decreasing function of |D s| for every kernel here, so the kept set is the lattice points
-in an ellipse {|D_min s| ≤ r}; at any ℓ ≥ ℓ_min (per axis) that ellipse contains
-{|D s| ≤ r}, so the kept fraction of the variance is at least its value at ℓ_min over the
-whole prior (both ends are reported). The set never changes within a run, so the model is
-a fixed, finite-dimensional Gaussian field — its prior is exact for the truncated field,
-and the dropped variance is the price, stated in the run's summary.
+decreasing function of |D s| for every kernel here, so in the continuum the kept set (an
+ellipse {|D_min s| ≤ r}) would carry at least the fraction q at every ℓ ≥ ℓ_min. On the
+finite lattice with the periodised spectrum that holds only approximately (a review found
+0.9003 at ℓ_min against 0.8707 at a longer, anisotropic ℓ for Matérn 1/2 on a small
+torus), so the report gives the kept fraction at ℓ_min and its minimum over a grid of
+length scales spanning the prior's range (5 per axis). The zero mode, whose level the
+integrated-out baseline absorbs, counts in these fractions. The set never changes within
+a run, so the model is a fixed, finite-dimensional Gaussian field — its prior is exact for
+the truncated field, and the dropped variance is the price, stated in the run's summary.
 
 Eigenvalues: the periodised spectrum (``spectral.aliased_eigenvalues``, non-negative by
 construction) evaluated at the kept modes only — no torus-sized FFT of a covariance row.
@@ -189,18 +192,28 @@ def mode_basis(geom: TorusGeometry, lo2, hi2, variance_kept: float) -> ModeBasis
     B = c[None, :] * np.exp(2j * np.pi * i1 * box_k1[None, :] / m1)
     rep_mult = np.where(rself, 1.0, 2.0)  # a pair stands for two full-spectrum modes
     kept_lo = float(np.sum((mult * lam_lo)[keep]) / total_lo)
-    lam_hi = np.maximum(np.asarray(aliased_eigenvalues(geom, np.asarray(hi2, float), 1.0), float), 0.0)
-    kept_hi = float(np.sum((mult * lam_hi)[keep]) / np.sum(mult * lam_hi))
+
+    def kept_at(ls):
+        lam = np.maximum(np.asarray(aliased_eigenvalues(geom, np.asarray(ls, float), 1.0), float), 0.0)
+        return float(np.sum((mult * lam)[keep]) / np.sum(mult * lam))
+
+    lo2, hi2 = np.asarray(lo2, float), np.asarray(hi2, float)
+    axes = [np.geomspace(a, b, 5) for a, b in zip(lo2, hi2)]
+    grid_ls = ([np.array([a, a * lo2[1] / lo2[0]]) for a in axes[0]] if np.allclose(lo2[0], lo2[1])
+               and np.allclose(hi2[0], hi2[1]) else [np.array([a, b]) for a in axes[0] for b in axes[1]])
+    kept_min = min([kept_lo] + [kept_at(ls) for ls in grid_ls])
+    kept_hi = kept_at(hi2)
     report = {
         "variance_kept_target": float(variance_kept),
         "modes_kept": int(np.sum(mult[keep])), "torus_modes": int(N),
         "latent_coefficients": int(j),
         "variance_fraction_kept_at_shortest_length_scale": kept_lo,
         "variance_fraction_kept_at_longest_length_scale": kept_hi,
+        "variance_fraction_kept_min_over_prior_length_scales": kept_min,
+        "share_of_torus_modes_kept": float(np.sum(mult[keep]) / N),
         "box": [int(box_k0.size), int(n_c)],
         "rule": "modes with the largest prior variance at the shortest length scales, fixed for the run; "
-                "the kept fraction is at least its value at the shortest length scales for every length "
-                "scale the prior allows",
+                "the minimum is over 5 length scales per axis spanning the prior's range (zero mode included)",
     }
     return ModeBasis(geom, rk0.astype(float), rk1.astype(float), rep_mult, np.asarray(coef_rep, np.int64),
                      (int(box_k0.size), int(n_c)), np.asarray(re_pos, np.int64), np.asarray(re_src, np.int64),
@@ -208,12 +221,14 @@ def mode_basis(geom: TorusGeometry, lo2, hi2, variance_kept: float) -> ModeBasis
                      np.asarray(im_w, float), A, B, report)
 
 
-#: largest number of coefficients for which the dense pilot preconditioner is built
-#: (K² float64, 128 MB at 4 000). Measured, one chain, 31 leapfrog steps per draw with the map
-#: and 59–127 without: at 1 765 coefficients (256² squared exponential) the low-rank map
-#: costs about 0.8 ms of a 2.9 ms gradient and pays; at 4 797 (128² Matérn 3/2, dense
-#: form) a leapfrog step took about 10 ms against 1.0 ms without it, and the fit was slower.
-DENSE_MAX = 4000
+#: largest number of coefficients for which the pilot map is built. Measured with
+#: bench/bench_lgcp.py --one ... --chains 1 --warmup 200 --draws 200 (one chain): at 1 765
+#: coefficients (256² squared exponential weak, --variance-kept 0.999) the low-rank map
+#: (rank 331) cost about 0.8 ms of a 2.9 ms gradient and cut 127 leapfrog steps per draw to
+#: 31; at 4 797 (128² Matérn 3/2 weak, --variance-kept 0.98, dense form) a step took about
+#: 10 ms with the map against 1.0 ms without (31 against 127 steps: 138 s against 51 s). Sizes
+#: in between are unmeasured; the limit sits at the measured case that paid.
+DENSE_MAX = 2000
 #: precision eigenvalues inside [1/band, band] are left alone by the low-rank preconditioner
 LOW_RANK_BAND = 1.5
 
@@ -233,7 +248,7 @@ def dense_preconditioner(basis: ModeBasis, amp, d, weights, band: float | None =
     transpose of G (jax.linear_transpose), in batches. H = V diag(e) Vᵀ; where only r
     eigenvalues lie outside [1/band, band] (the y coordinates are scaled so that uniform
     data give H = I; 2r < n_latent), L = I + V_r diag(e_r^{-1/2} − 1) V_rᵀ, cheaper than
-    the dense L and within a factor band of it in every direction.
+    the dense L and within a factor √band of it in scale in every direction.
     A constant linear map (log-Jacobian −½ Σ log e_r): the posterior is unchanged, only
     the sampler's geometry. Returns (arrays for the model, report)."""
     import jax
@@ -262,6 +277,9 @@ def dense_preconditioner(basis: ModeBasis, amp, d, weights, band: float | None =
     r = int(far.sum())
     report = {"rank": r, "coefficients": K, "band": band,
               "precision_eigenvalues_min_max": [float(ev.min()), float(ev.max())]}
+    if r == 0:
+        report["form"] = "identity"
+        return {}, report
     if 2 * r < K:  # y = z + V_r (ev_r^{-1/2} − 1) V_rᵀ z: cost 2·K·r per product
         report["form"] = "low rank"
         return {"low_rank_vectors": V[:, far], "low_rank_scale": ev[far] ** -0.5 - 1.0}, report

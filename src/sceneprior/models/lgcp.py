@@ -132,11 +132,14 @@ def lgcp_model(counts, exposure, window_area, obs, gamma_a, gamma_b, sigma_scale
 
 def grid_data(counts, exposure, obs, n_cells) -> dict:
     """N_c and log E_c on every grid cell (0 and −∞ where a cell has no exposure), so the
-    likelihood reads the field without an index gather: under numpyro's "parallel" chains
-    (jax.pmap on CPU devices) a gather of a grid-sized field inside the sampler's loop
-    grew the process's memory by about 8 KB per call (measured: 0.8 GB in 100 000 calls at
-    65 536 cells, flat under jit and vmap), which is what made parallel runs of large
-    grids grow by gigabytes."""
+    likelihood reads the field without an index gather. They duplicate ``counts`` and
+    ``exposure`` (which the model still takes for the baseline and the outputs): a caller
+    that swaps the data must rebuild both. Why: under numpyro's "parallel" chains a gather
+    of a grid-sized field inside the sampler's loop grew the process's memory by about
+    8 KB per call (0.8 GB in 100 000 calls at 65 536 cells, flat under jit and vmap); it
+    is one of several grid-sized operations that grow memory when XLA runs executions at
+    once (``inference.chain_layout``), so this alone does not make parallel runs of large
+    grids safe — the layout keeps them one after another."""
     c = np.zeros(n_cells)
     c[obs] = counts
     le = np.full(n_cells, -np.inf)
@@ -368,6 +371,9 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None):
 
     kernel = model_spec.options.get("kernel", "matern32")
     variance_kept = model_spec.options.get("variance_kept", 1.0)
+    if isinstance(variance_kept, bool) or not isinstance(variance_kept, (int, float)) or not 0.5 <= variance_kept <= 1.0:
+        raise InputError(f"model.variance_kept: the fraction of the field's prior variance the kept Fourier modes "
+                         f"carry, a number in [0.5, 1] (1: every mode), got {variance_kept!r}")
     obs = np.flatnonzero(stats.exposure > 0)
     a, b = gamma_prior(prior["rate_median"], prior["rate_log_sd"], stats.window_total)
     counts_all = np.zeros(stats.grid.n_cells)
@@ -554,7 +560,10 @@ def summary(result) -> dict:
                            + ("baseline ρ₀ sampled (per-scan terms make it non-conjugate)"
                               if "scan_terms" in result.setup.inputs else
                               "baseline ρ₀ integrated out (conjugate Gamma) and drawn exactly per draw"),
-            **pre.report(),
+            **(pre.report() if ex.get("modes") is None else
+               {"w_bar_detections_per_torus_cell": pre.w_scale, "pilot": pre.pilot,
+                "pilot_source": "binned pair correlation (fields/preconditioning.pair_correlation_pilot)",
+                "mode_map": ex["embedding"]["truncation"].get("mode_preconditioner")}),
         },
         "extrapolation": "cells without exposure are predicted through the field from their "
                          "neighbours; exports mask permanently excluded cells",
