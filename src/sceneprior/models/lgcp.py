@@ -159,6 +159,13 @@ def _log_exposed_integral(f, pre, obs, exposure):
     return jax.scipy.special.logsumexp(f[obs] + jnp.log(exposure))
 
 
+def _integrals(f, pre, obs, exposure, window_area):
+    """log Σ_c E_c e^{f_c} (exposed cells) and log Σ_c |c ∩ W| e^{f_c} (the window)."""
+    inside = window_area > 0
+    log_w = jax.scipy.special.logsumexp(jnp.where(inside, f + jnp.log(jnp.where(inside, window_area, 1.0)), -jnp.inf))
+    return _log_exposed_integral(f, pre, obs, exposure), log_w
+
+
 @dataclass(frozen=True, eq=False)
 class FieldKernels:
     """Static torus geometry and the jitted field maths, so that tracing the model compiles
@@ -190,11 +197,7 @@ class FieldKernels:
         def evaluate(u, sigma, ls, pre, exposure, obs, window_area):
             lam = spectrum.eigenvalues(jnp.broadcast_to(ls, (2,)), sigma**2)
             f, logp = field_and_prior(u, lam, pre, grid_shape, use_pad)
-            log_z = _log_exposed_integral(f, pre, obs, exposure)
-            inside = window_area > 0
-            log_w = jax.scipy.special.logsumexp(jnp.where(inside, f + jnp.log(jnp.where(inside, window_area, 1.0)),
-                                                          -jnp.inf))
-            return f, logp, log_z, log_w
+            return (f, logp) + _integrals(f, pre, obs, exposure, window_area)
 
         object.__setattr__(self, "evaluate", jax.jit(evaluate))
 
@@ -235,11 +238,7 @@ class TruncatedFieldKernels:
             f = field_from_coefficients(y, amp, pre["modes"], box, grid)
             dj = d[pre["modes"]["coef_rep"]]
             logp = -0.5 * jnp.sum(y * y / dj) - 0.5 * jnp.sum(jnp.log(dj))
-            log_z = _log_exposed_integral(f, pre, obs, exposure)
-            inside = window_area > 0
-            log_w = jax.scipy.special.logsumexp(jnp.where(inside, f + jnp.log(jnp.where(inside, window_area, 1.0)),
-                                                          -jnp.inf))
-            return f, logp, log_z, log_w
+            return (f, logp) + _integrals(f, pre, obs, exposure, window_area)
 
         object.__setattr__(self, "evaluate", jax.jit(evaluate))
 
