@@ -60,7 +60,7 @@ class ModeBasis:
     """The kept modes of a truncated torus field and the arrays that map coefficients to the grid.
 
     geom: the torus; rep_k0, rep_k1 (n_rep,) signed row / column frequency of each
-    representative mode; rep_mult (n_rep,) full-spectrum modes each stands for (1 or 2);
+    representative mode;
     coef_rep (n_latent,) the representative of each real coefficient; scatter arrays: the
     box position, source coefficient and weight of every real and imaginary entry of the
     (|K0|, |K1|) coefficient box; A (n0, |K0|) and B (n1, |K1|) complex exponentials (B with
@@ -70,7 +70,6 @@ class ModeBasis:
     geom: TorusGeometry
     rep_k0: np.ndarray
     rep_k1: np.ndarray
-    rep_mult: np.ndarray
     coef_rep: np.ndarray
     box_shape: tuple[int, int]
     re_pos: np.ndarray
@@ -86,6 +85,12 @@ class ModeBasis:
     @property
     def n_latent(self) -> int:
         return int(self.coef_rep.size)
+
+    @property
+    def nonzero(self) -> np.ndarray:
+        """(n_rep,) 1.0 for every representative but the zero mode (whose level the
+        integrated-out baseline absorbs: no data scaling there), 0.0 for it."""
+        return ((self.rep_k0 != 0) | (self.rep_k1 != 0)).astype(float)
 
     def eigenvalues(self, length_scales, variance):
         """Λ at the representatives (n_rep,): the periodised spectrum (``spectral`` module),
@@ -190,7 +195,6 @@ def mode_basis(geom: TorusGeometry, lo2, hi2, variance_kept: float) -> ModeBasis
     A = np.exp(2j * np.pi * i0 * box_k0[None, :] / m0) / N
     c = np.where((box_k1 == 0) | (nyq1 & (box_k1 == m1 // 2)), 1.0, 2.0)
     B = c[None, :] * np.exp(2j * np.pi * i1 * box_k1[None, :] / m1)
-    rep_mult = np.where(rself, 1.0, 2.0)  # a pair stands for two full-spectrum modes
     kept_lo = float(np.sum((mult * lam_lo)[keep]) / total_lo)
 
     def kept_at(ls):
@@ -215,7 +219,7 @@ def mode_basis(geom: TorusGeometry, lo2, hi2, variance_kept: float) -> ModeBasis
         "rule": "modes with the largest prior variance at the shortest length scales, fixed for the run; "
                 "the minimum is over 5 length scales per axis spanning the prior's range (zero mode included)",
     }
-    return ModeBasis(geom, rk0.astype(float), rk1.astype(float), rep_mult, np.asarray(coef_rep, np.int64),
+    return ModeBasis(geom, rk0.astype(float), rk1.astype(float), np.asarray(coef_rep, np.int64),
                      (int(box_k0.size), int(n_c)), np.asarray(re_pos, np.int64), np.asarray(re_src, np.int64),
                      np.asarray(re_w, float), np.asarray(im_pos, np.int64), np.asarray(im_src, np.int64),
                      np.asarray(im_w, float), A, B, report)

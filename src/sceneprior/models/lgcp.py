@@ -215,15 +215,9 @@ class TruncatedFieldKernels:
     def n_latent(self):
         return self.basis.n_latent
 
-    @property
-    def grid_shape(self):
-        return self.basis.geom.grid_shape
-
     def __post_init__(self):
         basis = self.basis
-        zero = np.ones(basis.rep_k0.size)
-        zero[(basis.rep_k0 == 0) & (basis.rep_k1 == 0)] = 0.0
-        zero = jnp.asarray(zero)
+        zero = jnp.asarray(basis.nonzero)
         box, grid = basis.box_shape, basis.geom.grid_shape
 
         def evaluate(u, sigma, ls, pre, exposure, obs, window_area):
@@ -309,15 +303,19 @@ def plan(stats, kernel: str, prior: dict):
     return spectrum, report, lo, hi
 
 
+def _check_variance_kept(variance_kept) -> None:
+    if isinstance(variance_kept, bool) or not isinstance(variance_kept, (int, float)) or not 0.5 <= variance_kept <= 1.0:
+        raise InputError(f"model.variance_kept: the fraction of the field's prior variance the kept Fourier modes "
+                         f"carry, a number in [0.5, 1] (1: every mode), got {variance_kept!r}")
+
+
 def truncated_plan(stats, kernel, prior, variance_kept):
     """Spectral truncation (``fields.truncation``), data-independent part: the periodised
     spectrum on the 2×-padded torus and the modes kept for ``variance_kept`` of the prior
     variance at the shortest length scales. Returns (spectrum, report, lo, hi, basis)."""
     if kernel not in KERNEL_NAMES:
         plan(stats, kernel, prior)  # raises the unknown-kernel error
-    if isinstance(variance_kept, bool) or not isinstance(variance_kept, (int, float)) or not 0.5 <= variance_kept <= 1.0:
-        raise InputError(f"model.variance_kept: the fraction of the field's prior variance the kept Fourier modes "
-                         f"carry, a number in [0.5, 1] (1: every mode), got {variance_kept!r}")
+    _check_variance_kept(variance_kept)
     spacing, lo, hi = _bounds(stats, prior)
     lo2 = np.resize(lo, 2) if lo.size == 1 else lo
     hi2 = np.resize(hi, 2) if hi.size == 1 else hi
@@ -352,7 +350,7 @@ def truncated_preconditioner(basis, counts, exposure, lo, hi, sigma_scale):
     if basis.n_latent <= DENSE_MAX:
         lam = np.maximum(np.asarray(basis.eigenvalues(np.resize(np.asarray(pilot["length_scale"], float), 2),
                                                       pilot["sigma"] ** 2)), 0.0)
-        d = 1.0 + w_bar * lam * ((basis.rep_k0 != 0) | (basis.rep_k1 != 0))
+        d = 1.0 + w_bar * lam * basis.nonzero
         weights = np.where(exposure > 0, counts + 0.5, 0.0)
         maps, rep = dense_preconditioner(basis, np.sqrt(lam / d), d, weights)
         arrays.update({k: jnp.asarray(v) for k, v in maps.items()})
@@ -370,9 +368,7 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None):
 
     kernel = model_spec.options.get("kernel", "matern32")
     variance_kept = model_spec.options.get("variance_kept", 1.0)
-    if isinstance(variance_kept, bool) or not isinstance(variance_kept, (int, float)) or not 0.5 <= variance_kept <= 1.0:
-        raise InputError(f"model.variance_kept: the fraction of the field's prior variance the kept Fourier modes "
-                         f"carry, a number in [0.5, 1] (1: every mode), got {variance_kept!r}")
+    _check_variance_kept(variance_kept)
     obs = np.flatnonzero(stats.exposure > 0)
     a, b = gamma_prior(prior["rate_median"], prior["rate_log_sd"], stats.window_total)
     counts_all = np.zeros(stats.grid.n_cells)
