@@ -29,8 +29,10 @@ the kept fraction. Wall times are production layouts (``inference.chain_layout``
 the kept per-cell draws are thinned to the default budget as ``sceneprior fit`` does.
 
 Data are simulated from the model's own prior-shaped field (our own numbers) on a
-Cartesian box of side 1000 m. Peak memory is the process's maximum resident set size
-(resource.getrusage) at the end of sampling, so run one configuration per process for
+Cartesian box of side 1000 m. Peak memory is the largest resident set size of the process
+and its chain processes summed (sampled from /proc every 0.5 s, or ru_maxrss if larger)
+until the end of sampling — an upper bound where chain processes run, since pages they
+share (libraries) count once per process — so run one configuration per process for
 clean memory figures (--one SIZE KERNEL REGIME does that); the per-cell diagnostics
 afterwards are computed in chunks (``inference.cell_diagnostics``).
 """
@@ -81,6 +83,52 @@ def _setup(n, kernel, per_cell, K, seed=0, variance_kept=1.0):
     return kind, setup, counts
 
 
+class TreeMemory:
+    """Peak resident memory of this process and its descendants (the chain processes of
+    ``inference.run_chains_in_processes``), sampled every ``every`` s from /proc (Linux);
+    ru_maxrss alone sees one process."""
+
+    def __init__(self, every=0.5):
+        import os
+        import threading
+
+        self.peak_kb, self._stop = 0, threading.Event()
+        self._root = os.getpid()
+        self._thread = threading.Thread(target=self._loop, args=(every,), daemon=True)
+        self._thread.start()
+
+    def _tree_kb(self):
+        import os
+
+        parent, rss = {}, {}
+        for d in os.listdir("/proc"):
+            if not d.isdigit():
+                continue
+            try:
+                with open(f"/proc/{d}/stat") as fh:
+                    parent[int(d)] = int(fh.read().rsplit(")", 1)[1].split()[1])
+                with open(f"/proc/{d}/status") as fh:
+                    rss[int(d)] = next((int(x.split()[1]) for x in fh if x.startswith("VmRSS:")), 0)
+            except (OSError, ValueError, IndexError):
+                continue
+        tree, grew = {self._root}, True
+        while grew:
+            new = {p for p, pp in parent.items() if pp in tree} - tree
+            tree |= new
+            grew = bool(new)
+        return sum(rss.get(p, 0) for p in tree)
+
+    def _loop(self, every):
+        while not self._stop.wait(every):
+            self.peak_kb = max(self.peak_kb, self._tree_kb())
+
+    def stop_mb(self):
+        self._stop.set()
+        self._thread.join()
+        own = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+        return max(self.peak_kb, own) / 1024
+
+
 def _run(kind, setup, chains, warmup, draws, dense_baseline=False, setup_s=0.0):
     """One fit through the production sampler (``inference.run_nuts``: same chain layout,
     kept sites and diagnostics as ``sceneprior fit``); wall time = set-up (pilot,
@@ -108,9 +156,10 @@ def _run(kind, setup, chains, warmup, draws, dense_baseline=False, setup_s=0.0):
     # the production thinning: kept per-cell draws within the default budget (fitting.fit)
     thinning = thin_for_budget(draws, len(setup.inputs["window_area"]) * chains, DRAWS_BUDGET_MB)
     t = time.perf_counter()
+    memory = TreeMemory()
     idata = run_nuts(fn, inputs, smp, progress=False, thinning=thinning, **kw)
     wall = time.perf_counter() - t + setup_s
-    peak_sampling = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    peak_sampling = memory.stop_mb()
     # cell log intensity μ + f, μ = log ρ₀ drawn exactly from its conjugate Gamma given f
     # (both formulations integrate ρ₀ out in the sampler); diagnostics in chunks of cells
     f = np.array(idata.posterior["field"], np.float32)
@@ -118,14 +167,28 @@ def _run(kind, setup, chains, warmup, draws, dense_baseline=False, setup_s=0.0):
     obs, expo = setup.inputs["obs"], setup.inputs["exposure"]
     log_z = np.logaddexp.reduce(f[..., obs].astype(float) + np.log(expo), axis=-1)
     g = np.random.default_rng(0).standard_gamma(a + float(np.sum(setup.inputs["counts"])), size=log_z.shape)
-    f += (np.log(g) - np.logaddexp(np.log(b), log_z)).astype(np.float32)[..., None]
+    level = np.log(g) - np.logaddexp(np.log(b), log_z)
+    f += level.astype(np.float32)[..., None]
     cd = cell_diagnostics(f)
     ss = idata.sample_stats
+    # where the ESS is least: that cell's log-intensity sd, and the ESS of its two parts
+    # (field value, level) on their own, beside the hyperparameters' ESS
+    import arviz as az
+
+    def ess(x):
+        return float(np.nanmin(np.asarray(az.ess(az.convert_to_dataset(np.asarray(x, float)), method="bulk")["x"])))
+
+    i = cd["ess_bulk_argmin"]
+    post = idata.posterior
+    worst = None if i < 0 else {"cell": i, "log_intensity_sd": float(np.std(f[..., i])), "ess_field_alone": ess(f[..., i] - level),
+             "ess_level": ess(level), "ess_sigma": ess(post["sigma"]) if "sigma" in post else None,
+             "ess_length_scale": ess(post["length_scale"]) if "length_scale" in post else None,
+             "median_cell_ess": cd["ess_bulk_median"]}
     return {"wall_s": wall, "setup_s": setup_s, "steps_per_draw": float(np.mean(ss["n_steps"])),
             "min_ess_bulk": cd["ess_bulk_min"], "max_rhat": cd["r_hat_max"] if chains > 1 else None,
             "divergences": int(np.sum(ss["diverging"])), "ess_per_s": cd["ess_bulk_min"] / wall,
             "peak_rss_mb": peak_sampling, "thinning": thinning,
-            "chains": chains, "warmup": warmup, "draws": draws}
+            "chains": chains, "warmup": warmup, "draws": draws, "least_ess": worst}
 
 
 def dense_model_inputs(setup):

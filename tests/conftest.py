@@ -336,3 +336,37 @@ def batched_nuts(model, inputs: dict, dense_mass, keep, warmup: int, draws: int,
         return jax.tree.map(np.asarray, run(keys, stacked))
 
     return fit
+
+
+def check_sbc(draws, truths, names, thin_to: int = 19, bins: int = 5, alpha: float = 0.01, shift: float = 1.0):
+    """Simulation-based calibration (Talts et al. 2018): per replication r, the rank of the
+    true value among ``thin_to`` evenly spaced posterior draws of ``draws[r]`` (n_draws,
+    n_quantities) must be uniform on {0, …, thin_to}; tested per quantity with
+    scipy.stats.chisquare over ``bins`` equal groups of ranks at a Bonferroni level
+    alpha / n_quantities. Negative control: the same test on truths moved by ``shift``
+    posterior sd (per replication) must reject for every quantity, or the check has no
+    power at this number of replications (with calibrated normal posteriors, 100
+    replications and the defaults, a 1 sd shift was rejected in 2 000 of 2 000 simulations,
+    ½ sd in 68 % — so the shift is 1 sd)."""
+    import scipy.stats as st
+
+    n_ranks = thin_to + 1
+    assert n_ranks % bins == 0, "equal groups of ranks"
+
+    def ranks(offset):
+        out = np.zeros((len(truths), len(names)), int)
+        for r, (d, t) in enumerate(zip(draws, truths)):
+            d = np.asarray(d, float)
+            idx = np.linspace(0, d.shape[0] - 1, thin_to).astype(int)
+            out[r] = (d[idx] < (np.asarray(t, float) + offset * d.std(axis=0))[None, :]).sum(axis=0)
+        return out
+
+    level = alpha / len(names)
+    calibrated, moved = ranks(0.0), ranks(shift)
+    for j, name in enumerate(names):
+        counts = np.bincount(calibrated[:, j] // (n_ranks // bins), minlength=bins)
+        p = st.chisquare(counts).pvalue
+        assert p > level, (name, counts, p)
+        counts = np.bincount(moved[:, j] // (n_ranks // bins), minlength=bins)
+        p = st.chisquare(counts).pvalue
+        assert p < level, ("negative control not rejected", name, counts, p)

@@ -20,6 +20,19 @@ def _model(y):
     numpyro.sample("y", dist.Normal(mu, 1.0), obs=y)
 
 
+def _model_with_noise(y):
+    mu = numpyro.sample("mu", dist.Normal(0.0, 10.0))
+    numpyro.sample("noise", dist.Normal(0.0, 1.0).expand([2]).to_event(1))
+    numpyro.deterministic("twice", 2.0 * mu)
+    numpyro.sample("y", dist.Normal(mu, 1.0), obs=y)
+
+
+def _model_that_dies(y):
+    import os
+
+    os._exit(3)
+
+
 class _Sampler:
     chains, warmup, draws, seed, progress = 4, 200, 300, 7, False
 
@@ -31,13 +44,15 @@ def test_layouts_by_size_cores_and_devices(monkeypatch):
     assert inference.chain_layout(10, 4) == "vectorized"
     assert inference.chain_layout(big, 4) == "parallel"
     assert inference.chain_layout(big, 1) == "sequential"
-    assert inference.chain_layout(big, 5) == "sequential"  # more chains than devices
-    assert inference.chain_layout(inference.PARALLEL_BELOW, 4) == "sequential"
+    assert inference.chain_layout(big, 5) == "processes"  # more chains than devices
+    assert inference.chain_layout(inference.PARALLEL_BELOW, 4) == "processes"
     # few latent values on a large grid (spectral truncation): the grid decides
-    assert inference.chain_layout(big, 4, n_cells=inference.PARALLEL_BELOW) == "sequential"
+    assert inference.chain_layout(big, 4, n_cells=inference.PARALLEL_BELOW) == "processes"
     assert inference.chain_layout(big, 4, n_cells=64 * 64) == "parallel"
+    assert inference.chains_at_once(big, 4, n_cells=inference.PARALLEL_BELOW) == 2  # one per core
     monkeypatch.setattr(inference, "usable_cores", lambda: 1)
     assert inference.chain_layout(big, 4) == "sequential"
+    assert inference.chain_layout(big, 4, n_cells=inference.PARALLEL_BELOW) == "sequential"
 
 
 @pytest.mark.skipif(jax.local_device_count() < 4, reason="jax has fewer than 4 CPU devices")
@@ -65,6 +80,42 @@ def test_parallel_draws_equal_sequential_and_posterior(monkeypatch):
     assert ess > 400
     assert abs(par.mean() - post_mean) < 4 * np.sqrt(post_var / ess)
     assert abs(par.var() / post_var - 1) < 0.25
+
+
+def test_chains_in_processes_equal_sequential(monkeypatch):
+    """Chains in separate processes (large grids): same keys as numpyro's one-after-another
+    chains, so the same draws; the excluded site is dropped and the sample statistics kept."""
+    monkeypatch.setattr(inference, "chain_layout", lambda n, c=1, n_cells=0: inference.PROCESSES)
+    y = jnp.asarray(np.random.default_rng(5).normal(-0.5, 1.0, 30))
+    smp = _Sampler()
+    smp.chains, smp.warmup, smp.draws = 3, 150, 200
+    idata = inference.run_nuts(_model_with_noise, {"y": y}, smp, progress=False, n_latent=inference.SEQUENTIAL_FROM,
+                               exclude_sites=("noise",), thinning=2)
+    ref = MCMC(NUTS(_model_with_noise, init_strategy=numpyro.infer.init_to_median(num_samples=15)),
+               num_warmup=smp.warmup, num_samples=smp.draws, num_chains=smp.chains, chain_method="sequential",
+               progress_bar=False, thinning=2)
+    ref.run(jax.random.PRNGKey(smp.seed), y=y, extra_fields=("num_steps",))
+    seq = ref.get_samples(group_by_chain=True)
+    assert idata.posterior["mu"].shape == (3, 100)
+    assert "noise" not in idata.posterior and "twice" in idata.posterior
+    np.testing.assert_allclose(np.asarray(idata.posterior["mu"]), np.asarray(seq["mu"]), rtol=0, atol=1e-5)
+    np.testing.assert_allclose(np.asarray(idata.posterior["twice"]), np.asarray(seq["twice"]), rtol=0, atol=1e-5)
+    np.testing.assert_array_equal(np.asarray(idata.sample_stats["n_steps"]),
+                                  np.asarray(ref.get_extra_fields(group_by_chain=True)["num_steps"]))
+    d = inference.diagnostics(idata, ("mu",))
+    assert d["chains"] == 3 and d["draws"] == 100 and d["leapfrog_steps_mean"] > 0
+
+
+def test_chain_process_failure_is_reported(monkeypatch):
+    monkeypatch.setattr(inference, "chain_layout", lambda n, c=1, n_cells=0: inference.PROCESSES)
+    smp = _Sampler()
+    smp.chains, smp.warmup, smp.draws = 2, 5, 5
+    with pytest.raises(RuntimeError, match=r"(?s)chain [12] failed in its process:\n.*TypeError"):
+        inference.run_nuts(_model, {"y": "not an array"}, smp, progress=False, n_latent=inference.SEQUENTIAL_FROM)
+    # a process that dies without a word (killed, out of memory) is reported, not waited for
+    with pytest.raises(RuntimeError, match=r"chain [12]'s process ended with exit code 3"):
+        inference.run_nuts(_model_that_dies, {"y": jnp.zeros(3)}, smp, progress=False,
+                           n_latent=inference.SEQUENTIAL_FROM)
 
 
 def test_memory_check_counts_only_running_chains(monkeypatch):

@@ -457,3 +457,39 @@ def test_export_one_site_and_bad_input(sites_run, tmp_path, capsys):
     write_csv(tmp_path / "scans.csv", ["scan", "site"], [[0, "a"], [1, "a"], [2, "a"]])
     code, err = one_line(["fit", str(bad), "--quiet"])
     assert code == 2 and "at least two sites" in err[-1] and 'kind = "lgcp"' in err[-1]
+
+
+def test_setup_inputs_pickle_for_chain_processes(tmp_path):
+    """Large grids run their chains in spawned processes (``inference.run_chains_in_processes``),
+    which receive the model's inputs pickled: the field kernels rebuild their jitted maths and
+    evaluate as the originals do (same log density at a random point)."""
+    import pickle
+
+    import jax
+    from numpyro.infer.util import log_density
+
+    rng = np.random.default_rng(3)
+    sites = ["north"] * 6 + ["quay"] * 4
+    stats, mspec = _site_stats(tmp_path, rng.poisson(0.8, (10, 16)), sites)
+    cases = []
+    kind = get_model("lgcp_sites")
+    prior = resolve_prior(kind, {"length_scale_min": 150.0, "length_scale_max": 300.0}, "test")
+    cases.append((kind, kind.setup(stats, prior, mspec)))
+    single = get_model("lgcp")
+    prior1 = resolve_prior(single, {"length_scale_min": 150.0, "length_scale_max": 300.0}, "test")
+    for kept in (1.0, 0.99):  # torus field and spectrally truncated field
+        cases.append((single, single.setup(stats, prior1, ModelSpec("lgcp", {}, {"kernel": "matern32",
+                                                                                "variance_kept": kept}))))
+    for kind_, setup in cases:
+        inputs = setup.inputs
+        back = pickle.loads(pickle.dumps(inputs))
+        assert type(back["kernels"]) is type(inputs["kernels"])
+        from numpyro.infer.util import initialize_model
+
+        info = initialize_model(jax.random.PRNGKey(0), kind_.fn, model_kwargs=inputs)
+        z = jax.tree_util.tree_map(lambda v: v + 0.1 * rng.normal(size=np.shape(v)), info.param_info.z)
+        params = info.postprocess_fn(z)
+        params = {k: v for k, v in params.items() if k in z}
+        a = log_density(kind_.fn, (), inputs, params)[0]
+        b = log_density(kind_.fn, (), back, params)[0]
+        np.testing.assert_allclose(float(b), float(a), rtol=1e-12)

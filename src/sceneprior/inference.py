@@ -1,8 +1,8 @@
 """Running the samplers and reading their diagnostics.
 
 NUTS through numpyro (chains vectorised on the CPU for small models; for Gaussian-field
-models at once, one jax CPU device per chain, or one after another on large grids —
-``chain_layout`` says why; a progress bar per chain for warmup and sampling), or
+models at once, one jax CPU device per chain, or on large grids in separate processes,
+one per core — ``chain_layout`` says why; a progress bar per chain for warmup and sampling), or
 independent draws from an exact posterior where a model has one. Both end as one arviz
 InferenceData with dimensions (chain, draw, ...); nothing downstream re-runs
 a model.
@@ -82,8 +82,9 @@ def chain_layout(n_latent: int, chains: int = 1, n_cells: int = 0) -> str:
     Gaussian-field models (n_latent ≥ SEQUENTIAL_FROM) run their chains at once, one jax
     CPU device per chain (numpyro's "parallel"; ``configure_jax`` asks for the devices),
     when the process may use more than one core, jax has a device per chain and
-    n_latent < PARALLEL_BELOW; else one after another. With more chains than cores the
-    operating system shares the cores. Measured on 2 cores (Matérn 3/2, weak data,
+    n_latent < PARALLEL_BELOW; otherwise in separate processes, one per core at a time
+    (see below), and one after another with one chain or one usable core. With more
+    chains than cores the operating system shares the cores. Measured on 2 cores (Matérn 3/2, weak data,
     ``bench/bench_lgcp.py --one 64 matern32 weak --chains 4 --warmup 300 --draws 300``, the
     layout switched by hand, alternated in one session): 155.0 and 147.9 s one after
     another against 61.8 and 64.4 s in parallel, 31 leapfrog steps per draw in both; the
@@ -102,7 +103,13 @@ def chain_layout(n_latent: int, chains: int = 1, n_cells: int = 0) -> str:
     parallel layout also needs the grid (``n_cells``, which the spectrally truncated field
     evaluates directly, with few latent values) below PARALLEL_BELOW: a 256² truncated fit
     (1 765 latent values) grew by about 9.6 MB/s in parallel (3.95 GB at 4 × (1000 + 1000))
-    and stayed at 1.4–2.4 GB one chain after another.
+    and stayed at 1.4–2.4 GB one chain after another. Larger fields, and more chains than
+    jax has devices, run their chains in separate processes instead ("processes",
+    :func:`run_chains_in_processes`), one per usable core at a time: one XLA execution per
+    process stays flat. Measured, 256² squared exponential, weak data, q = 0.999,
+    4 × (1000 + 1000), ``--one 256 squared_exponential weak --variance-kept 0.999``: 286.7 s
+    and 3.32 GB for the process tree (RSS summed), the same min cell ESS (1239) and R-hat
+    (1.0073) as one after another in 461–559 s. One core, or one chain: one after another.
 
     Vectorised chains (one jax.vmap over chains) turn NUTS's tree-building branches into
     selects over every chain's whole state, so the sampler's bookkeeping per leapfrog step
@@ -116,19 +123,32 @@ def chain_layout(n_latent: int, chains: int = 1, n_cells: int = 0) -> str:
     backend: call ``configure_jax`` first."""
     if n_latent < SEQUENTIAL_FROM:
         return "vectorized"
+    if chains < 2 or usable_cores() < 2:
+        return "sequential"
     import jax
 
-    if (max(n_latent, n_cells) < PARALLEL_BELOW and 1 < chains <= jax.local_device_count()
-            and usable_cores() > 1):
+    if max(n_latent, n_cells) < PARALLEL_BELOW and chains <= jax.local_device_count():
         return "parallel"
-    return "sequential"
+    return PROCESSES
+
+
+#: layout name of :func:`run_chains_in_processes` (not a numpyro chain method)
+PROCESSES = "processes"
+#: memory a chain process needs besides its draws (jax, the compiled sampler), an allowance
+#: for ``fitting``'s memory check (``fitting._check_memory`` says what it rests on)
+CHAIN_PROCESS_BYTES = 1.0e9
 
 
 def chains_at_once(n_latent: int, chains: int, n_cells: int = 0) -> int:
     """How many chains hold their sampler state at the same time under ``chain_layout``
-    (all when vectorised or parallel, one when they run one after another); the memory
-    checks in ``fitting`` count this many."""
-    return 1 if chain_layout(n_latent, chains, n_cells) == "sequential" else chains
+    (all when vectorised or parallel, one per usable core in separate processes, one when
+    they run one after another); the memory checks in ``fitting`` count this many."""
+    layout = chain_layout(n_latent, chains, n_cells)
+    if layout == "sequential":
+        return 1
+    if layout == PROCESSES:
+        return min(chains, usable_cores())
+    return chains
 
 
 def run_nuts(fn, inputs: dict, sampler, progress: bool = True, dense_mass: bool = False,
@@ -142,28 +162,166 @@ def run_nuts(fn, inputs: dict, sampler, progress: bool = True, dense_mass: bool 
     configure_jax()
     import arviz as az
     import jax
-    from numpyro.infer import MCMC, NUTS
-
     from numpyro.infer import init_to_median
 
     layout = chain_layout(n_latent, sampler.chains, n_cells)
     # start chains at prior medians: an arbitrary start far out in log-intensity makes
     # warmup spend its first hundreds of iterations walking in
-    kernel = NUTS(fn, dense_mass=dense_mass,
-                  init_strategy=init_strategy or init_to_median(num_samples=15))
-    mcmc = MCMC(
-        kernel,
-        num_warmup=sampler.warmup,
-        num_samples=sampler.draws,
-        num_chains=sampler.chains,
-        chain_method=layout,
-        progress_bar=progress and sampler.progress,
-        thinning=thinning,
-    )
+    init_strategy = init_strategy or init_to_median(num_samples=15)
+    if layout == PROCESSES:
+        return run_chains_in_processes(fn, inputs, sampler, progress=progress, dense_mass=dense_mass,
+                                       dims=dims, coords=coords, init_strategy=init_strategy,
+                                       exclude_sites=exclude_sites, thinning=thinning)
+    mcmc = _sample(fn, inputs, jax.random.PRNGKey(sampler.seed), dense_mass, init_strategy, sampler.warmup,
+                   sampler.draws, thinning, exclude_sites, sampler.chains, layout, progress and sampler.progress)
+    return az.from_numpyro(mcmc, log_likelihood=False, dims=dims, coords=coords)
+
+
+def _sample(fn, inputs, key, dense_mass, init_strategy, warmup, draws, thinning, exclude_sites, chains, method,
+            progress):
+    """numpyro's NUTS and MCMC as every layout runs them; returns the finished MCMC."""
+    from numpyro.infer import MCMC, NUTS
+
+    kernel = NUTS(fn, dense_mass=dense_mass, init_strategy=init_strategy)
+    mcmc = MCMC(kernel, num_warmup=warmup, num_samples=draws, num_chains=chains, chain_method=method,
+                progress_bar=progress, thinning=thinning)
     drop = tuple(f"~z.{name}" for name in exclude_sites)
-    mcmc.run(jax.random.PRNGKey(sampler.seed), extra_fields=("diverging", "num_steps") + drop, **inputs)
-    idata = az.from_numpyro(mcmc, log_likelihood=False, dims=dims, coords=coords)
-    return idata
+    mcmc.run(key, extra_fields=("diverging", "num_steps") + drop, **inputs)
+    return mcmc
+
+
+def _end_with_parent() -> None:
+    """Linux: this process gets SIGTERM when its parent dies (prctl PR_SET_PDEATHSIG), so
+    chain processes do not sample on for a parent that was killed."""
+    try:
+        import ctypes
+        import signal
+
+        ctypes.CDLL("libc.so.6", use_errno=True).prctl(1, int(signal.SIGTERM))  # PR_SET_PDEATHSIG = 1
+    except (OSError, AttributeError):
+        pass
+
+
+def _one_chain(job_bytes: bytes, chain: int, core: int | None, key, results) -> None:
+    """Worker of :func:`run_chains_in_processes`: one chain (numpyro, ``num_chains=1``) with
+    the chain's own key, pinned to one core; puts (chain, "ok", pickled (draws, stats),
+    seconds) or (chain, "error", traceback, 0) on ``results``. The job arrives pickled and is
+    loaded after ``configure_jax`` (its jax arrays would start jax, in float32); the result
+    is pickled here, so that a failure to pickle it is reported like any other."""
+    import pickle
+    import time
+    import traceback
+
+    t0 = time.perf_counter()
+    _end_with_parent()
+    try:
+        if core is not None:
+            os.sched_setaffinity(0, {core})
+        configure_jax()
+        import jax
+        import jax.numpy as jnp
+
+        job = pickle.loads(job_bytes)
+        mcmc = _sample(job["fn"], job["inputs"], jnp.asarray(key, dtype=jnp.uint32), job["dense_mass"],
+                       job["init_strategy"], job["warmup"], job["draws"], job["thinning"], job["exclude_sites"],
+                       1, "sequential", job["bar"] and core == job["bar_core"])
+        draws = {k: np.asarray(v)[None] for k, v in jax.device_get(mcmc.get_samples()).items()}
+        extra = jax.device_get(mcmc.get_extra_fields())
+        stats = {"diverging": np.asarray(extra["diverging"])[None], "n_steps": np.asarray(extra["num_steps"])[None]}
+        payload = pickle.dumps((draws, stats), protocol=pickle.HIGHEST_PROTOCOL)
+        del draws, mcmc
+        results.put((chain, "ok", payload, time.perf_counter() - t0))
+    except BaseException:  # reported to the parent, which raises
+        results.put((chain, "error", traceback.format_exc(), 0.0))
+
+
+def run_chains_in_processes(fn, inputs: dict, sampler, progress: bool = True, dense_mass=False, dims=None,
+                            coords=None, init_strategy=None, exclude_sites=(), thinning: int = 1):
+    """NUTS with each chain in its own process (``chain_layout``'s "processes"): at most one
+    chain per usable core at a time, each process pinned to its core. Chain c uses the c-th
+    of ``jax.random.split(PRNGKey(seed), chains)``, as numpyro's one-after-another chains
+    do, so the draws are theirs up to floating-point reduction order. Why processes: XLA
+    grows memory when several executions run at once in one process on grid-sized arrays
+    (``chain_layout``), while one execution per process stays flat. Each process starts its
+    own jax and compiles the sampler (the persistent compilation cache serves the later
+    ones). ``fn`` and ``inputs`` must pickle (module-level model functions; the field
+    kernels rebuild their jitted maths on unpickling); processes are spawned, so a script
+    of the user's that fits must guard its entry point (``if __name__ == "__main__":``)."""
+    import multiprocessing as mp
+    import pickle
+    import queue
+    import sys
+    import time
+
+    import arviz as az
+    import jax
+
+    chains = sampler.chains
+    try:
+        cores = sorted(os.sched_getaffinity(0))
+    except (AttributeError, OSError):
+        cores = [None] * usable_cores()
+    slots = cores[:max(1, min(chains, len(cores)))]
+    root = jax.random.PRNGKey(sampler.seed)
+    keys = np.asarray(jax.random.split(root, chains) if chains > 1 else root[None])  # numpyro: one chain, no split
+    show = progress and sampler.progress
+    job = pickle.dumps({"fn": fn, "inputs": inputs, "dense_mass": dense_mass, "init_strategy": init_strategy,
+                        "exclude_sites": tuple(exclude_sites), "thinning": thinning, "warmup": sampler.warmup,
+                        "draws": sampler.draws, "bar": show, "bar_core": slots[0]})
+    ctx = mp.get_context("spawn")  # jax is not fork-safe
+    results = ctx.Queue()
+    pending, running, free = list(range(chains)), {}, list(slots)
+    posterior: dict = {}
+    stats: dict = {}
+    t0 = time.perf_counter()
+
+    def say(msg):
+        if show:
+            print(msg, file=sys.stderr, flush=True)
+
+    say(f"{chains} chains in separate processes, {len(slots)} at a time (one per core); the progress bar "
+        f"follows the chains on the first core")
+    try:
+        while pending or running:
+            while pending and free:
+                c, core = pending.pop(0), free.pop(0)
+                proc = ctx.Process(target=_one_chain, args=(job, c, core, keys[c], results), daemon=True)
+                proc.start()
+                running[c] = (proc, core)
+            try:
+                c, status, payload, secs = results.get(timeout=2.0)
+            except queue.Empty:
+                ended = [(c, proc.exitcode) for c, (proc, _) in running.items() if proc.exitcode is not None]
+                if not ended:
+                    continue
+                try:  # a result written just before its process ended
+                    c, status, payload, secs = results.get(timeout=3.0)
+                except queue.Empty:  # ended without a word (killed, out of memory)
+                    raise RuntimeError(f"chain {ended[0][0] + 1}'s process ended with exit code {ended[0][1]} "
+                                       "before returning its draws (out of memory?)") from None
+            proc, core = running.pop(c)
+            proc.join()
+            free.append(core)
+            if status != "ok":
+                raise RuntimeError(f"chain {c + 1} failed in its process:\n{payload}")
+            draws, st = pickle.loads(payload)
+            del payload
+            for group, part in ((posterior, draws), (stats, st)):
+                for k, v in part.items():  # filled chain by chain: one chain's copy in transit at most
+                    if k not in group:
+                        group[k] = np.empty((chains,) + v.shape[1:], v.dtype)
+                    group[k][c] = v[0]
+            del draws
+            say(f"chain {c + 1} of {chains} done in {secs:.0f} s ({float(np.mean(st['n_steps'])):.1f} leapfrog "
+                f"steps per draw; {time.perf_counter() - t0:.0f} s since the start)")
+    finally:
+        for proc, _ in running.values():
+            proc.terminate()
+        for proc, _ in running.values():
+            proc.join(timeout=10.0)
+            if proc.exitcode is None:
+                proc.kill()
+    return az.from_dict(posterior=posterior, sample_stats=stats, dims=dims, coords=coords)
 
 
 def exact_idata(draws: dict):
@@ -239,4 +397,5 @@ def cell_diagnostics(log_lam: np.ndarray, chunk: int = 2048) -> dict:
         "r_hat_max": float(np.nanmax(rhat)),
         "ess_bulk_median": float(np.nanmedian(ess)),
         "ess_bulk_min": float(np.nanmin(ess)),
+        "ess_bulk_argmin": int(np.nanargmin(ess)) if np.any(np.isfinite(ess)) else -1,
     }

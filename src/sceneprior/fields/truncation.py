@@ -225,16 +225,24 @@ def mode_basis(geom: TorusGeometry, lo2, hi2, variance_kept: float) -> ModeBasis
                      np.asarray(im_w, float), A, B, report)
 
 
-#: largest number of coefficients for which the pilot map is built. Measured with
-#: bench/bench_lgcp.py --one ... --chains 1 --warmup 200 --draws 200 (one chain): at 1 765
-#: coefficients (256² squared exponential weak, --variance-kept 0.999) the low-rank map
-#: (rank 331) cost about 0.8 ms of a 2.9 ms gradient and cut 127 leapfrog steps per draw to
-#: 31; at 4 797 (128² Matérn 3/2 weak, --variance-kept 0.98, dense form) a step took about
-#: 10 ms with the map against 1.0 ms without (31 against 127 steps: 138 s against 51 s). Sizes
-#: in between are unmeasured; the limit sits at the measured case that paid.
-DENSE_MAX = 2000
+#: largest number of coefficients for which the pilot map is built (H is K × K float64 and
+#: its eigendecomposition took 12–14 s at K = 4 797 on this machine).
+DENSE_MAX = 6000
 #: precision eigenvalues inside [1/band, band] are left alone by the low-rank preconditioner
 LOW_RANK_BAND = 1.5
+#: most entries of the map's matrix (rank × K for the low-rank form, K² for the dense one):
+#: applying the map reads its matrix twice per log-density and twice per gradient, so its
+#: cost is memory traffic. Measured with bench/bench_lgcp.py --one 128 matern32 weak
+#: --variance-kept 0.98 (4 797 coefficients, LOW_RANK_BAND and the cap set by hand): the
+#: full band-1.5 map (rank 891) made a 1 × (200 + 200) run slower than no map (129.8 s
+#: against 50.4 s); rank 169 (band 8, float64) took 31 steps per draw instead of 127,
+#: 4 × (1000 + 1000) in 280.9 s against 346.0 s without a map; this cap (rank 208, float32)
+#: 199.9 s.
+MAP_ENTRIES = 1_000_000
+#: the map is applied in float32 (half the memory traffic): the coordinates are rounded to
+#: float32 before the product, so the log density carries float32 rounding (2–8 × 10⁻⁵ nats
+#: in tests/test_truncation.py's strong-data case, against the float64 map)
+MAP_DTYPE = np.float32
 
 
 def dense_preconditioner(basis: ModeBasis, amp, d, weights, band: float | None = None, batch: int = 64):
@@ -249,10 +257,12 @@ def dense_preconditioner(basis: ModeBasis, amp, d, weights, band: float | None =
     approximately (``preconditioning`` steps 1–2): the window covers a quarter of the torus,
     so Fourier modes are coupled by the data, and the field's mean over the window is a
     direction no diagonal mass matrix sees. Gᵀ W G is built column by column with the
-    transpose of G (jax.linear_transpose), in batches. H = V diag(e) Vᵀ; where only r
-    eigenvalues lie outside [1/band, band] (the y coordinates are scaled so that uniform
-    data give H = I; 2r < n_latent), L = I + V_r diag(e_r^{-1/2} − 1) V_rᵀ, cheaper than
-    the dense L and within a factor √band of it in scale in every direction.
+    transpose of G (jax.linear_transpose), in batches. H = V diag(e) Vᵀ; of the eigenvalues
+    outside [1/band, band] (the y coordinates are scaled so that uniform data give H = I)
+    the r farthest from 1 (|log e| largest) are corrected, r·K ≤ MAP_ENTRIES:
+    L = I + V_r diag(e_r^{-1/2} − 1) V_rᵀ, within a factor √band of the dense L in scale
+    wherever r reaches every eigenvalue outside the band; the dense L when those are half
+    the coefficients or more and K² ≤ MAP_ENTRIES. Stored in MAP_DTYPE.
     A constant linear map (log-Jacobian −½ Σ log e_r): the posterior is unchanged, only
     the sampler's geometry. Returns (arrays for the model, report)."""
     import jax
@@ -277,15 +287,20 @@ def dense_preconditioner(basis: ModeBasis, amp, d, weights, band: float | None =
     dj = np.asarray(d)[np.asarray(arr["coef_rep"])]
     H = 0.5 * (np.asarray(M) + np.asarray(M).T) + np.diag(1.0 / dj)
     ev, V = np.linalg.eigh(H)
-    far = (ev < 1.0 / band) | (ev > band)
-    r = int(far.sum())
-    report = {"rank": r, "coefficients": K, "band": band,
+    outside = int(np.sum((ev < 1.0 / band) | (ev > band)))
+    # the directions farthest from 1 first, as many as MAP_ENTRIES allows
+    r = min(outside, MAP_ENTRIES // K)
+    far = np.argsort(-np.abs(np.log(ev)), kind="stable")[:r]
+    report = {"rank": r, "outside_band": outside, "coefficients": K, "band": band,
+              "max_entries": MAP_ENTRIES, "dtype": np.dtype(MAP_DTYPE).name,
               "precision_eigenvalues_min_max": [float(ev.min()), float(ev.max())]}
     if r == 0:
         report["form"] = "identity"
         return {}, report
-    if 2 * r < K:  # y = z + V_r (ev_r^{-1/2} − 1) V_rᵀ z: cost 2·K·r per product
-        report["form"] = "low rank"
-        return {"low_rank_vectors": V[:, far], "low_rank_scale": ev[far] ** -0.5 - 1.0}, report
-    report["form"] = "dense"
-    return {"dense": (V * ev**-0.5) @ V.T}, report
+    if r == outside and 2 * r >= K and K * K <= MAP_ENTRIES:
+        report["form"] = "dense"
+        return {"dense": ((V * ev**-0.5) @ V.T).astype(MAP_DTYPE)}, report
+    # y = z + V_r (ev_r^{-1/2} − 1) V_rᵀ z: cost 2·K·r per product
+    report["form"] = "low rank"
+    return {"low_rank_vectors": V[:, far].astype(MAP_DTYPE),
+            "low_rank_scale": (ev[far] ** -0.5 - 1.0).astype(MAP_DTYPE)}, report

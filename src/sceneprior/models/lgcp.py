@@ -186,6 +186,9 @@ class FieldKernels:
     def n_torus(self):
         return self.spectrum.geom.n_torus
 
+    def __reduce__(self):  # pickled without the jitted closure, rebuilt on loading
+        return (type(self), (self.spectrum, self.use_pad))
+
     def rotate(self, u_soft, u_rest, v):
         """u = H [u_soft, u_rest] on the torus, H = I − 2 v vᵀ (|v| = 1 or v = 0)."""
         w = jnp.concatenate([u_soft[None], u_rest])
@@ -215,6 +218,9 @@ class TruncatedFieldKernels:
     def n_latent(self):
         return self.basis.n_latent
 
+    def __reduce__(self):  # pickled without the jitted closure, rebuilt on loading
+        return (type(self), (self.basis,))
+
     def __post_init__(self):
         basis = self.basis
         zero = jnp.asarray(basis.nonzero)
@@ -225,10 +231,11 @@ class TruncatedFieldKernels:
             d = 1.0 + zero * pre["w_scale"] * lam
             amp = safe_sqrt(lam / d)
             y = u
-            if "dense" in pre:
-                y = pre["dense"] @ u
+            if "dense" in pre:  # the map in its stored precision (truncation.MAP_DTYPE)
+                y = (pre["dense"] @ u.astype(pre["dense"].dtype)).astype(u.dtype)
             elif "low_rank_vectors" in pre:
-                y = u + pre["low_rank_vectors"] @ (pre["low_rank_scale"] * (u @ pre["low_rank_vectors"]))
+                V = pre["low_rank_vectors"]
+                y = u + (V @ (pre["low_rank_scale"] * (u.astype(V.dtype) @ V))).astype(u.dtype)
             f = field_from_coefficients(y, amp, pre["modes"], box, grid)
             dj = d[pre["modes"]["coef_rep"]]
             logp = -0.5 * jnp.sum(y * y / dj) - 0.5 * jnp.sum(jnp.log(dj))

@@ -132,6 +132,9 @@ class SiteFieldKernels:
     def n_torus(self) -> int:
         return self.spectrum.geom.n_torus
 
+    def __reduce__(self):  # pickled without the jitted closure (chain processes), rebuilt on loading
+        return (type(self), (self.spectrum, self.use_pad, self.use_pad_dev))
+
     def __post_init__(self):
         spectrum, use_pad, use_pad_dev = self.spectrum, self.use_pad, self.use_pad_dev
         torus, grid = spectrum.geom.torus_shape, spectrum.geom.grid_shape
