@@ -109,7 +109,10 @@ def chain_layout(n_latent: int, chains: int = 1, n_cells: int = 0) -> str:
     process stays flat. Measured, 256² squared exponential, weak data, q = 0.999,
     4 × (1000 + 1000), ``--one 256 squared_exponential weak --variance-kept 0.999``: 286.7 s
     and 3.32 GB for the process tree (RSS summed), the same min cell ESS (1239) and R-hat
-    (1.0073) as one after another in 461–559 s. One core, or one chain: one after another.
+    (1.0073) as one after another in 461–559 s. Below PARALLEL_BELOW the parallel layout
+    stays: 128² Matérn 3/2 weak, q = 0.98, 4 × (1000 + 1000) took 199.9 s in parallel and
+    274.0 s in processes (forced; each process starts jax and compiles, and the chains
+    run in two waves). One core, or one chain: one after another.
 
     Vectorised chains (one jax.vmap over chains) turn NUTS's tree-building branches into
     selects over every chain's whole state, so the sampler's bookkeeping per leapfrog step
