@@ -466,7 +466,7 @@ def test_setup_inputs_pickle_for_chain_processes(tmp_path):
     import pickle
 
     import jax
-    from numpyro.infer.util import log_density
+    from numpyro.infer.util import initialize_model, log_density
 
     rng = np.random.default_rng(3)
     sites = ["north"] * 6 + ["quay"] * 4
@@ -484,8 +484,6 @@ def test_setup_inputs_pickle_for_chain_processes(tmp_path):
         inputs = setup.inputs
         back = pickle.loads(pickle.dumps(inputs))
         assert type(back["kernels"]) is type(inputs["kernels"])
-        from numpyro.infer.util import initialize_model
-
         info = initialize_model(jax.random.PRNGKey(0), kind_.fn, model_kwargs=inputs)
         z = jax.tree_util.tree_map(lambda v: v + 0.1 * rng.normal(size=np.shape(v)), info.param_info.z)
         params = info.postprocess_fn(z)

@@ -379,7 +379,8 @@ def cell_diagnostics(log_lam: np.ndarray, chunk: int = 2048) -> dict:
     Reported as quantiles over cells: a maximum over 10⁴ cells would fail healthy runs by
     chance, so the gate reads the 99th percentile of R-hat and the median bulk ESS.
     Computed by arviz in chunks of cells (its rank normalisation makes several float64
-    copies of its input), so large maps stay within memory."""
+    copies of its input), so large maps stay within memory. ``ess_bulk_argmin`` is the
+    position of the least-ESS cell along the input's last axis (−1 if none)."""
     import arviz as az
 
     x = np.asarray(log_lam)

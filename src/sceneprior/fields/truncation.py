@@ -225,9 +225,9 @@ def mode_basis(geom: TorusGeometry, lo2, hi2, variance_kept: float) -> ModeBasis
                      np.asarray(im_w, float), A, B, report)
 
 
-#: largest number of coefficients for which the pilot map is built (H is K × K float64 and
-#: its eigendecomposition took 12–14 s at K = 4 797 on this machine).
-DENSE_MAX = 6000
+#: largest number of coefficients for which the pilot map is built (H is K × K float64: the
+#: set-up took 12–14 s at K = 4 797 on this machine, numpy's eigh of H alone 7.5–8.8 s).
+MAP_MAX_COEFFICIENTS = 6000
 #: precision eigenvalues inside [1/band, band] are left alone by the low-rank preconditioner
 LOW_RANK_BAND = 1.5
 #: most entries of the map's matrix (rank × K for the low-rank form, K² for the dense one):

@@ -54,7 +54,7 @@ from ..fields.embedding import TorusGeometry, plan_torus, torus_shape_for
 from ..fields.kernels import KERNEL_NAMES
 from ..fields.spectral import Spectrum, periodised_report
 from ..fields.preconditioning import build_preconditioner, field_and_prior, safe_sqrt
-from ..fields.truncation import DENSE_MAX, ModeBasis, dense_preconditioner, field_from_coefficients, mode_basis
+from ..fields.truncation import MAP_MAX_COEFFICIENTS, ModeBasis, dense_preconditioner, field_from_coefficients, mode_basis
 
 DEFAULT_PRIOR = {
     "rate_median": 10.0,
@@ -337,7 +337,7 @@ def truncated_plan(stats, kernel, prior, variance_kept):
 def truncated_preconditioner(basis, counts, exposure, lo, hi, sigma_scale):
     """Data-dependent part: pilot σ, ℓ from the binned pair correlation, w̄ = detections per
     torus cell for the partial centring, and the fixed map y = L z of
-    ``fields.truncation.dense_preconditioner`` (identity above DENSE_MAX coefficients).
+    ``fields.truncation.dense_preconditioner`` (identity above MAP_MAX_COEFFICIENTS coefficients).
     counts, exposure: (n_cells,) with 0 where a cell has no exposure. Returns
     (Preconditioner for the report, model arrays, report of the map)."""
     from ..fields.preconditioning import Preconditioner, pair_correlation_pilot
@@ -353,8 +353,8 @@ def truncated_preconditioner(basis, counts, exposure, lo, hi, sigma_scale):
     exposed[:n0, :n1] = (exposure > 0).reshape(n0, n1)
     pre = Preconditioner((m0, m1), exposed, np.ones(geom.half_shape), w_bar, np.zeros((m0, m1)), 1.0, False, pilot)
     arrays = {"w_scale": jnp.asarray(w_bar), "modes": basis.arrays()}
-    rep = {"form": "identity", "reason": f"more than {DENSE_MAX} coefficients"}
-    if basis.n_latent <= DENSE_MAX:
+    rep = {"form": "identity", "reason": f"more than {MAP_MAX_COEFFICIENTS} coefficients"}
+    if basis.n_latent <= MAP_MAX_COEFFICIENTS:
         lam = np.maximum(np.asarray(basis.eigenvalues(np.resize(np.asarray(pilot["length_scale"], float), 2),
                                                       pilot["sigma"] ** 2)), 0.0)
         d = 1.0 + w_bar * lam * basis.nonzero
