@@ -152,7 +152,7 @@ def _run(kind, setup, chains, warmup, draws, dense_baseline=False, setup_s=0.0):
         fn, inputs = kind.fn, setup.inputs
         kw = dict(init_strategy=setup.extra["init_strategy"], dense_mass=setup.extra["dense_mass"],
                   exclude_sites=setup.extra["exclude_sites"], n_latent=setup.extra["n_latent"],
-                  n_cells=len(setup.inputs["window_area"]))
+                  n_cells=len(setup.inputs["window_area"]), warmup_tree_depth=setup.extra.get("warmup_tree_depth"))
     # the production thinning: kept per-cell draws within the default budget (fitting.fit)
     thinning = thin_for_budget(draws, len(setup.inputs["window_area"]) * chains, DRAWS_BUDGET_MB)
     t = time.perf_counter()

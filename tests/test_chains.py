@@ -49,7 +49,13 @@ def test_layouts_by_size_cores_and_devices(monkeypatch):
     # few latent values on a large grid (spectral truncation): the grid decides
     assert inference.chain_layout(big, 4, n_cells=inference.PARALLEL_BELOW) == "processes"
     assert inference.chain_layout(big, 4, n_cells=64 * 64) == "parallel"
-    assert inference.chains_at_once(big, 4, n_cells=inference.PARALLEL_BELOW) == 2  # one per core
+    # chain processes vectorise their groups up to GROUP_VECTORIZE_UPTO latent values: all
+    # chains hold state at once; above it one chain per core at a time
+    assert inference.chains_at_once(big, 4, n_cells=inference.PARALLEL_BELOW) == 4
+    assert inference.chains_at_once(inference.PARALLEL_BELOW, 4) == 2
+    assert inference.chain_groups(4, 2) == [[0, 1], [2, 3]]
+    assert inference.chain_groups(3, 2) == [[0, 1], [2]]
+    assert inference.chain_groups(1, 2) == [[0]]
     monkeypatch.setattr(inference, "usable_cores", lambda: 1)
     assert inference.chain_layout(big, 4) == "sequential"
     assert inference.chain_layout(big, 4, n_cells=inference.PARALLEL_BELOW) == "sequential"
@@ -82,10 +88,15 @@ def test_parallel_draws_equal_sequential_and_posterior(monkeypatch):
     assert abs(par.var() / post_var - 1) < 0.25
 
 
-def test_chains_in_processes_equal_sequential(monkeypatch):
-    """Chains in separate processes (large grids): same keys as numpyro's one-after-another
-    chains, so the same draws; the excluded site is dropped and the sample statistics kept."""
+@pytest.mark.parametrize("vectorise", [True, False])
+def test_chains_in_processes_equal_sequential(monkeypatch, vectorise):
+    """Chains in separate processes (large grids), three chains: on two cores chains 1–2 in
+    one process and chain 3 in the other (on one core all three in one), vectorised or one
+    after another within a process; same keys as numpyro's one-after-another chains, so the
+    same draws; the excluded site is dropped and the sample statistics kept."""
     monkeypatch.setattr(inference, "chain_layout", lambda n, c=1, n_cells=0: inference.PROCESSES)
+    if not vectorise:
+        monkeypatch.setattr(inference, "GROUP_VECTORIZE_UPTO", inference.SEQUENTIAL_FROM - 1)
     y = jnp.asarray(np.random.default_rng(5).normal(-0.5, 1.0, 30))
     smp = _Sampler()
     smp.chains, smp.warmup, smp.draws = 3, 150, 200
@@ -98,12 +109,34 @@ def test_chains_in_processes_equal_sequential(monkeypatch):
     seq = ref.get_samples(group_by_chain=True)
     assert idata.posterior["mu"].shape == (3, 100)
     assert "noise" not in idata.posterior and "twice" in idata.posterior
-    np.testing.assert_allclose(np.asarray(idata.posterior["mu"]), np.asarray(seq["mu"]), rtol=0, atol=1e-5)
-    np.testing.assert_allclose(np.asarray(idata.posterior["twice"]), np.asarray(seq["twice"]), rtol=0, atol=1e-5)
+    # vectorised groups (chains 1–2 in one jax.vmap): the same trajectories up to rounding
+    # (1.3e-5 at most, seen once in 300 draws); one after another: numpyro's own layout
+    tol = 1e-4 if vectorise else 1e-5
+    np.testing.assert_allclose(np.asarray(idata.posterior["mu"]), np.asarray(seq["mu"]), rtol=0, atol=tol)
+    np.testing.assert_allclose(np.asarray(idata.posterior["twice"]), np.asarray(seq["twice"]), rtol=0, atol=2 * tol)
     np.testing.assert_array_equal(np.asarray(idata.sample_stats["n_steps"]),
                                   np.asarray(ref.get_extra_fields(group_by_chain=True)["num_steps"]))
     d = inference.diagnostics(idata, ("mu",))
     assert d["chains"] == 3 and d["draws"] == 100 and d["leapfrog_steps_mean"] > 0
+
+
+def test_warmup_tree_depth_reaches_the_sampler(monkeypatch):
+    """A warmup depth caps NUTS's trees during warmup only (numpyro takes (warmup, sampling)
+    depths); without one both phases keep numpyro's default depth 10."""
+    seen = []
+
+    class Recording(NUTS):
+        def __init__(self, *a, **k):
+            seen.append(k.get("max_tree_depth"))
+            super().__init__(*a, **k)
+
+    monkeypatch.setattr(numpyro.infer, "NUTS", Recording)
+    smp = _Sampler()
+    smp.chains, smp.warmup, smp.draws = 1, 20, 20
+    y = jnp.zeros(5)
+    inference.run_nuts(_model, {"y": y}, smp, progress=False, n_latent=inference.SEQUENTIAL_FROM, warmup_tree_depth=3)
+    inference.run_nuts(_model, {"y": y}, smp, progress=False, n_latent=inference.SEQUENTIAL_FROM)
+    assert seen == [(3, 10), 10]
 
 
 def test_chain_process_failure_is_reported(monkeypatch):
@@ -113,7 +146,7 @@ def test_chain_process_failure_is_reported(monkeypatch):
     with pytest.raises(RuntimeError, match=r"(?s)chain [12] failed in its process:\n.*TypeError"):
         inference.run_nuts(_model, {"y": "not an array"}, smp, progress=False, n_latent=inference.SEQUENTIAL_FROM)
     # a process that dies without a word (killed, out of memory) is reported, not waited for
-    with pytest.raises(RuntimeError, match=r"chain [12]'s process ended with exit code 3"):
+    with pytest.raises(RuntimeError, match=r"the process of chain [12] ended with exit code 3"):
         inference.run_nuts(_model_that_dies, {"y": jnp.zeros(3)}, smp, progress=False,
                            n_latent=inference.SEQUENTIAL_FROM)
 

@@ -147,6 +147,8 @@ def test_model_prior_on_the_field_is_the_truncated_field(monkeypatch, band):
     kern, pre = setup.inputs["kernels"], setup.inputs["precond"]
     rep = setup.extra["embedding"]["truncation"]["mode_preconditioner"]
     assert rep["rank"] > 0
+    # with the map, warmup trees are capped (sampling keeps numpyro's depth 10)
+    assert setup.extra["warmup_tree_depth"] == lgcp.WARMUP_TREE_DEPTH
     assert ("low_rank_vectors" in pre) == (band == 4.0) and ("dense" in pre) == (band == 1.5), rep
     inp = setup.inputs
     basis = setup.extra["modes"]

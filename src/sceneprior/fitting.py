@@ -84,7 +84,7 @@ def _check_memory(setup, stats, smp, source: str, thinning: int = 1) -> None:
     computed from."""
     import os
 
-    from .inference import CHAIN_PROCESS_BYTES, PROCESSES, chain_layout, chains_at_once
+    from .inference import CHAIN_PROCESS_BYTES, PROCESSES, chain_layout, chains_at_once, usable_cores
 
     n_latent = int(setup.extra.get("n_latent", 0))
     if not n_latent:
@@ -93,11 +93,11 @@ def _check_memory(setup, stats, smp, source: str, thinning: int = 1) -> None:
     running = chains_at_once(n_latent, smp.chains, stats.grid.n_cells)
     need = smp.chains * 3 * kept * stats.grid.n_cells * 4.0 + running * 12 * n_latent * 8.0
     if chain_layout(n_latent, smp.chains, stats.grid.n_cells) == PROCESSES:
-        # each running chain process: its own jax and compiled sampler, and its kept draws
-        # once more on their way back (one 256² chain process alone peaked at 1.38 GB,
-        # set-up included, in bench/bench_lgcp.py --one 256 squared_exponential strong
-        # --chains 1 --warmup 300 --draws 300 --variance-kept 0.999)
-        need += running * (CHAIN_PROCESS_BYTES + kept * stats.grid.n_cells * 4.0)
+        # each chain process (one per usable core): its own jax and compiled sampler, and
+        # its chains' kept draws once more on their way back (one 256² chain process alone
+        # peaked at 1.38 GB, set-up included, in bench/bench_lgcp.py --one 256
+        # squared_exponential strong --chains 1 --warmup 300 --draws 300 --variance-kept 0.999)
+        need += min(smp.chains, usable_cores()) * CHAIN_PROCESS_BYTES + smp.chains * kept * stats.grid.n_cells * 4.0
     try:
         total = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
     except (ValueError, OSError, AttributeError):
@@ -239,7 +239,8 @@ def fit(spec: FitSpec, progress: bool = True, log=print) -> FitResult:
                          init_strategy=setup.extra.get("init_strategy"),
                          dims=setup.extra.get("dims"), coords=setup.extra.get("coords"),
                          exclude_sites=setup.extra.get("exclude_sites", ()), thinning=thinning,
-                         n_latent=int(setup.extra.get("n_latent", 0)), n_cells=stats.grid.n_cells)
+                         n_latent=int(setup.extra.get("n_latent", 0)), n_cells=stats.grid.n_cells,
+                         warmup_tree_depth=setup.extra.get("warmup_tree_depth"))
         if setup.extra.get("complete"):  # exact conditional draws of integrated-out parameters
             idata = setup.extra["complete"](idata, stats, setup, smp.seed)
     t_mcmc = time.perf_counter()

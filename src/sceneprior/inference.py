@@ -82,8 +82,8 @@ def chain_layout(n_latent: int, chains: int = 1, n_cells: int = 0) -> str:
     Gaussian-field models (n_latent ≥ SEQUENTIAL_FROM) run their chains at once, one jax
     CPU device per chain (numpyro's "parallel"; ``configure_jax`` asks for the devices),
     when the process may use more than one core, jax has a device per chain and
-    n_latent < PARALLEL_BELOW; otherwise in separate processes, one per core at a time
-    (see below), and one after another with one chain or one usable core. With more
+    n_latent < PARALLEL_BELOW; otherwise in separate processes, one per core, each running
+    its group of chains (see below), and one after another with one chain or one usable core. With more
     chains than cores the operating system shares the cores. Measured on 2 cores (Matérn 3/2, weak data,
     ``bench/bench_lgcp.py --one 64 matern32 weak --chains 4 --warmup 300 --draws 300``, the
     layout switched by hand, alternated in one session): 155.0 and 147.9 s one after
@@ -105,21 +105,27 @@ def chain_layout(n_latent: int, chains: int = 1, n_cells: int = 0) -> str:
     (1 765 latent values) grew by about 9.6 MB/s in parallel (3.95 GB at 4 × (1000 + 1000))
     and stayed at 1.4–2.4 GB one chain after another. Larger fields, and more chains than
     jax has devices, run their chains in separate processes instead ("processes",
-    :func:`run_chains_in_processes`), one per usable core at a time: one XLA execution per
-    process stays flat. Measured, 256² squared exponential, weak data, q = 0.999,
-    4 × (1000 + 1000), ``--one 256 squared_exponential weak --variance-kept 0.999``: 286.7 s
-    and 3.32 GB for the process tree (RSS summed), the same min cell ESS (1239) and R-hat
-    (1.0073) as one after another in 461–559 s. Below PARALLEL_BELOW the parallel layout
-    stays: 128² Matérn 3/2 weak, q = 0.98, 4 × (1000 + 1000) took 199.9 s in parallel and
-    274.0 s in processes (forced; each process starts jax and compiles, and the chains
-    run in two waves). One core, or one chain: one after another.
+    :func:`run_chains_in_processes`), one per usable core, each with its group of chains
+    (vectorised up to GROUP_VECTORIZE_UPTO latent values): one XLA execution per process
+    stays flat. Measured, 256² squared exponential, weak data, q = 0.999, 4 × (1000 + 1000),
+    ``--one 256 squared_exponential weak --variance-kept 0.999``: one chain per process
+    (four processes, two at a time) 286.7 s and 3.32 GB for the process tree (RSS summed),
+    the same min cell ESS (1239) and R-hat (1.0073) as one after another in 461–559 s; in a
+    later session 239.6 s with the float32 map, and 175.5 s (3.63 GB) with two processes of
+    two vectorised chains and warmup trees capped (``models.lgcp.WARMUP_TREE_DEPTH``).
+    Below PARALLEL_BELOW the parallel layout stays: 128² Matérn 3/2 weak, q = 0.98,
+    4 × (1000 + 1000), warmup trees capped, took 179.2 s in parallel and 190.8 s in two
+    processes of two vectorised chains (forced; each process starts jax and compiles).
+    One core, or one chain: one after another.
 
     Vectorised chains (one jax.vmap over chains) turn NUTS's tree-building branches into
     selects over every chain's whole state, so the sampler's bookkeeping per leapfrog step
     grows faster than the chains: on an iid N(0, I) target of 65 538 dimensions it took
     14.7 ms per step for 4 vectorised chains against 2.68 ms for one chain (measured,
-    ``bench/bench_lgcp.py`` part (d) does the same), while the field gradient costs the same
-    per chain either way. Measured on the LGCP (Matérn 3/2, weak data, 4 × (150 + 150)): 64²
+    ``bench/bench_lgcp.py`` part (d) does the same), while the full-torus field gradient
+    costs the same per chain either way (a truncated field's gradient is cheaper per chain
+    when batched, hence the vectorised groups of :func:`run_chains_in_processes` up to
+    GROUP_VECTORIZE_UPTO latent values). Measured on the LGCP (Matérn 3/2, weak data, 4 × (150 + 150)): 64²
     cells 91.0 s sequential against 195.5 s vectorised; 32² (4 × (300 + 300)) 51.2 s
     against 60.2 s. Small models (a handful of parameters) keep the vectorised layout,
     where one pass serves every chain. Asks jax for its device count, which starts jax's
@@ -144,24 +150,31 @@ CHAIN_PROCESS_BYTES = 1.0e9
 
 def chains_at_once(n_latent: int, chains: int, n_cells: int = 0) -> int:
     """How many chains hold their sampler state at the same time under ``chain_layout``
-    (all when vectorised or parallel, one per usable core in separate processes, one when
-    they run one after another); the memory checks in ``fitting`` count this many."""
+    (all when vectorised or parallel, and in separate processes when these vectorise their
+    groups; one per usable core when the processes run their chains one after another; one
+    when all run one after another); the memory checks in ``fitting`` count this many."""
     layout = chain_layout(n_latent, chains, n_cells)
     if layout == "sequential":
         return 1
-    if layout == PROCESSES:
+    if layout == PROCESSES and n_latent > GROUP_VECTORIZE_UPTO:
         return min(chains, usable_cores())
     return chains
 
 
 def run_nuts(fn, inputs: dict, sampler, progress: bool = True, dense_mass: bool = False,
              dims: dict | None = None, coords: dict | None = None, init_strategy=None,
-             exclude_sites=(), thinning: int = 1, n_latent: int = 0, n_cells: int = 0):
+             exclude_sites=(), thinning: int = 1, n_latent: int = 0, n_cells: int = 0,
+             warmup_tree_depth: int | None = None):
     """Sample ``fn(**inputs)`` with NUTS; returns InferenceData whose sample_stats hold the
     leapfrog steps and divergences per draw. ``exclude_sites``: latent sites not kept (a
     field's white noise; its deterministic images are kept instead); ``thinning``: keep
     every n-th draw (memory budget of per-cell draws); ``n_latent``: the model's latent
-    dimension and ``n_cells`` its grid's cells, which pick the chain layout (:func:`chain_layout`)."""
+    dimension and ``n_cells`` its grid's cells, which pick the chain layout (:func:`chain_layout`);
+    ``warmup_tree_depth``: the deepest NUTS tree during warmup (None: depth 10, as in
+    sampling, which always keeps it). A model sets it when its sampler is known
+    to need shallow trees once adapted: the first warmup window, before the mass matrix is
+    adapted, otherwise spends 100–250 leapfrog steps per iteration on directions the
+    adaptation is about to rescale (``models.lgcp.WARMUP_TREE_DEPTH`` says what was measured)."""
     configure_jax()
     import arviz as az
     import jax
@@ -174,18 +187,26 @@ def run_nuts(fn, inputs: dict, sampler, progress: bool = True, dense_mass: bool 
     if layout == PROCESSES:
         return run_chains_in_processes(fn, inputs, sampler, progress=progress, dense_mass=dense_mass,
                                        dims=dims, coords=coords, init_strategy=init_strategy,
-                                       exclude_sites=exclude_sites, thinning=thinning)
+                                       exclude_sites=exclude_sites, thinning=thinning,
+                                       warmup_tree_depth=warmup_tree_depth, n_latent=n_latent)
     mcmc = _sample(fn, inputs, jax.random.PRNGKey(sampler.seed), dense_mass, init_strategy, sampler.warmup,
-                   sampler.draws, thinning, exclude_sites, sampler.chains, layout, progress and sampler.progress)
+                   sampler.draws, thinning, exclude_sites, sampler.chains, layout, progress and sampler.progress,
+                   warmup_tree_depth)
     return az.from_numpyro(mcmc, log_likelihood=False, dims=dims, coords=coords)
 
 
+#: numpyro's default deepest NUTS tree (2^10 − 1 leapfrog steps), kept for sampling
+MAX_TREE_DEPTH = 10
+
+
 def _sample(fn, inputs, key, dense_mass, init_strategy, warmup, draws, thinning, exclude_sites, chains, method,
-            progress):
-    """numpyro's NUTS and MCMC as every layout runs them; returns the finished MCMC."""
+            progress, warmup_tree_depth=None):
+    """numpyro's NUTS and MCMC as every layout runs them; returns the finished MCMC.
+    ``warmup_tree_depth``: see :func:`run_nuts` (numpyro takes (warmup, sampling) depths)."""
     from numpyro.infer import MCMC, NUTS
 
-    kernel = NUTS(fn, dense_mass=dense_mass, init_strategy=init_strategy)
+    depth = MAX_TREE_DEPTH if warmup_tree_depth is None else (int(warmup_tree_depth), MAX_TREE_DEPTH)
+    kernel = NUTS(fn, dense_mass=dense_mass, init_strategy=init_strategy, max_tree_depth=depth)
     mcmc = MCMC(kernel, num_warmup=warmup, num_samples=draws, num_chains=chains, chain_method=method,
                 progress_bar=progress, thinning=thinning)
     drop = tuple(f"~z.{name}" for name in exclude_sites)
@@ -205,12 +226,29 @@ def _end_with_parent() -> None:
         pass
 
 
-def _one_chain(job_bytes: bytes, chain: int, core: int | None, key, results) -> None:
-    """Worker of :func:`run_chains_in_processes`: one chain (numpyro, ``num_chains=1``) with
-    the chain's own key, pinned to one core; puts (chain, "ok", pickled (draws, stats),
-    seconds) or (chain, "error", traceback, 0) on ``results``. The job arrives pickled and is
-    loaded after ``configure_jax`` (its jax arrays would start jax, in float32); the result
-    is pickled here, so that a failure to pickle it is reported like any other."""
+#: latent dimension up to which a chain process runs its chains vectorised (one jax.vmap,
+#: in lockstep) rather than one after another. Measured per leapfrog step inside NUTS, one
+#: core (``taskset -c 0``), after warmup, 2 chains vectorised against 1 chain: 1.56 against
+#: 1.73 ms at 128² Matérn 3/2 q 0.98 (4 797 coefficients), 1.48 against 1.65 ms at 256²
+#: squared exponential q 0.999 (1 765); at 65 538 latent values vectorising cost more than
+#: it saved (``chain_layout``'s docstring). Lockstep wastes nothing when every chain's trees
+#: have the same depth, as with the pilot map (31 steps per draw).
+GROUP_VECTORIZE_UPTO = 6000
+
+
+def chain_groups(chains: int, slots: int) -> list[list[int]]:
+    """Chains 0..chains−1 split into at most ``slots`` consecutive groups of near-equal size
+    (one group per chain process)."""
+    return [list(map(int, g)) for g in np.array_split(np.arange(chains), max(1, min(chains, slots)))]
+
+
+def _chain_group(job_bytes: bytes, group: list[int], core: int | None, keys, results) -> None:
+    """Worker of :func:`run_chains_in_processes`: the chains ``group`` with their own keys
+    (rows of ``keys``), pinned to one core; vectorised when the job says so, else one after
+    another (numpyro's layouts, ``num_chains=len(group)``). Puts (group, "ok", pickled (draws,
+    stats), seconds) or (group, "error", traceback, 0) on ``results``. The job arrives pickled
+    and is loaded after ``configure_jax`` (its jax arrays would start jax, in float32); the
+    result is pickled here, so that a failure to pickle it is reported like any other."""
     import pickle
     import time
     import traceback
@@ -225,31 +263,40 @@ def _one_chain(job_bytes: bytes, chain: int, core: int | None, key, results) -> 
         import jax.numpy as jnp
 
         job = pickle.loads(job_bytes)
-        mcmc = _sample(job["fn"], job["inputs"], jnp.asarray(key, dtype=jnp.uint32), job["dense_mass"],
-                       job["init_strategy"], job["warmup"], job["draws"], job["thinning"], job["exclude_sites"],
-                       1, "sequential", job["bar"] and core == job["bar_core"])
-        draws = {k: np.asarray(v)[None] for k, v in jax.device_get(mcmc.get_samples()).items()}
-        extra = jax.device_get(mcmc.get_extra_fields())
-        stats = {"diverging": np.asarray(extra["diverging"])[None], "n_steps": np.asarray(extra["num_steps"])[None]}
+        n = len(group)
+        key = jnp.asarray(keys if n > 1 else keys[0], dtype=jnp.uint32)  # 2-D: one key per chain
+        method = "vectorized" if job["vectorize"] and n > 1 else "sequential"
+        mcmc = _sample(job["fn"], job["inputs"], key, job["dense_mass"], job["init_strategy"], job["warmup"],
+                       job["draws"], job["thinning"], job["exclude_sites"], n, method,
+                       job["bar"] and core == job["bar_core"], job["warmup_tree_depth"])
+        draws = {k: np.asarray(v) for k, v in jax.device_get(mcmc.get_samples(group_by_chain=True)).items()}
+        extra = jax.device_get(mcmc.get_extra_fields(group_by_chain=True))
+        stats = {"diverging": np.asarray(extra["diverging"]), "n_steps": np.asarray(extra["num_steps"])}
         payload = pickle.dumps((draws, stats), protocol=pickle.HIGHEST_PROTOCOL)
         del draws, mcmc
-        results.put((chain, "ok", payload, time.perf_counter() - t0))
+        results.put((tuple(group), "ok", payload, time.perf_counter() - t0))
     except BaseException:  # reported to the parent, which raises
-        results.put((chain, "error", traceback.format_exc(), 0.0))
+        results.put((tuple(group), "error", traceback.format_exc(), 0.0))
+
+
+def _chain_names(group) -> str:
+    return f"chain {group[0] + 1}" if len(group) == 1 else f"chains {group[0] + 1}–{group[-1] + 1}"
 
 
 def run_chains_in_processes(fn, inputs: dict, sampler, progress: bool = True, dense_mass=False, dims=None,
-                            coords=None, init_strategy=None, exclude_sites=(), thinning: int = 1):
-    """NUTS with each chain in its own process (``chain_layout``'s "processes"): at most one
-    chain per usable core at a time, each process pinned to its core. Chain c uses the c-th
-    of ``jax.random.split(PRNGKey(seed), chains)``, as numpyro's one-after-another chains
-    do, so the draws are theirs up to floating-point reduction order. Why processes: XLA
-    grows memory when several executions run at once in one process on grid-sized arrays
-    (``chain_layout``), while one execution per process stays flat. Each process starts its
-    own jax and compiles the sampler (the persistent compilation cache serves the later
-    ones). ``fn`` and ``inputs`` must pickle (module-level model functions; the field
-    kernels rebuild their jitted maths on unpickling); processes are spawned, so a script
-    of the user's that fits must guard its entry point (``if __name__ == "__main__":``)."""
+                            coords=None, init_strategy=None, exclude_sites=(), thinning: int = 1,
+                            warmup_tree_depth: int | None = None, n_latent: int = 0):
+    """NUTS with the chains in separate processes (``chain_layout``'s "processes"): one process
+    per usable core, each pinned to its core and running a group of chains
+    (:func:`chain_groups`) — vectorised when ``n_latent`` ≤ GROUP_VECTORIZE_UPTO, else one
+    after another — so each process starts jax and compiles the sampler once. Chain c uses
+    the c-th of ``jax.random.split(PRNGKey(seed), chains)``, as numpyro's one-after-another
+    chains do, so the draws are theirs up to floating-point reduction order. Why processes:
+    XLA grows memory when several executions run at once in one process on grid-sized
+    arrays (``chain_layout``), while one execution per process stays flat. ``fn`` and
+    ``inputs`` must pickle (module-level model functions; the field kernels rebuild their
+    jitted maths on unpickling); processes are spawned, so a script of the user's that fits
+    must guard its entry point (``if __name__ == "__main__":``)."""
     import multiprocessing as mp
     import pickle
     import queue
@@ -264,16 +311,18 @@ def run_chains_in_processes(fn, inputs: dict, sampler, progress: bool = True, de
         cores = sorted(os.sched_getaffinity(0))
     except (AttributeError, OSError):
         cores = [None] * usable_cores()
-    slots = cores[:max(1, min(chains, len(cores)))]
+    groups = chain_groups(chains, len(cores))
     root = jax.random.PRNGKey(sampler.seed)
     keys = np.asarray(jax.random.split(root, chains) if chains > 1 else root[None])  # numpyro: one chain, no split
     show = progress and sampler.progress
+    vectorize = 0 < n_latent <= GROUP_VECTORIZE_UPTO
     job = pickle.dumps({"fn": fn, "inputs": inputs, "dense_mass": dense_mass, "init_strategy": init_strategy,
                         "exclude_sites": tuple(exclude_sites), "thinning": thinning, "warmup": sampler.warmup,
-                        "draws": sampler.draws, "bar": show, "bar_core": slots[0]})
+                        "draws": sampler.draws, "bar": show, "bar_core": cores[0],
+                        "warmup_tree_depth": warmup_tree_depth, "vectorize": vectorize})
     ctx = mp.get_context("spawn")  # jax is not fork-safe
     results = ctx.Queue()
-    pending, running, free = list(range(chains)), {}, list(slots)
+    running = {}
     posterior: dict = {}
     stats: dict = {}
     t0 = time.perf_counter()
@@ -282,45 +331,43 @@ def run_chains_in_processes(fn, inputs: dict, sampler, progress: bool = True, de
         if show:
             print(msg, file=sys.stderr, flush=True)
 
-    say(f"{chains} chains in separate processes, {len(slots)} at a time (one per core); the progress bar "
-        f"follows the chains on the first core")
+    how = "vectorised" if vectorize else "one after another"
+    say(f"{chains} chains in {len(groups)} processes (one per core; {how} within a process); the "
+        f"progress bar follows the process on the first core")
     try:
-        while pending or running:
-            while pending and free:
-                c, core = pending.pop(0), free.pop(0)
-                proc = ctx.Process(target=_one_chain, args=(job, c, core, keys[c], results), daemon=True)
-                proc.start()
-                running[c] = (proc, core)
+        for group, core in zip(groups, cores):
+            proc = ctx.Process(target=_chain_group, args=(job, group, core, keys[group], results), daemon=True)
+            proc.start()
+            running[tuple(group)] = proc
+        while running:
             try:
-                c, status, payload, secs = results.get(timeout=2.0)
+                group, status, payload, secs = results.get(timeout=2.0)
             except queue.Empty:
-                ended = [(c, proc.exitcode) for c, (proc, _) in running.items() if proc.exitcode is not None]
+                ended = [(g, proc.exitcode) for g, proc in running.items() if proc.exitcode is not None]
                 if not ended:
                     continue
                 try:  # a result written just before its process ended
-                    c, status, payload, secs = results.get(timeout=3.0)
+                    group, status, payload, secs = results.get(timeout=3.0)
                 except queue.Empty:  # ended without a word (killed, out of memory)
-                    raise RuntimeError(f"chain {ended[0][0] + 1}'s process ended with exit code {ended[0][1]} "
-                                       "before returning its draws (out of memory?)") from None
-            proc, core = running.pop(c)
-            proc.join()
-            free.append(core)
+                    raise RuntimeError(f"the process of {_chain_names(ended[0][0])} ended with exit code "
+                                       f"{ended[0][1]} before returning its draws (out of memory?)") from None
+            running.pop(group).join()
             if status != "ok":
-                raise RuntimeError(f"chain {c + 1} failed in its process:\n{payload}")
+                raise RuntimeError(f"{_chain_names(group)} failed in its process:\n{payload}")
             draws, st = pickle.loads(payload)
             del payload
-            for group, part in ((posterior, draws), (stats, st)):
-                for k, v in part.items():  # filled chain by chain: one chain's copy in transit at most
-                    if k not in group:
-                        group[k] = np.empty((chains,) + v.shape[1:], v.dtype)
-                    group[k][c] = v[0]
+            for part_all, part in ((posterior, draws), (stats, st)):
+                for k, v in part.items():  # filled group by group: one group's copy in transit at most
+                    if k not in part_all:
+                        part_all[k] = np.empty((chains,) + v.shape[1:], v.dtype)
+                    part_all[k][list(group)] = v
             del draws
-            say(f"chain {c + 1} of {chains} done in {secs:.0f} s ({float(np.mean(st['n_steps'])):.1f} leapfrog "
-                f"steps per draw; {time.perf_counter() - t0:.0f} s since the start)")
+            say(f"{_chain_names(group)} of {chains} done in {secs:.0f} s ({float(np.mean(st['n_steps'])):.1f} "
+                f"leapfrog steps per draw; {time.perf_counter() - t0:.0f} s since the start)")
     finally:
-        for proc, _ in running.values():
+        for proc in running.values():
             proc.terminate()
-        for proc, _ in running.values():
+        for proc in running.values():
             proc.join(timeout=10.0)
             if proc.exitcode is None:
                 proc.kill()

@@ -370,11 +370,25 @@ def scipy_fast(n: int) -> int:
     return int(scipy.fft.next_fast_len(n, real=True))
 
 
+#: deepest NUTS tree during warmup for a truncated field with the pilot map (sampling keeps
+#: depth 10). With the map, sampling takes 31 leapfrog steps per draw (depth 5) in every
+#: benchmark case, but the first warmup window, before the mass matrix is adapted (identity:
+#: σ and ℓ have posterior sd ≈ 0.1 and correlate, so the step size is 0.01–0.06), ran
+#: 100–250 steps per iteration for its ~100 iterations. Measured (warmup 200, 1 chain, seeds
+#: 1 and 2, 128² Matérn 3/2 weak, q 0.98): steps per 25 warmup iterations 3 200–5 000 in the
+#: first window uncapped, 1 200–1 500 at depth 6, 580–750 at depth 5; the adapted mass
+#: matrices and step sizes (0.17–0.29) alike. 4 × (1000 + 1000), ``bench/bench_lgcp.py --one
+#: 128 matern32 weak --variance-kept 0.98``, one session: uncapped 200.9 s, depth 6 187.4 s,
+#: depth 5 179.2 s; min cell ESS 4219, 3987, 4043; R-hat ≤ 1.007 in all three.
+WARMUP_TREE_DEPTH = 5
+
+
 def setup(stats, prior: dict, model_spec, use_pad: bool | None = None):
     from .registry import ModelSetup
 
     kernel = model_spec.options.get("kernel", "matern32")
     variance_kept = model_spec.options.get("variance_kept", 1.0)
+    warmup_depth = None
     _check_variance_kept(variance_kept)
     obs = np.flatnonzero(stats.exposure > 0)
     a, b = gamma_prior(prior["rate_median"], prior["rate_log_sd"], stats.window_total)
@@ -387,6 +401,8 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None):
             basis, counts_all, exposure_all, lo, hi, prior["sigma_scale"])
         kernels = TruncatedFieldKernels(basis)
         n_latent, dense_mass, exclude = basis.n_latent, [("sigma", "ls_unit")], ["u_modes"]
+        if report["truncation"]["mode_preconditioner"]["form"] != "identity":
+            warmup_depth = WARMUP_TREE_DEPTH
     else:
         spectrum, report, lo, hi = plan(stats, kernel, prior)
         pre = build_preconditioner(spectrum, stats.grid.shape, counts_all, exposure_all,
@@ -411,6 +427,7 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None):
         "n_latent": n_latent, "modes": basis,
         "dense_mass": dense_mass,
         "exclude_sites": exclude,
+        "warmup_tree_depth": warmup_depth,
         # ρ₀ (sampled only with per-scan terms) starts at its conditional mean given a flat field
         "init_strategy": init_to_value(values={"sigma": max(pre.pilot["sigma"], 0.05),
                                                "ls_unit": u_pilot[: lo.size],
