@@ -152,7 +152,8 @@ def _run(kind, setup, chains, warmup, draws, dense_baseline=False, setup_s=0.0):
         fn, inputs = kind.fn, setup.inputs
         kw = dict(init_strategy=setup.extra["init_strategy"], dense_mass=setup.extra["dense_mass"],
                   exclude_sites=setup.extra["exclude_sites"], n_latent=setup.extra["n_latent"],
-                  n_cells=len(setup.inputs["window_area"]), warmup_tree_depth=setup.extra.get("warmup_tree_depth"))
+                  n_cells=len(setup.inputs["window_area"]), warmup_tree_depth=setup.extra.get("warmup_tree_depth"),
+                  vectorize_groups=bool(setup.extra.get("vectorize_chain_groups")))
     # the production thinning: kept per-cell draws within the default budget (fitting.fit)
     thinning = thin_for_budget(draws, len(setup.inputs["window_area"]) * chains, DRAWS_BUDGET_MB)
     t = time.perf_counter()
@@ -359,8 +360,15 @@ def main():
     ap.add_argument("--variance-kept", type=float, default=1.0,
                     help="spectral truncation: fraction of the field's prior variance kept (1: every torus mode)")
     ap.add_argument("--gradient", action="store_true", help="with --one: part (d) for that configuration")
+    ap.add_argument("--warmup-depth", type=int, default=None,
+                    help="cap NUTS trees at this depth during warmup where the LGCP has its pilot map "
+                         "(models.lgcp.WARMUP_TREE_DEPTH; default: that constant, uncapped)")
     ap.add_argument("--parts", default="abcd")
     args = ap.parse_args()
+    if args.warmup_depth is not None:
+        from sceneprior.models import lgcp
+
+        lgcp.WARMUP_TREE_DEPTH = args.warmup_depth
     if args.one:
         return gradient_cost(args) if args.gradient else one(args)
     if args.quick:
@@ -370,6 +378,8 @@ def main():
         sizes = args.sizes or [32, 64, 128, 256]
     base = [sys.executable, __file__, "--chains", str(args.chains), "--warmup", str(args.warmup),
             "--draws", str(args.draws), "--variance-kept", str(args.variance_kept)]
+    if args.warmup_depth is not None:
+        base += ["--warmup-depth", str(args.warmup_depth)]
 
     def call(*extra, scans=None):
         cmd = base + ["--scans", str(scans or args.scans)] + list(extra)

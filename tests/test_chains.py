@@ -27,6 +27,10 @@ def _model_with_noise(y):
     numpyro.sample("y", dist.Normal(mu, 1.0), obs=y)
 
 
+def _iid50():
+    numpyro.sample("x", dist.Normal(0.0, 1.0).expand([50]).to_event(1))
+
+
 def _model_that_dies(y):
     import os
 
@@ -49,10 +53,10 @@ def test_layouts_by_size_cores_and_devices(monkeypatch):
     # few latent values on a large grid (spectral truncation): the grid decides
     assert inference.chain_layout(big, 4, n_cells=inference.PARALLEL_BELOW) == "processes"
     assert inference.chain_layout(big, 4, n_cells=64 * 64) == "parallel"
-    # chain processes vectorise their groups up to GROUP_VECTORIZE_UPTO latent values: all
-    # chains hold state at once; above it one chain per core at a time
-    assert inference.chains_at_once(big, 4, n_cells=inference.PARALLEL_BELOW) == 4
-    assert inference.chains_at_once(inference.PARALLEL_BELOW, 4) == 2
+    # chain processes: one chain per core holds state at a time, or all when the processes
+    # vectorise their groups (the model says its chains are alike)
+    assert inference.chains_at_once(big, 4, n_cells=inference.PARALLEL_BELOW) == 2
+    assert inference.chains_at_once(big, 4, n_cells=inference.PARALLEL_BELOW, vectorize_groups=True) == 4
     assert inference.chain_groups(4, 2) == [[0, 1], [2, 3]]
     assert inference.chain_groups(3, 2) == [[0, 1], [2]]
     assert inference.chain_groups(1, 2) == [[0]]
@@ -90,19 +94,19 @@ def test_parallel_draws_equal_sequential_and_posterior(monkeypatch):
 
 @pytest.mark.parametrize("vectorise", [True, False])
 def test_chains_in_processes_equal_sequential(monkeypatch, vectorise):
-    """Chains in separate processes (large grids), three chains: on two cores chains 1–2 in
-    one process and chain 3 in the other (on one core all three in one), vectorised or one
-    after another within a process; same keys as numpyro's one-after-another chains, so the
-    same draws; the excluded site is dropped and the sample statistics kept."""
+    """Chains in separate processes (large grids), three chains in two processes: chains 1–2
+    in one, vectorised or one after another, chain 3 in the other; same keys (and warmup
+    tree depth) as numpyro's one-after-another chains, so the same draws; the excluded site
+    is dropped and the sample statistics kept."""
     monkeypatch.setattr(inference, "chain_layout", lambda n, c=1, n_cells=0: inference.PROCESSES)
-    if not vectorise:
-        monkeypatch.setattr(inference, "GROUP_VECTORIZE_UPTO", inference.SEQUENTIAL_FROM - 1)
+    monkeypatch.setattr(inference, "chain_cores", lambda: [None, None])  # two processes, unpinned
     y = jnp.asarray(np.random.default_rng(5).normal(-0.5, 1.0, 30))
     smp = _Sampler()
     smp.chains, smp.warmup, smp.draws = 3, 150, 200
     idata = inference.run_nuts(_model_with_noise, {"y": y}, smp, progress=False, n_latent=inference.SEQUENTIAL_FROM,
-                               exclude_sites=("noise",), thinning=2)
-    ref = MCMC(NUTS(_model_with_noise, init_strategy=numpyro.infer.init_to_median(num_samples=15)),
+                               exclude_sites=("noise",), thinning=2, warmup_tree_depth=2, vectorize_groups=vectorise)
+    ref = MCMC(NUTS(_model_with_noise, init_strategy=numpyro.infer.init_to_median(num_samples=15),
+                    max_tree_depth=(2, 10)),
                num_warmup=smp.warmup, num_samples=smp.draws, num_chains=smp.chains, chain_method="sequential",
                progress_bar=False, thinning=2)
     ref.run(jax.random.PRNGKey(smp.seed), y=y, extra_fields=("num_steps",))
@@ -122,7 +126,15 @@ def test_chains_in_processes_equal_sequential(monkeypatch, vectorise):
 
 def test_warmup_tree_depth_reaches_the_sampler(monkeypatch):
     """A warmup depth caps NUTS's trees during warmup only (numpyro takes (warmup, sampling)
-    depths); without one both phases keep numpyro's default depth 10."""
+    depths); without one both phases keep numpyro's default depth 10. A tree of depth d
+    has at most 2^d − 1 leapfrog steps (Hoffman & Gelman 2014, §3): capped warmup
+    iterations stay within it, sampling iterations on a 50-dimensional normal go beyond."""
+    d = 2
+    mc = MCMC(NUTS(_iid50, max_tree_depth=(d, 10)), num_warmup=150, num_samples=150, progress_bar=False)
+    mc.warmup(jax.random.PRNGKey(0), collect_warmup=True, extra_fields=("num_steps",))
+    assert int(np.max(mc.get_extra_fields()["num_steps"])) <= 2**d - 1
+    mc.run(mc.post_warmup_state.rng_key, extra_fields=("num_steps",))
+    assert int(np.max(mc.get_extra_fields()["num_steps"])) > 2**d - 1
     seen = []
 
     class Recording(NUTS):
@@ -141,12 +153,13 @@ def test_warmup_tree_depth_reaches_the_sampler(monkeypatch):
 
 def test_chain_process_failure_is_reported(monkeypatch):
     monkeypatch.setattr(inference, "chain_layout", lambda n, c=1, n_cells=0: inference.PROCESSES)
+    monkeypatch.setattr(inference, "chain_cores", lambda: [None, None])  # two processes, unpinned
     smp = _Sampler()
-    smp.chains, smp.warmup, smp.draws = 2, 5, 5
-    with pytest.raises(RuntimeError, match=r"(?s)chain [12] failed in its process:\n.*TypeError"):
+    smp.chains, smp.warmup, smp.draws = 3, 5, 5  # groups: chains 1–2, chain 3
+    with pytest.raises(RuntimeError, match=r"(?s)(chains 1–2|chain 3) failed in its process:\n.*TypeError"):
         inference.run_nuts(_model, {"y": "not an array"}, smp, progress=False, n_latent=inference.SEQUENTIAL_FROM)
     # a process that dies without a word (killed, out of memory) is reported, not waited for
-    with pytest.raises(RuntimeError, match=r"the process of chain [12] ended with exit code 3"):
+    with pytest.raises(RuntimeError, match=r"the process of (chains 1–2|chain 3) ended with exit code 3"):
         inference.run_nuts(_model_that_dies, {"y": jnp.zeros(3)}, smp, progress=False,
                            n_latent=inference.SEQUENTIAL_FROM)
 
@@ -171,3 +184,15 @@ def test_memory_check_counts_only_running_chains(monkeypatch):
         monkeypatch.setattr(inference, "chain_layout", lambda n, c=1, n_cells=0, layout=layout: layout)
         with pytest.raises(InputError, match="more than this machine can hold"):
             fitting._check_memory(setup, stats, smp, "spec")
+    # chain processes also hold their chains' kept draws twice more: draws that fit three
+    # times (sequential) do not fit five times plus the processes' allowance
+    monkeypatch.setattr(inference, "usable_cores", lambda: 2)
+    small = SimpleNamespace(extra={"n_latent": 1000})
+    # 4 chains × 10 kept draws × 4 B: 480 B per cell held three times (0.8 of the allowance),
+    # 800 B per cell in processes (4/3 of it, besides 2 GB for the two processes)
+    cells = SimpleNamespace(grid=SimpleNamespace(n_cells=int(0.6 * total / 600)))
+    monkeypatch.setattr(inference, "chain_layout", lambda n, c=1, n_cells=0: "sequential")
+    fitting._check_memory(small, cells, smp, "spec")
+    monkeypatch.setattr(inference, "chain_layout", lambda n, c=1, n_cells=0: inference.PROCESSES)
+    with pytest.raises(InputError, match="more than this machine can hold"):
+        fitting._check_memory(small, cells, smp, "spec")

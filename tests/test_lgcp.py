@@ -71,7 +71,8 @@ def machinery():
                                  "length_scale_max": 300.0}, "test")
     stats0 = _stats(np.full(N * N, int(PER_CELL)))
     setup = kind.setup(stats0, prior, ModelSpec("lgcp", {}, {"kernel": "matern32"}), use_pad=True)
-    assert setup.extra["warmup_tree_depth"] is None  # full torus: warmup trees uncapped
+    # full torus: warmup trees uncapped, chain groups one after another
+    assert setup.extra["warmup_tree_depth"] is None and setup.extra["vectorize_chain_groups"] is False
     inp = dict(setup.inputs)
     kernels = inp.pop("kernels")
     model = partial(lgcp.lgcp_model, kernels=kernels)

@@ -147,8 +147,9 @@ def test_model_prior_on_the_field_is_the_truncated_field(monkeypatch, band):
     kern, pre = setup.inputs["kernels"], setup.inputs["precond"]
     rep = setup.extra["embedding"]["truncation"]["mode_preconditioner"]
     assert rep["rank"] > 0
-    # with the map, warmup trees are capped (sampling keeps numpyro's depth 10)
+    # with the map: the model's warmup depth (uncapped by default) and vectorised chain groups
     assert setup.extra["warmup_tree_depth"] == lgcp.WARMUP_TREE_DEPTH
+    assert setup.extra["vectorize_chain_groups"] is True
     assert ("low_rank_vectors" in pre) == (band == 4.0) and ("dense" in pre) == (band == 1.5), rep
     inp = setup.inputs
     basis = setup.extra["modes"]

@@ -90,14 +90,17 @@ def _check_memory(setup, stats, smp, source: str, thinning: int = 1) -> None:
     if not n_latent:
         return
     kept = -(-smp.draws // thinning)
-    running = chains_at_once(n_latent, smp.chains, stats.grid.n_cells)
+    running = chains_at_once(n_latent, smp.chains, stats.grid.n_cells,
+                             bool(setup.extra.get("vectorize_chain_groups")))
     need = smp.chains * 3 * kept * stats.grid.n_cells * 4.0 + running * 12 * n_latent * 8.0
     if chain_layout(n_latent, smp.chains, stats.grid.n_cells) == PROCESSES:
         # each chain process (one per usable core): its own jax and compiled sampler, and
-        # its chains' kept draws once more on their way back (one 256² chain process alone
-        # peaked at 1.38 GB, set-up included, in bench/bench_lgcp.py --one 256
-        # squared_exponential strong --chains 1 --warmup 300 --draws 300 --variance-kept 0.999)
-        need += min(smp.chains, usable_cores()) * CHAIN_PROCESS_BYTES + smp.chains * kept * stats.grid.n_cells * 4.0
+        # its chains' kept draws twice more (numpyro stacks a group's chains; the pickle on
+        # the way back). One 256² chain process alone peaked at 1.38 GB, set-up included,
+        # in bench/bench_lgcp.py --one 256 squared_exponential strong --chains 1 --warmup 300
+        # --draws 300 --variance-kept 0.999
+        need += (min(smp.chains, usable_cores()) * CHAIN_PROCESS_BYTES
+                 + 2 * smp.chains * kept * stats.grid.n_cells * 4.0)
     try:
         total = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
     except (ValueError, OSError, AttributeError):
@@ -240,7 +243,8 @@ def fit(spec: FitSpec, progress: bool = True, log=print) -> FitResult:
                          dims=setup.extra.get("dims"), coords=setup.extra.get("coords"),
                          exclude_sites=setup.extra.get("exclude_sites", ()), thinning=thinning,
                          n_latent=int(setup.extra.get("n_latent", 0)), n_cells=stats.grid.n_cells,
-                         warmup_tree_depth=setup.extra.get("warmup_tree_depth"))
+                         warmup_tree_depth=setup.extra.get("warmup_tree_depth"),
+                         vectorize_groups=bool(setup.extra.get("vectorize_chain_groups")))
         if setup.extra.get("complete"):  # exact conditional draws of integrated-out parameters
             idata = setup.extra["complete"](idata, stats, setup, smp.seed)
     t_mcmc = time.perf_counter()

@@ -106,16 +106,17 @@ def chain_layout(n_latent: int, chains: int = 1, n_cells: int = 0) -> str:
     and stayed at 1.4–2.4 GB one chain after another. Larger fields, and more chains than
     jax has devices, run their chains in separate processes instead ("processes",
     :func:`run_chains_in_processes`), one per usable core, each with its group of chains
-    (vectorised up to GROUP_VECTORIZE_UPTO latent values): one XLA execution per process
-    stays flat. Measured, 256² squared exponential, weak data, q = 0.999, 4 × (1000 + 1000),
-    ``--one 256 squared_exponential weak --variance-kept 0.999``: one chain per process
+    (vectorised when the model declares its chains alike, ``vectorize_groups``): one XLA
+    execution per process stays flat. Measured, 256² squared exponential, weak data,
+    q = 0.999, 4 × (1000 + 1000), ``--one 256 squared_exponential weak --variance-kept
+    0.999``: one chain per process
     (four processes, two at a time) 286.7 s and 3.32 GB for the process tree (RSS summed),
     the same min cell ESS (1239) and R-hat (1.0073) as one after another in 461–559 s; in a
-    later session 239.6 s with the float32 map, and 175.5 s (3.63 GB) with two processes of
-    two vectorised chains and warmup trees capped (``models.lgcp.WARMUP_TREE_DEPTH``).
-    Below PARALLEL_BELOW the parallel layout stays: 128² Matérn 3/2 weak, q = 0.98,
-    4 × (1000 + 1000), warmup trees capped, took 179.2 s in parallel and 190.8 s in two
-    processes of two vectorised chains (forced; each process starts jax and compiles).
+    later session 239.6 s with the float32 map, and 207.8 s (3.54 GB) with two processes of
+    two vectorised chains. Below PARALLEL_BELOW the parallel layout stays: 128² Matérn 3/2
+    weak, q = 0.98, 4 × (1000 + 1000), with warmup trees capped at depth 5 (bench
+    ``--warmup-depth 5``), took 179.2 s in parallel and 190.8 s in two processes of two
+    vectorised chains (forced; each process starts jax and compiles).
     One core, or one chain: one after another.
 
     Vectorised chains (one jax.vmap over chains) turn NUTS's tree-building branches into
@@ -124,8 +125,8 @@ def chain_layout(n_latent: int, chains: int = 1, n_cells: int = 0) -> str:
     14.7 ms per step for 4 vectorised chains against 2.68 ms for one chain (measured,
     ``bench/bench_lgcp.py`` part (d) does the same), while the full-torus field gradient
     costs the same per chain either way (a truncated field's gradient is cheaper per chain
-    when batched, hence the vectorised groups of :func:`run_chains_in_processes` up to
-    GROUP_VECTORIZE_UPTO latent values). Measured on the LGCP (Matérn 3/2, weak data, 4 × (150 + 150)): 64²
+    when batched, hence the vectorised groups of :func:`run_chains_in_processes` where the
+    model asks for them). Measured on the LGCP (Matérn 3/2, weak data, 4 × (150 + 150)): 64²
     cells 91.0 s sequential against 195.5 s vectorised; 32² (4 × (300 + 300)) 51.2 s
     against 60.2 s. Small models (a handful of parameters) keep the vectorised layout,
     where one pass serves every chain. Asks jax for its device count, which starts jax's
@@ -148,15 +149,16 @@ PROCESSES = "processes"
 CHAIN_PROCESS_BYTES = 1.0e9
 
 
-def chains_at_once(n_latent: int, chains: int, n_cells: int = 0) -> int:
+def chains_at_once(n_latent: int, chains: int, n_cells: int = 0, vectorize_groups: bool = False) -> int:
     """How many chains hold their sampler state at the same time under ``chain_layout``
     (all when vectorised or parallel, and in separate processes when these vectorise their
-    groups; one per usable core when the processes run their chains one after another; one
-    when all run one after another); the memory checks in ``fitting`` count this many."""
+    groups, ``vectorize_groups``; one per usable core when the processes run their chains
+    one after another; one when all run one after another); the memory checks in
+    ``fitting`` count this many."""
     layout = chain_layout(n_latent, chains, n_cells)
     if layout == "sequential":
         return 1
-    if layout == PROCESSES and n_latent > GROUP_VECTORIZE_UPTO:
+    if layout == PROCESSES and not vectorize_groups:
         return min(chains, usable_cores())
     return chains
 
@@ -164,17 +166,19 @@ def chains_at_once(n_latent: int, chains: int, n_cells: int = 0) -> int:
 def run_nuts(fn, inputs: dict, sampler, progress: bool = True, dense_mass: bool = False,
              dims: dict | None = None, coords: dict | None = None, init_strategy=None,
              exclude_sites=(), thinning: int = 1, n_latent: int = 0, n_cells: int = 0,
-             warmup_tree_depth: int | None = None):
+             warmup_tree_depth: int | None = None, vectorize_groups: bool = False):
     """Sample ``fn(**inputs)`` with NUTS; returns InferenceData whose sample_stats hold the
     leapfrog steps and divergences per draw. ``exclude_sites``: latent sites not kept (a
     field's white noise; its deterministic images are kept instead); ``thinning``: keep
     every n-th draw (memory budget of per-cell draws); ``n_latent``: the model's latent
     dimension and ``n_cells`` its grid's cells, which pick the chain layout (:func:`chain_layout`);
     ``warmup_tree_depth``: the deepest NUTS tree during warmup (None: depth 10, as in
-    sampling, which always keeps it). A model sets it when its sampler is known
-    to need shallow trees once adapted: the first warmup window, before the mass matrix is
-    adapted, otherwise spends 100–250 leapfrog steps per iteration on directions the
-    adaptation is about to rescale (``models.lgcp.WARMUP_TREE_DEPTH`` says what was measured)."""
+    sampling, which always keeps it) — a cap saves the long trees of the first warmup
+    window but can spoil the mass-matrix adaptation (``models.lgcp.WARMUP_TREE_DEPTH`` says
+    what was measured);
+    ``vectorize_groups``: the model's chains are alike in cost per iteration (the same tree
+    depths), so the chain processes of the "processes" layout may run theirs vectorised
+    (:func:`run_chains_in_processes`)."""
     configure_jax()
     import arviz as az
     import jax
@@ -188,7 +192,7 @@ def run_nuts(fn, inputs: dict, sampler, progress: bool = True, dense_mass: bool 
         return run_chains_in_processes(fn, inputs, sampler, progress=progress, dense_mass=dense_mass,
                                        dims=dims, coords=coords, init_strategy=init_strategy,
                                        exclude_sites=exclude_sites, thinning=thinning,
-                                       warmup_tree_depth=warmup_tree_depth, n_latent=n_latent)
+                                       warmup_tree_depth=warmup_tree_depth, vectorize_groups=vectorize_groups)
     mcmc = _sample(fn, inputs, jax.random.PRNGKey(sampler.seed), dense_mass, init_strategy, sampler.warmup,
                    sampler.draws, thinning, exclude_sites, sampler.chains, layout, progress and sampler.progress,
                    warmup_tree_depth)
@@ -226,14 +230,13 @@ def _end_with_parent() -> None:
         pass
 
 
-#: latent dimension up to which a chain process runs its chains vectorised (one jax.vmap,
-#: in lockstep) rather than one after another. Measured per leapfrog step inside NUTS, one
-#: core (``taskset -c 0``), after warmup, 2 chains vectorised against 1 chain: 1.56 against
-#: 1.73 ms at 128² Matérn 3/2 q 0.98 (4 797 coefficients), 1.48 against 1.65 ms at 256²
-#: squared exponential q 0.999 (1 765); at 65 538 latent values vectorising cost more than
-#: it saved (``chain_layout``'s docstring). Lockstep wastes nothing when every chain's trees
-#: have the same depth, as with the pilot map (31 steps per draw).
-GROUP_VECTORIZE_UPTO = 6000
+def chain_cores() -> list:
+    """The cores chain processes are pinned to, one process each (None: no pinning, where
+    the affinity cannot be read)."""
+    try:
+        return sorted(os.sched_getaffinity(0))
+    except (AttributeError, OSError):
+        return [None] * usable_cores()
 
 
 def chain_groups(chains: int, slots: int) -> list[list[int]]:
@@ -268,7 +271,7 @@ def _chain_group(job_bytes: bytes, group: list[int], core: int | None, keys, res
         method = "vectorized" if job["vectorize"] and n > 1 else "sequential"
         mcmc = _sample(job["fn"], job["inputs"], key, job["dense_mass"], job["init_strategy"], job["warmup"],
                        job["draws"], job["thinning"], job["exclude_sites"], n, method,
-                       job["bar"] and core == job["bar_core"], job["warmup_tree_depth"])
+                       job["bar"] and group[0] == 0, job["warmup_tree_depth"])
         draws = {k: np.asarray(v) for k, v in jax.device_get(mcmc.get_samples(group_by_chain=True)).items()}
         extra = jax.device_get(mcmc.get_extra_fields(group_by_chain=True))
         stats = {"diverging": np.asarray(extra["diverging"]), "n_steps": np.asarray(extra["num_steps"])}
@@ -285,13 +288,15 @@ def _chain_names(group) -> str:
 
 def run_chains_in_processes(fn, inputs: dict, sampler, progress: bool = True, dense_mass=False, dims=None,
                             coords=None, init_strategy=None, exclude_sites=(), thinning: int = 1,
-                            warmup_tree_depth: int | None = None, n_latent: int = 0):
+                            warmup_tree_depth: int | None = None, vectorize_groups: bool = False):
     """NUTS with the chains in separate processes (``chain_layout``'s "processes"): one process
     per usable core, each pinned to its core and running a group of chains
-    (:func:`chain_groups`) — vectorised when ``n_latent`` ≤ GROUP_VECTORIZE_UPTO, else one
-    after another — so each process starts jax and compiles the sampler once. Chain c uses
-    the c-th of ``jax.random.split(PRNGKey(seed), chains)``, as numpyro's one-after-another
-    chains do, so the draws are theirs up to floating-point reduction order. Why processes:
+    (:func:`chain_groups`) — vectorised when ``vectorize_groups``, else one after another —
+    so each process starts jax and compiles the sampler once. Chain c uses the c-th of
+    ``jax.random.split(PRNGKey(seed), chains)``, as numpyro's one-after-another chains do:
+    one after another within a process, the draws are theirs; vectorised, they agree up to
+    rounding at first (1.3 × 10⁻⁵ in tests/test_chains.py's toy model) and drift apart over
+    long runs, like any two chains. Why processes:
     XLA grows memory when several executions run at once in one process on grid-sized
     arrays (``chain_layout``), while one execution per process stays flat. ``fn`` and
     ``inputs`` must pickle (module-level model functions; the field kernels rebuild their
@@ -307,18 +312,15 @@ def run_chains_in_processes(fn, inputs: dict, sampler, progress: bool = True, de
     import jax
 
     chains = sampler.chains
-    try:
-        cores = sorted(os.sched_getaffinity(0))
-    except (AttributeError, OSError):
-        cores = [None] * usable_cores()
+    cores = chain_cores()
     groups = chain_groups(chains, len(cores))
     root = jax.random.PRNGKey(sampler.seed)
     keys = np.asarray(jax.random.split(root, chains) if chains > 1 else root[None])  # numpyro: one chain, no split
     show = progress and sampler.progress
-    vectorize = 0 < n_latent <= GROUP_VECTORIZE_UPTO
+    vectorize = bool(vectorize_groups)
     job = pickle.dumps({"fn": fn, "inputs": inputs, "dense_mass": dense_mass, "init_strategy": init_strategy,
                         "exclude_sites": tuple(exclude_sites), "thinning": thinning, "warmup": sampler.warmup,
-                        "draws": sampler.draws, "bar": show, "bar_core": cores[0],
+                        "draws": sampler.draws, "bar": show,
                         "warmup_tree_depth": warmup_tree_depth, "vectorize": vectorize})
     ctx = mp.get_context("spawn")  # jax is not fork-safe
     results = ctx.Queue()

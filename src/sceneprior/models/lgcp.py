@@ -370,17 +370,35 @@ def scipy_fast(n: int) -> int:
     return int(scipy.fft.next_fast_len(n, real=True))
 
 
-#: deepest NUTS tree during warmup for a truncated field with the pilot map (sampling keeps
-#: depth 10). With the map, sampling takes 31 leapfrog steps per draw (depth 5) in every
-#: benchmark case, but the first warmup window, before the mass matrix is adapted (identity:
-#: σ and ℓ have posterior sd ≈ 0.1 and correlate, so the step size is 0.01–0.06), ran
-#: 100–250 steps per iteration for its ~100 iterations. Measured (warmup 200, 1 chain, seeds
-#: 1 and 2, 128² Matérn 3/2 weak, q 0.98): steps per 25 warmup iterations 3 200–5 000 in the
-#: first window uncapped, 1 200–1 500 at depth 6, 580–750 at depth 5; the adapted mass
-#: matrices and step sizes (0.17–0.29) alike. 4 × (1000 + 1000), ``bench/bench_lgcp.py --one
-#: 128 matern32 weak --variance-kept 0.98``, one session: uncapped 200.9 s, depth 6 187.4 s,
-#: depth 5 179.2 s; min cell ESS 4219, 3987, 4043; R-hat ≤ 1.007 in all three.
-WARMUP_TREE_DEPTH = 5
+#: deepest NUTS tree during warmup for a truncated field with the pilot map; None: not
+#: capped (numpyro's depth 10 in warmup as in sampling). A cap is NOT the default because
+#: it broke strong data. Measured: with the map, sampling took 31 leapfrog steps per draw
+#: (depth 5) in the weak-data bench cases, but the first warmup window, before the mass
+#: matrix is adapted (identity: σ and ℓ have posterior sd ≈ 0.1 and correlate, so the step
+#: size is 0.01–0.06), ran 100–250 steps per iteration for its ~100 iterations (warmup 200,
+#: 1 chain, seeds 1 and 2, 128² Matérn 3/2 weak, q 0.98; a scratch script running numpyro's
+#: MCMC.warmup with collect_warmup and the num_steps field: steps per 25 warmup iterations
+#: 3 200–5 000 in the first window uncapped, 1 200–1 500 at depth 6, 580–750 at depth 5).
+#: 4 × (1000 + 1000), ``bench/bench_lgcp.py --one 128 matern32 weak --variance-kept 0.98
+#: --warmup-depth D``, one session: uncapped 200.9 s, depth 6 187.4 s, depth 5 179.2 s (min
+#: cell ESS 4219, 3987, 4043; R-hat ≤ 1.007); 256² squared exponential weak q 0.999: 207.8 s
+#: uncapped, 175.5 s at depth 5. But 256² squared exponential strong, 1 × (300 + 300), depth
+#: 5: 1021 steps per draw after warmup and min cell ESS 1.3 (uncapped, in an earlier
+#: session: 32.2 steps, ESS 13) — capped warmup draws are autocorrelated, so the adapted
+#: mass matrix is wrong where the data are strong. Capping only the first window (before
+#: any mass-matrix adaptation) is the untried candidate.
+WARMUP_TREE_DEPTH = None
+
+#: Why a truncated field with the pilot map runs the chains of each chain process vectorised
+#: (``inference.run_chains_in_processes``; set through ``extra["vectorize_chain_groups"]``):
+#: its gradient is cheaper per chain when batched, and lockstep wastes nothing when every
+#: chain's trees have the same depth. Measured with a scratch script (numpyro MCMC.run of
+#: 100 draws after a warmup of 150, timed on its second call, ``taskset -c 0``): per chain
+#: and leapfrog step, 2 chains vectorised against 1 chain (two runs each), 1.56–1.58 against
+#: 1.72–1.75 ms at 128² Matérn 3/2 q 0.98 (4 797 coefficients) and 1.46–1.50 against
+#: 1.59–1.71 ms at 256² squared exponential q 0.999 (1 765). Not for the full torus, where vectorised NUTS bookkeeping
+#: cost more than it saved (``inference.chain_layout``), nor without the map (trees of
+#: varying depth).
 
 
 def setup(stats, prior: dict, model_spec, use_pad: bool | None = None):
@@ -388,7 +406,7 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None):
 
     kernel = model_spec.options.get("kernel", "matern32")
     variance_kept = model_spec.options.get("variance_kept", 1.0)
-    warmup_depth = None
+    warmup_depth, alike = None, False
     _check_variance_kept(variance_kept)
     obs = np.flatnonzero(stats.exposure > 0)
     a, b = gamma_prior(prior["rate_median"], prior["rate_log_sd"], stats.window_total)
@@ -402,7 +420,7 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None):
         kernels = TruncatedFieldKernels(basis)
         n_latent, dense_mass, exclude = basis.n_latent, [("sigma", "ls_unit")], ["u_modes"]
         if report["truncation"]["mode_preconditioner"]["form"] != "identity":
-            warmup_depth = WARMUP_TREE_DEPTH
+            warmup_depth, alike = WARMUP_TREE_DEPTH, True
     else:
         spectrum, report, lo, hi = plan(stats, kernel, prior)
         pre = build_preconditioner(spectrum, stats.grid.shape, counts_all, exposure_all,
@@ -428,6 +446,9 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None):
         "dense_mass": dense_mass,
         "exclude_sites": exclude,
         "warmup_tree_depth": warmup_depth,
+        # with the map every chain takes the same trees (31 steps per draw in the weak-data
+        # bench cases), so chain processes may run theirs vectorised (the comment below WARMUP_TREE_DEPTH)
+        "vectorize_chain_groups": alike,
         # ρ₀ (sampled only with per-scan terms) starts at its conditional mean given a flat field
         "init_strategy": init_to_value(values={"sigma": max(pre.pilot["sigma"], 0.05),
                                                "ls_unit": u_pilot[: lo.size],
