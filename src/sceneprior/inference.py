@@ -296,9 +296,9 @@ def run_chains_in_processes(fn, inputs: dict, sampler, progress: bool = True, de
     ``jax.random.split(PRNGKey(seed), chains)``, as numpyro's one-after-another chains do:
     one after another within a process, the draws are theirs; vectorised, they agree up to
     rounding at first (1.3 × 10⁻⁵ in tests/test_chains.py's toy model) and drift apart over
-    long runs, like any two chains. Why processes:
-    XLA grows memory when several executions run at once in one process on grid-sized
-    arrays (``chain_layout``), while one execution per process stays flat. ``fn`` and
+    long runs, like any two chains. Why processes: XLA grows memory when several executions
+    run at once in one process on grid-sized arrays (``chain_layout``), while one execution
+    per process stays flat. ``fn`` and
     ``inputs`` must pickle (module-level model functions; the field kernels rebuild their
     jitted maths on unpickling); processes are spawned, so a script of the user's that fits
     must guard its entry point (``if __name__ == "__main__":``)."""

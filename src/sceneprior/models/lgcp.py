@@ -396,9 +396,9 @@ WARMUP_TREE_DEPTH = None
 #: 100 draws after a warmup of 150, timed on its second call, ``taskset -c 0``): per chain
 #: and leapfrog step, 2 chains vectorised against 1 chain (two runs each), 1.56–1.58 against
 #: 1.72–1.75 ms at 128² Matérn 3/2 q 0.98 (4 797 coefficients) and 1.46–1.50 against
-#: 1.59–1.71 ms at 256² squared exponential q 0.999 (1 765). Not for the full torus, where vectorised NUTS bookkeeping
-#: cost more than it saved (``inference.chain_layout``), nor without the map (trees of
-#: varying depth).
+#: 1.59–1.71 ms at 256² squared exponential q 0.999 (1 765). Not for the full torus, where
+#: vectorised NUTS bookkeeping cost more than it saved (``inference.chain_layout``), nor
+#: without the map (trees of varying depth).
 
 
 def setup(stats, prior: dict, model_spec, use_pad: bool | None = None):
@@ -447,7 +447,8 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None):
         "exclude_sites": exclude,
         "warmup_tree_depth": warmup_depth,
         # with the map every chain takes the same trees (31 steps per draw in the weak-data
-        # bench cases), so chain processes may run theirs vectorised (the comment below WARMUP_TREE_DEPTH)
+        # bench cases), so chain processes may run theirs vectorised (see the comment after
+        # WARMUP_TREE_DEPTH)
         "vectorize_chain_groups": alike,
         # ρ₀ (sampled only with per-scan terms) starts at its conditional mean given a flat field
         "init_strategy": init_to_value(values={"sigma": max(pre.pilot["sigma"], 0.05),
