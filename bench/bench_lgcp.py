@@ -135,6 +135,7 @@ def _run(kind, setup, chains, warmup, draws, dense_baseline=False, setup_s=0.0):
     preconditioner) + compilation + warmup + sampling."""
     from numpyro.infer import init_to_median
 
+    from sceneprior.fitting import nuts_options
     from sceneprior.inference import cell_diagnostics, run_nuts
     from sceneprior.results import thin_for_budget
     from sceneprior.spec import DRAWS_BUDGET_MB
@@ -150,10 +151,7 @@ def _run(kind, setup, chains, warmup, draws, dense_baseline=False, setup_s=0.0):
                   n_cells=len(setup.inputs["window_area"]))
     else:
         fn, inputs = kind.fn, setup.inputs
-        kw = dict(init_strategy=setup.extra["init_strategy"], dense_mass=setup.extra["dense_mass"],
-                  exclude_sites=setup.extra["exclude_sites"], n_latent=setup.extra["n_latent"],
-                  n_cells=len(setup.inputs["window_area"]), warmup_tree_depth=setup.extra.get("warmup_tree_depth"),
-                  vectorize_groups=bool(setup.extra.get("vectorize_chain_groups")))
+        kw = nuts_options(setup, len(setup.inputs["window_area"]))
     # the production thinning: kept per-cell draws within the default budget (fitting.fit)
     thinning = thin_for_budget(draws, len(setup.inputs["window_area"]) * chains, DRAWS_BUDGET_MB)
     t = time.perf_counter()

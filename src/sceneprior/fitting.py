@@ -74,6 +74,17 @@ class FitResult:
         return np.asarray(self.idata.posterior["rate"])
 
 
+def nuts_options(setup, n_cells: int) -> dict:
+    """The ``inference.run_nuts`` options a model's set-up chooses (mass matrix, start, sites
+    not kept, latent size, warmup depth, vectorised chain groups) for a grid of ``n_cells``
+    cells: the one place ``fit`` and bench/bench_lgcp.py read them from ``setup.extra``."""
+    ex = setup.extra
+    return dict(dense_mass=ex.get("dense_mass", False), init_strategy=ex.get("init_strategy"),
+                exclude_sites=ex.get("exclude_sites", ()), n_latent=int(ex.get("n_latent", 0)), n_cells=n_cells,
+                warmup_tree_depth=ex.get("warmup_tree_depth"),
+                vectorize_groups=bool(ex.get("vectorize_chain_groups")))
+
+
 def _check_memory(setup, stats, smp, source: str, thinning: int = 1) -> None:
     """Refuse fits whose sampler state and kept draws would not fit in memory (say what would).
 
@@ -237,14 +248,9 @@ def fit(spec: FitSpec, progress: bool = True, log=print) -> FitResult:
 
         log(f"sampling {kind.name} with NUTS: {smp.chains} chains × ({smp.warmup} warmup + "
             f"{smp.draws} draws), seed {smp.seed}")
-        idata = run_nuts(kind.fn, setup.inputs, smp, progress=progress,
-                         dense_mass=setup.extra.get("dense_mass", False),
-                         init_strategy=setup.extra.get("init_strategy"),
-                         dims=setup.extra.get("dims"), coords=setup.extra.get("coords"),
-                         exclude_sites=setup.extra.get("exclude_sites", ()), thinning=thinning,
-                         n_latent=int(setup.extra.get("n_latent", 0)), n_cells=stats.grid.n_cells,
-                         warmup_tree_depth=setup.extra.get("warmup_tree_depth"),
-                         vectorize_groups=bool(setup.extra.get("vectorize_chain_groups")))
+        idata = run_nuts(kind.fn, setup.inputs, smp, progress=progress, dims=setup.extra.get("dims"),
+                         coords=setup.extra.get("coords"), thinning=thinning,
+                         **nuts_options(setup, stats.grid.n_cells))
         if setup.extra.get("complete"):  # exact conditional draws of integrated-out parameters
             idata = setup.extra["complete"](idata, stats, setup, smp.seed)
     t_mcmc = time.perf_counter()

@@ -317,11 +317,10 @@ def run_chains_in_processes(fn, inputs: dict, sampler, progress: bool = True, de
     root = jax.random.PRNGKey(sampler.seed)
     keys = np.asarray(jax.random.split(root, chains) if chains > 1 else root[None])  # numpyro: one chain, no split
     show = progress and sampler.progress
-    vectorize = bool(vectorize_groups)
     job = pickle.dumps({"fn": fn, "inputs": inputs, "dense_mass": dense_mass, "init_strategy": init_strategy,
                         "exclude_sites": tuple(exclude_sites), "thinning": thinning, "warmup": sampler.warmup,
                         "draws": sampler.draws, "bar": show,
-                        "warmup_tree_depth": warmup_tree_depth, "vectorize": vectorize})
+                        "warmup_tree_depth": warmup_tree_depth, "vectorize": bool(vectorize_groups)})
     ctx = mp.get_context("spawn")  # jax is not fork-safe
     results = ctx.Queue()
     running = {}
@@ -333,7 +332,7 @@ def run_chains_in_processes(fn, inputs: dict, sampler, progress: bool = True, de
         if show:
             print(msg, file=sys.stderr, flush=True)
 
-    how = "vectorised" if vectorize else "one after another"
+    how = "vectorised" if vectorize_groups else "one after another"
     say(f"{chains} chains in {len(groups)} processes (one per core; {how} within a process); the "
         f"progress bar follows the process on the first core")
     try:
