@@ -96,17 +96,21 @@ def test_parallel_draws_equal_sequential_and_posterior(monkeypatch):
 def test_chains_in_processes_equal_sequential(monkeypatch, vectorise):
     """Chains in separate processes (large grids), three chains in two processes: chains 1–2
     in one, vectorised or one after another, chain 3 in the other; same keys (and warmup
-    tree depth) as numpyro's one-after-another chains, so the same draws; the excluded site
-    is dropped and the sample statistics kept."""
+    tree depth, mass-matrix blocks and the mass matrix warmup starts from) as numpyro's
+    one-after-another chains, so the same draws; the excluded site is dropped and the
+    sample statistics kept."""
     monkeypatch.setattr(inference, "chain_layout", lambda n, c=1, n_cells=0: inference.PROCESSES)
     monkeypatch.setattr(inference, "chain_cores", lambda: [None, None])  # two processes, unpinned
     y = jnp.asarray(np.random.default_rng(5).normal(-0.5, 1.0, 30))
     smp = _Sampler()
     smp.chains, smp.warmup, smp.draws = 3, 150, 200
+    start = {("mu",): np.array([[0.04]])}
     idata = inference.run_nuts(_model_with_noise, {"y": y}, smp, progress=False, n_latent=inference.SEQUENTIAL_FROM,
-                               exclude_sites=("noise",), thinning=2, warmup_tree_depth=2, vectorize_groups=vectorise)
+                               exclude_sites=("noise",), thinning=2, warmup_tree_depth=2, vectorize_groups=vectorise,
+                               dense_mass=[("mu",)], inverse_mass_matrix=start)
+    assert list(start) == [("mu",)]  # the caller's dict is not filled in by numpyro
     ref = MCMC(NUTS(_model_with_noise, init_strategy=numpyro.infer.init_to_median(num_samples=15),
-                    max_tree_depth=(2, 10)),
+                    max_tree_depth=(2, 10), dense_mass=[("mu",)], inverse_mass_matrix={("mu",): jnp.array([[0.04]])}),
                num_warmup=smp.warmup, num_samples=smp.draws, num_chains=smp.chains, chain_method="sequential",
                progress_bar=False, thinning=2)
     ref.run(jax.random.PRNGKey(smp.seed), y=y, extra_fields=("num_steps",))

@@ -71,8 +71,10 @@ def machinery():
                                  "length_scale_max": 300.0}, "test")
     stats0 = _stats(np.full(N * N, int(PER_CELL)))
     setup = kind.setup(stats0, prior, ModelSpec("lgcp", {}, {"kernel": "matern32"}), use_pad=True)
-    # full torus: warmup trees uncapped, chain groups one after another
+    # full torus: warmup trees uncapped, chain groups one after another, numpyro's identity
+    # mass matrix to start warmup from
     assert setup.extra["warmup_tree_depth"] is None and setup.extra["vectorize_chain_groups"] is False
+    assert setup.extra["initial_inverse_mass"] is None
     inp = dict(setup.inputs)
     kernels = inp.pop("kernels")
     model = partial(lgcp.lgcp_model, kernels=kernels)

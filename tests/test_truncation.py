@@ -147,9 +147,12 @@ def test_model_prior_on_the_field_is_the_truncated_field(monkeypatch, band):
     kern, pre = setup.inputs["kernels"], setup.inputs["precond"]
     rep = setup.extra["embedding"]["truncation"]["mode_preconditioner"]
     assert rep["rank"] > 0
-    # with the map: the model's warmup depth (uncapped by default) and vectorised chain groups
+    # with the map: the model's warmup depth (uncapped by default), vectorised chain groups and
+    # the (σ, ℓ) mass block warmup starts from (one ℓ here: isotropic)
     assert setup.extra["warmup_tree_depth"] == lgcp.WARMUP_TREE_DEPTH
     assert setup.extra["vectorize_chain_groups"] is True
+    np.testing.assert_array_equal(setup.extra["initial_inverse_mass"][("sigma", "ls_unit")],
+                                  lgcp.INITIAL_HYPER_VARIANCE * np.eye(1 + setup.inputs["ls_lo"].size))
     assert ("low_rank_vectors" in pre) == (band == 4.0) and ("dense" in pre) == (band == 1.5), rep
     inp = setup.inputs
     basis = setup.extra["modes"]

@@ -166,7 +166,8 @@ def chains_at_once(n_latent: int, chains: int, n_cells: int = 0, vectorize_group
 def run_nuts(fn, inputs: dict, sampler, progress: bool = True, dense_mass: bool = False,
              dims: dict | None = None, coords: dict | None = None, init_strategy=None,
              exclude_sites=(), thinning: int = 1, n_latent: int = 0, n_cells: int = 0,
-             warmup_tree_depth: int | None = None, vectorize_groups: bool = False):
+             warmup_tree_depth: int | None = None, vectorize_groups: bool = False,
+             inverse_mass_matrix: dict | None = None):
     """Sample ``fn(**inputs)`` with NUTS; returns InferenceData whose sample_stats hold the
     leapfrog steps and divergences per draw. ``exclude_sites``: latent sites not kept (a
     field's white noise; its deterministic images are kept instead); ``thinning``: keep
@@ -176,6 +177,9 @@ def run_nuts(fn, inputs: dict, sampler, progress: bool = True, dense_mass: bool 
     sampling, which always keeps it) — a cap saves the long trees of the first warmup
     window but can spoil the mass-matrix adaptation (``models.lgcp.WARMUP_TREE_DEPTH`` says
     what was measured);
+    ``inverse_mass_matrix``: the mass matrix warmup starts from, as numpyro's NUTS takes it
+    ({tuple of site names: matrix or diagonal}; sites not named start at the identity);
+    warmup adapts it from there (``models.lgcp.INITIAL_HYPER_VARIANCE`` says why);
     ``vectorize_groups``: the model's chains are alike in cost per iteration (the same tree
     depths), so the chain processes of the "processes" layout may run theirs vectorised
     (:func:`run_chains_in_processes`)."""
@@ -192,10 +196,11 @@ def run_nuts(fn, inputs: dict, sampler, progress: bool = True, dense_mass: bool 
         return run_chains_in_processes(fn, inputs, sampler, progress=progress, dense_mass=dense_mass,
                                        dims=dims, coords=coords, init_strategy=init_strategy,
                                        exclude_sites=exclude_sites, thinning=thinning,
-                                       warmup_tree_depth=warmup_tree_depth, vectorize_groups=vectorize_groups)
+                                       warmup_tree_depth=warmup_tree_depth, vectorize_groups=vectorize_groups,
+                                       inverse_mass_matrix=inverse_mass_matrix)
     mcmc = _sample(fn, inputs, jax.random.PRNGKey(sampler.seed), dense_mass, init_strategy, sampler.warmup,
                    sampler.draws, thinning, exclude_sites, sampler.chains, layout, progress and sampler.progress,
-                   warmup_tree_depth)
+                   warmup_tree_depth, inverse_mass_matrix)
     return az.from_numpyro(mcmc, log_likelihood=False, dims=dims, coords=coords)
 
 
@@ -204,13 +209,17 @@ MAX_TREE_DEPTH = 10
 
 
 def _sample(fn, inputs, key, dense_mass, init_strategy, warmup, draws, thinning, exclude_sites, chains, method,
-            progress, warmup_tree_depth=None):
+            progress, warmup_tree_depth=None, inverse_mass_matrix=None):
     """numpyro's NUTS and MCMC as every layout runs them; returns the finished MCMC.
-    ``warmup_tree_depth``: see :func:`run_nuts` (numpyro takes (warmup, sampling) depths)."""
+    ``warmup_tree_depth``, ``inverse_mass_matrix``: see :func:`run_nuts` (numpyro takes
+    (warmup, sampling) depths; it fills in the mass matrix dict it is given, so it gets a copy)."""
+    import jax.numpy as jnp
     from numpyro.infer import MCMC, NUTS
 
     depth = MAX_TREE_DEPTH if warmup_tree_depth is None else (int(warmup_tree_depth), MAX_TREE_DEPTH)
-    kernel = NUTS(fn, dense_mass=dense_mass, init_strategy=init_strategy, max_tree_depth=depth)
+    start = None if inverse_mass_matrix is None else {k: jnp.asarray(v) for k, v in inverse_mass_matrix.items()}
+    kernel = NUTS(fn, dense_mass=dense_mass, init_strategy=init_strategy, max_tree_depth=depth,
+                  inverse_mass_matrix=start)
     mcmc = MCMC(kernel, num_warmup=warmup, num_samples=draws, num_chains=chains, chain_method=method,
                 progress_bar=progress, thinning=thinning)
     drop = tuple(f"~z.{name}" for name in exclude_sites)
@@ -271,7 +280,7 @@ def _chain_group(job_bytes: bytes, group: list[int], core: int | None, keys, res
         method = "vectorized" if job["vectorize"] and n > 1 else "sequential"
         mcmc = _sample(job["fn"], job["inputs"], key, job["dense_mass"], job["init_strategy"], job["warmup"],
                        job["draws"], job["thinning"], job["exclude_sites"], n, method,
-                       job["bar"] and group[0] == 0, job["warmup_tree_depth"])
+                       job["bar"] and group[0] == 0, job["warmup_tree_depth"], job["inverse_mass_matrix"])
         draws = {k: np.asarray(v) for k, v in jax.device_get(mcmc.get_samples(group_by_chain=True)).items()}
         extra = jax.device_get(mcmc.get_extra_fields(group_by_chain=True))
         stats = {"diverging": np.asarray(extra["diverging"]), "n_steps": np.asarray(extra["num_steps"])}
@@ -288,7 +297,8 @@ def _chain_names(group) -> str:
 
 def run_chains_in_processes(fn, inputs: dict, sampler, progress: bool = True, dense_mass=False, dims=None,
                             coords=None, init_strategy=None, exclude_sites=(), thinning: int = 1,
-                            warmup_tree_depth: int | None = None, vectorize_groups: bool = False):
+                            warmup_tree_depth: int | None = None, vectorize_groups: bool = False,
+                            inverse_mass_matrix: dict | None = None):
     """NUTS with the chains in separate processes (``chain_layout``'s "processes"): one process
     per usable core, each pinned to its core and running a group of chains
     (:func:`chain_groups`) — vectorised when ``vectorize_groups``, else one after another —
@@ -320,7 +330,8 @@ def run_chains_in_processes(fn, inputs: dict, sampler, progress: bool = True, de
     job = pickle.dumps({"fn": fn, "inputs": inputs, "dense_mass": dense_mass, "init_strategy": init_strategy,
                         "exclude_sites": tuple(exclude_sites), "thinning": thinning, "warmup": sampler.warmup,
                         "draws": sampler.draws, "bar": show,
-                        "warmup_tree_depth": warmup_tree_depth, "vectorize": bool(vectorize_groups)})
+                        "warmup_tree_depth": warmup_tree_depth, "vectorize": bool(vectorize_groups),
+                        "inverse_mass_matrix": inverse_mass_matrix})
     ctx = mp.get_context("spawn")  # jax is not fork-safe
     results = ctx.Queue()
     running = {}

@@ -385,9 +385,29 @@ def scipy_fast(n: int) -> int:
 #: uncapped, 175.5 s at depth 5. But 256² squared exponential strong, 1 × (300 + 300), depth
 #: 5: 1021 steps per draw after warmup and min cell ESS 1.3 (uncapped, in an earlier
 #: session: 32.2 steps, ESS 13) — capped warmup draws are autocorrelated, so the adapted
-#: mass matrix is wrong where the data are strong. Capping only the first window (before
-#: any mass-matrix adaptation) is the untried candidate.
+#: mass matrix is wrong where the data are strong. What the cap was after — the first
+#: window's long trees — INITIAL_HYPER_VARIANCE removes without it.
 WARMUP_TREE_DEPTH = None
+
+#: variance per unconstrained coordinate (log σ, logit of each ℓ's unit position) of the
+#: (σ, ℓ) block of the inverse mass matrix that warmup starts from, for a truncated field
+#: with the pilot map (numpyro starts at the identity; its first mass-matrix window ends
+#: after 100 warmup iterations). Warmup adapts the block from there as before; only the
+#: first window changes. With the identity σ and ℓ (posterior sd ≈ 0.05–0.3 in these
+#: coordinates, correlated) forced step sizes of 0.005–0.06 and 100–250 leapfrog steps
+#: per iteration. Measured (scratch script: numpyro MCMC.warmup, 1 chain, warmup 300,
+#: collect_warmup and the num_steps field): 128² Matérn 3/2 weak q 0.98, seed 1, warmup
+#: steps in all 21 590 with the identity, 14 714 of them in the first 100 iterations;
+#: 9 862 (3 032) starting at 0.01, 10 860 at 0.03, 10 744 at 0.003. 256² squared
+#: exponential strong q 0.999, seeds 1–3: 25 169, 26 796, 35 618 with the identity
+#: against 24 620, 20 919, 19 878 at 0.01 (0.003 was worse there: 33 616, seed 1).
+#: Adapted block at the end of those warmups: var(log σ) 0.008–0.013, var of ℓ's logit
+#: 0.065–0.084 (weak) and 0.002–0.004 (strong). 4 × (1000 + 1000),
+#: ``bench/bench_lgcp.py --one …``, one session, identity against 0.01: 128² Matérn 3/2
+#: weak 208.2 → 178.4 s, 256² squared exponential weak 200.9 → 179.7 s (31 steps per
+#: draw in both); 256² squared exponential strong 1 × (300 + 300): min cell ESS 13.0 in
+#: 65.6 s (32.2 steps per draw) → 45.9 in 78.0 s (63 steps).
+INITIAL_HYPER_VARIANCE = 0.01
 
 #: Why a truncated field with the pilot map runs the chains of each chain process vectorised
 #: (``inference.run_chains_in_processes``; set through ``extra["vectorize_chain_groups"]``):
@@ -406,7 +426,7 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None):
 
     kernel = model_spec.options.get("kernel", "matern32")
     variance_kept = model_spec.options.get("variance_kept", 1.0)
-    warmup_depth, alike = None, False
+    warmup_depth, alike, start_mass = None, False, None
     _check_variance_kept(variance_kept)
     obs = np.flatnonzero(stats.exposure > 0)
     a, b = gamma_prior(prior["rate_median"], prior["rate_log_sd"], stats.window_total)
@@ -421,6 +441,7 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None):
         n_latent, dense_mass, exclude = basis.n_latent, [("sigma", "ls_unit")], ["u_modes"]
         if report["truncation"]["mode_preconditioner"]["form"] != "identity":
             warmup_depth, alike = WARMUP_TREE_DEPTH, True
+            start_mass = {("sigma", "ls_unit"): INITIAL_HYPER_VARIANCE * np.eye(1 + lo.size)}
     else:
         spectrum, report, lo, hi = plan(stats, kernel, prior)
         pre = build_preconditioner(spectrum, stats.grid.shape, counts_all, exposure_all,
@@ -446,6 +467,8 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None):
         "dense_mass": dense_mass,
         "exclude_sites": exclude,
         "warmup_tree_depth": warmup_depth,
+        # (σ, ℓ) block of the mass matrix warmup starts from (see INITIAL_HYPER_VARIANCE)
+        "initial_inverse_mass": start_mass,
         # with the map every chain takes the same trees (31 steps per draw in the weak-data
         # bench cases), so chain processes may run theirs vectorised (see the comment after
         # WARMUP_TREE_DEPTH)
