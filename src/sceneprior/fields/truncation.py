@@ -226,8 +226,7 @@ def mode_basis(geom: TorusGeometry, lo2, hi2, variance_kept: float) -> ModeBasis
 
 
 #: largest number of coefficients for which the pilot map is built (H is K × K float64: the
-#: set-up took 12–14 s at K = 4 797 on this machine with numpy's float64 eigh of H, 7.5–8.8 s
-#: of it; 6.7–8.1 s with ``_eigh_map``, 4.1 s of it, bench cases 128² Matérn 3/2 weak and strong).
+#: set-up took 12–14 s at K = 4 797 on this machine, numpy's eigh of H alone 7.5–8.8 s).
 MAP_MAX_COEFFICIENTS = 6000
 #: precision eigenvalues inside [1/band, band] are left alone by the low-rank preconditioner
 LOW_RANK_BAND = 1.5
@@ -244,30 +243,6 @@ MAP_ENTRIES = 1_000_000
 #: float32 before the product, so the log density carries float32 rounding (2–8 × 10⁻⁵ nats
 #: in tests/test_truncation.py's strong-data case, against the float64 map)
 MAP_DTYPE = np.float32
-
-
-def _eigh_map(H: np.ndarray):
-    """Eigenvalues (float64) and eigenvectors (MAP_DTYPE, the precision the map is kept in)
-    of the symmetric positive definite H: LAPACK's divide and conquer in MAP_DTYPE through
-    scipy — at K = 4 797 (a random SPD matrix, this machine, one run each) numpy's float64
-    eigh took 8.9 s, scipy's float32 4.75 s. The map's accuracy only shapes the sampler's
-    geometry (the map is exact whatever its entries), but float32 eigenvalues are not good
-    enough for the smallest ones (2 × 10⁻⁵ beside 34 in a 128² strong-data case, against an
-    absolute error of about 10⁻⁵): see :func:`_rayleigh`."""
-    import scipy.linalg
-
-    ev, V = scipy.linalg.eigh(np.asarray(H, MAP_DTYPE), driver="evd", check_finite=False)
-    return ev.astype(float), V
-
-
-def _rayleigh(H: np.ndarray, V: np.ndarray) -> np.ndarray:
-    """Rayleigh quotients vᵀ H v in float64 of the unit columns of V: eigenvalues with an
-    error of order |δv|² ‖H‖ for eigenvectors off by δv (the Rayleigh quotient's quadratic
-    accuracy for symmetric matrices: Parlett, The Symmetric Eigenvalue Problem, 1998 — cited
-    from memory), and positive for positive definite H."""
-    V = np.asarray(V, float)
-    V = V / np.linalg.norm(V, axis=0)
-    return np.einsum("ij,ij->j", V, H @ V)
 
 
 def dense_preconditioner(basis: ModeBasis, amp, d, weights, band: float | None = None, batch: int = 64):
@@ -311,22 +286,18 @@ def dense_preconditioner(basis: ModeBasis, amp, d, weights, band: float | None =
     M = jax.jit(lambda eye: jax.lax.map(column, eye, batch_size=batch))(jnp.eye(K))
     dj = np.asarray(d)[np.asarray(arr["coef_rep"])]
     H = 0.5 * (np.asarray(M) + np.asarray(M).T) + np.diag(1.0 / dj)
-    ev, V = _eigh_map(H)
+    ev, V = np.linalg.eigh(H)
     outside = int(np.sum((ev < 1.0 / band) | (ev > band)))
     # the directions farthest from 1 first, as many as MAP_ENTRIES allows
     r = min(outside, MAP_ENTRIES // K)
-    far = np.argsort(-np.abs(np.log(np.maximum(ev, 1e-300))), kind="stable")[:r]
-    dense = r > 0 and r == outside and 2 * r >= K and K * K <= MAP_ENTRIES
-    used = np.arange(K) if dense else far
-    ev = ev.copy()
-    ev[used] = _rayleigh(H, V[:, used])  # the eigenvalues the map uses, in float64
+    far = np.argsort(-np.abs(np.log(ev)), kind="stable")[:r]
     report = {"rank": r, "outside_band": outside, "coefficients": K, "band": band,
               "max_entries": MAP_ENTRIES, "dtype": np.dtype(MAP_DTYPE).name,
               "precision_eigenvalues_min_max": [float(ev.min()), float(ev.max())]}
     if r == 0:
         report["form"] = "identity"
         return {}, report
-    if dense:
+    if r == outside and 2 * r >= K and K * K <= MAP_ENTRIES:
         report["form"] = "dense"
         return {"dense": ((V * ev**-0.5) @ V.T).astype(MAP_DTYPE)}, report
     # y = z + V_r (ev_r^{-1/2} − 1) V_rᵀ z: cost 2·K·r per product
