@@ -361,12 +361,18 @@ def main():
     ap.add_argument("--warmup-depth", type=int, default=None,
                     help="cap NUTS trees at this depth during warmup where the LGCP has its pilot map "
                          "(models.lgcp.WARMUP_TREE_DEPTH; default: that constant, uncapped)")
+    ap.add_argument("--start-hyper-variance", type=float, default=None,
+                    help="variance per coordinate of the (σ, ℓ) mass block warmup starts from where the LGCP "
+                         "has its pilot map (models.lgcp.INITIAL_HYPER_VARIANCE; 1 is numpyro's identity)")
     ap.add_argument("--parts", default="abcd")
     args = ap.parse_args()
-    if args.warmup_depth is not None:
+    if args.warmup_depth is not None or args.start_hyper_variance is not None:
         from sceneprior.models import lgcp
 
-        lgcp.WARMUP_TREE_DEPTH = args.warmup_depth
+        if args.warmup_depth is not None:
+            lgcp.WARMUP_TREE_DEPTH = args.warmup_depth
+        if args.start_hyper_variance is not None:
+            lgcp.INITIAL_HYPER_VARIANCE = args.start_hyper_variance
     if args.one:
         return gradient_cost(args) if args.gradient else one(args)
     if args.quick:
@@ -378,6 +384,8 @@ def main():
             "--draws", str(args.draws), "--variance-kept", str(args.variance_kept)]
     if args.warmup_depth is not None:
         base += ["--warmup-depth", str(args.warmup_depth)]
+    if args.start_hyper_variance is not None:
+        base += ["--start-hyper-variance", str(args.start_hyper_variance)]
 
     def call(*extra, scans=None):
         cmd = base + ["--scans", str(scans or args.scans)] + list(extra)

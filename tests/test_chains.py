@@ -71,9 +71,15 @@ def test_parallel_draws_equal_sequential_and_posterior(monkeypatch):
     assert inference.chain_layout(inference.SEQUENTIAL_FROM, 4) == "parallel"
     y = jnp.asarray(np.random.default_rng(3).normal(1.5, 1.0, 40))
     smp = _Sampler()
-    idata = inference.run_nuts(_model, {"y": y}, smp, progress=False, n_latent=inference.SEQUENTIAL_FROM)
+    # a mass block and the matrix warmup starts from reach numpyro as given (the same draws),
+    # and the caller's dict is not filled in by numpyro
+    start = {("mu",): np.array([[0.025]])}
+    idata = inference.run_nuts(_model, {"y": y}, smp, progress=False, n_latent=inference.SEQUENTIAL_FROM,
+                               dense_mass=[("mu",)], inverse_mass_matrix=start)
+    assert list(start) == [("mu",)] and start[("mu",)].shape == (1, 1)
     par = np.asarray(idata.posterior["mu"])
-    ref = MCMC(NUTS(_model, init_strategy=numpyro.infer.init_to_median(num_samples=15)), num_warmup=smp.warmup,
+    ref = MCMC(NUTS(_model, init_strategy=numpyro.infer.init_to_median(num_samples=15), dense_mass=[("mu",)],
+                    inverse_mass_matrix={("mu",): jnp.array([[0.025]])}), num_warmup=smp.warmup,
                num_samples=smp.draws, num_chains=smp.chains, chain_method="sequential", progress_bar=False)
     ref.run(jax.random.PRNGKey(smp.seed), y=y)
     seq = np.asarray(ref.get_samples(group_by_chain=True)["mu"])
@@ -108,7 +114,6 @@ def test_chains_in_processes_equal_sequential(monkeypatch, vectorise):
     idata = inference.run_nuts(_model_with_noise, {"y": y}, smp, progress=False, n_latent=inference.SEQUENTIAL_FROM,
                                exclude_sites=("noise",), thinning=2, warmup_tree_depth=2, vectorize_groups=vectorise,
                                dense_mass=[("mu",)], inverse_mass_matrix=start)
-    assert list(start) == [("mu",)]  # the caller's dict is not filled in by numpyro
     ref = MCMC(NUTS(_model_with_noise, init_strategy=numpyro.infer.init_to_median(num_samples=15),
                     max_tree_depth=(2, 10), dense_mass=[("mu",)], inverse_mass_matrix={("mu",): jnp.array([[0.04]])}),
                num_warmup=smp.warmup, num_samples=smp.draws, num_chains=smp.chains, chain_method="sequential",

@@ -337,6 +337,13 @@ def test_lgcp_run_outputs_on_a_polar_masked_grid(tmp_path, variance_kept):
         assert variance_kept <= tr["variance_fraction_kept_at_shortest_length_scale"] <= 1.0
         assert s["lgcp"]["embedding"]["method"] == "periodised"
     assert ("padding_correction" if variance_kept == 1.0 else "mode_map") in s["lgcp"]["parametrisation"]
+    # with a map, warmup started σ and both length scales (range, bearing) at their own mass
+    # block, which numpyro took (a wrong size would not have run)
+    start = s["lgcp"]["parametrisation"]["warmup_mass_start"]
+    if variance_kept == 1.0 or s["lgcp"]["parametrisation"]["mode_map"]["form"] == "identity":
+        assert start.startswith("identity")
+    else:
+        assert start["sigma+ls_unit"]["size"] == 3 and len(s["lgcp"]["posterior"]["length_scale"]) == 2
     assert "range" in s["lgcp"]["stationarity"] and "shoal" in s["zones"]
     assert s["diagnostics"]["cells"]["n_cells"] > 0
     ds = xr.open_dataset(path / "intensity.nc", engine="h5netcdf")

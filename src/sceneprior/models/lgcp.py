@@ -374,8 +374,8 @@ def scipy_fast(n: int) -> int:
 #: capped (numpyro's depth 10 in warmup as in sampling). A cap is NOT the default because
 #: it broke strong data. Measured: with the map, sampling took 31 leapfrog steps per draw
 #: (depth 5) in the weak-data bench cases, but the first warmup window, before the mass
-#: matrix is adapted (identity: σ and ℓ have posterior sd ≈ 0.1 and correlate, so the step
-#: size is 0.01–0.06), ran 100–250 steps per iteration for its ~100 iterations (warmup 200,
+#: matrix is adapted (identity: σ and ℓ have posterior sd ≈ 0.05–0.3 and correlate, so the
+#: step size is 0.005–0.06), ran 100–250 steps per iteration for its ~100 iterations (warmup 200,
 #: 1 chain, seeds 1 and 2, 128² Matérn 3/2 weak, q 0.98; a scratch script running numpyro's
 #: MCMC.warmup with collect_warmup and the num_steps field: steps per 25 warmup iterations
 #: 3 200–5 000 in the first window uncapped, 1 200–1 500 at depth 6, 580–750 at depth 5).
@@ -384,7 +384,7 @@ def scipy_fast(n: int) -> int:
 #: cell ESS 4219, 3987, 4043; R-hat ≤ 1.007); 256² squared exponential weak q 0.999: 207.8 s
 #: uncapped, 175.5 s at depth 5. But 256² squared exponential strong, 1 × (300 + 300), depth
 #: 5: 1021 steps per draw after warmup and min cell ESS 1.3 (uncapped, in an earlier
-#: session: 32.2 steps, ESS 13) — capped warmup draws are autocorrelated, so the adapted
+#: session and again in a later one: 32.2 steps, ESS 13.0) — capped warmup draws are autocorrelated, so the adapted
 #: mass matrix is wrong where the data are strong. What the cap was after — the first
 #: window's long trees — INITIAL_HYPER_VARIANCE removes without it.
 WARMUP_TREE_DEPTH = None
@@ -392,21 +392,25 @@ WARMUP_TREE_DEPTH = None
 #: variance per unconstrained coordinate (log σ, logit of each ℓ's unit position) of the
 #: (σ, ℓ) block of the inverse mass matrix that warmup starts from, for a truncated field
 #: with the pilot map (numpyro starts at the identity; its first mass-matrix window ends
-#: after 100 warmup iterations). Warmup adapts the block from there as before; only the
-#: first window changes. With the identity σ and ℓ (posterior sd ≈ 0.05–0.3 in these
-#: coordinates, correlated) forced step sizes of 0.005–0.06 and 100–250 leapfrog steps
-#: per iteration. Measured (scratch script: numpyro MCMC.warmup, 1 chain, warmup 300,
+#: after 100 warmup iterations). Warmup adapts the block from this start by numpyro's
+#: usual windows; trees are not capped. With the identity σ and ℓ (posterior sd ≈ 0.05–0.3
+#: in these coordinates, correlated) forced step sizes of 0.005–0.06 and 100–250 leapfrog
+#: steps per iteration in the first window. Measured (scratch script: numpyro MCMC.warmup, 1 chain, warmup 300,
 #: collect_warmup and the num_steps field): 128² Matérn 3/2 weak q 0.98, seed 1, warmup
 #: steps in all 21 590 with the identity, 14 714 of them in the first 100 iterations;
 #: 9 862 (3 032) starting at 0.01, 10 860 at 0.03, 10 744 at 0.003. 256² squared
 #: exponential strong q 0.999, seeds 1–3: 25 169, 26 796, 35 618 with the identity
 #: against 24 620, 20 919, 19 878 at 0.01 (0.003 was worse there: 33 616, seed 1).
-#: Adapted block at the end of those warmups: var(log σ) 0.008–0.013, var of ℓ's logit
-#: 0.065–0.084 (weak) and 0.002–0.004 (strong). 4 × (1000 + 1000),
-#: ``bench/bench_lgcp.py --one …``, one session, identity against 0.01: 128² Matérn 3/2
-#: weak 208.2 → 178.4 s, 256² squared exponential weak 200.9 → 179.7 s (31 steps per
-#: draw in both); 256² squared exponential strong 1 × (300 + 300): min cell ESS 13.0 in
-#: 65.6 s (32.2 steps per draw) → 45.9 in 78.0 s (63 steps).
+#: Adapted block at the end of the warmups printed: var(log σ) 0.008–0.013, var of ℓ's
+#: logit 0.065–0.084 (weak) and 0.002–0.004 (strong). Bench, one session, one run at a
+#: time, start 1 (numpyro's identity) against 0.01: ``bench/bench_lgcp.py --one 128
+#: matern32 weak --variance-kept 0.98 [--start-hyper-variance 1]``, 4 × (1000 + 1000):
+#: 208.2 s against 178.4 and 180.6 s (two runs); ``--one 256 squared_exponential weak
+#: --variance-kept 0.999``: 200.9 s against 179.7 and 184.0 s (31 steps per draw in all);
+#: ``--one 256 squared_exponential strong --chains 1 --warmup 300 --draws 300
+#: --variance-kept 0.999``: min cell ESS 13.0 in 65.6 s (32.2 steps per draw) against
+#: 45.9 in 78.0 s (63 steps per draw; one chain, one seed). Not measured: with per-scan
+#: terms (where ρ₀ is sampled too), anisotropic ℓ, or the dense form of the map.
 INITIAL_HYPER_VARIANCE = 0.01
 
 #: Why a truncated field with the pilot map runs the chains of each chain process vectorised
@@ -441,7 +445,7 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None):
         n_latent, dense_mass, exclude = basis.n_latent, [("sigma", "ls_unit")], ["u_modes"]
         if report["truncation"]["mode_preconditioner"]["form"] != "identity":
             warmup_depth, alike = WARMUP_TREE_DEPTH, True
-            start_mass = {("sigma", "ls_unit"): INITIAL_HYPER_VARIANCE * np.eye(1 + lo.size)}
+            start_mass = {dense_mass[0]: INITIAL_HYPER_VARIANCE * np.eye(1 + lo.size)}  # σ and ℓ per axis
     else:
         spectrum, report, lo, hi = plan(stats, kernel, prior)
         pre = build_preconditioner(spectrum, stats.grid.shape, counts_all, exposure_all,
@@ -599,6 +603,14 @@ def _hyper_summary(result) -> dict:
             "length_scale_units": axes_units[: ls.shape[-1]]}
 
 
+def _mass_start(start) -> dict | str:
+    """What NUTS's warmup started its mass matrix from, for summary.json."""
+    if start is None:
+        return "identity (numpyro's default)"
+    return {str("+".join(k)): {"variance_per_unconstrained_coordinate": float(np.diag(v)[0]), "size": int(len(v))}
+            for k, v in start.items()} | {"elsewhere": "identity"}
+
+
 def summary(result) -> dict:
     ex = result.setup.extra
     g = result.stats.grid
@@ -628,6 +640,7 @@ def summary(result) -> dict:
                {"w_bar_detections_per_torus_cell": pre.w_scale, "pilot": pre.pilot,
                 "pilot_source": "binned pair correlation (fields/preconditioning.pair_correlation_pilot)",
                 "mode_map": ex["embedding"]["truncation"].get("mode_preconditioner")}),
+            "warmup_mass_start": _mass_start(ex.get("initial_inverse_mass")),
         },
         "extrapolation": "cells without exposure are predicted through the field from their "
                          "neighbours; exports mask permanently excluded cells",
