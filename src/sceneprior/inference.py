@@ -114,10 +114,10 @@ def chain_layout(n_latent: int, chains: int = 1, n_cells: int = 0) -> str:
     the same min cell ESS (1239) and R-hat (1.0073) as one after another in 461–559 s; in a
     later session 239.6 s with the float32 map, and 207.8 s (3.54 GB) with two processes of
     two vectorised chains (179.7 and 184.0 s in the next session, with the LGCP's starting
-    mass matrix, ``models.lgcp.INITIAL_HYPER_VARIANCE``). Below PARALLEL_BELOW the parallel layout stays: 128² Matérn 3/2
-    weak, q = 0.98, 4 × (1000 + 1000), with warmup trees capped at depth 5 (bench
-    ``--warmup-depth 5``), took 179.2 s in parallel and 190.8 s in two processes of two
-    vectorised chains (forced; each process starts jax and compiles).
+    mass matrix, ``models.lgcp.INITIAL_HYPER_VARIANCE``). Below PARALLEL_BELOW the parallel
+    layout stays: 128² Matérn 3/2 weak, q = 0.98, 4 × (1000 + 1000), with warmup trees
+    capped at depth 5 (bench ``--warmup-depth 5``), took 179.2 s in parallel and 190.8 s in
+    two processes of two vectorised chains (forced; each process starts jax and compiles).
     One core, or one chain: one after another.
 
     Vectorised chains (one jax.vmap over chains) turn NUTS's tree-building branches into

@@ -375,42 +375,43 @@ def scipy_fast(n: int) -> int:
 #: it broke strong data. Measured: with the map, sampling took 31 leapfrog steps per draw
 #: (depth 5) in the weak-data bench cases, but the first warmup window, before the mass
 #: matrix is adapted (identity: σ and ℓ have posterior sd ≈ 0.05–0.3 and correlate, so the
-#: step size is 0.005–0.06), ran 100–250 steps per iteration for its ~100 iterations (warmup 200,
-#: 1 chain, seeds 1 and 2, 128² Matérn 3/2 weak, q 0.98; a scratch script running numpyro's
-#: MCMC.warmup with collect_warmup and the num_steps field: steps per 25 warmup iterations
-#: 3 200–5 000 in the first window uncapped, 1 200–1 500 at depth 6, 580–750 at depth 5).
-#: 4 × (1000 + 1000), ``bench/bench_lgcp.py --one 128 matern32 weak --variance-kept 0.98
-#: --warmup-depth D``, one session: uncapped 200.9 s, depth 6 187.4 s, depth 5 179.2 s (min
-#: cell ESS 4219, 3987, 4043; R-hat ≤ 1.007); 256² squared exponential weak q 0.999: 207.8 s
-#: uncapped, 175.5 s at depth 5. But 256² squared exponential strong, 1 × (300 + 300), depth
-#: 5: 1021 steps per draw after warmup and min cell ESS 1.3 (uncapped, in an earlier
-#: session and again in a later one: 32.2 steps, ESS 13.0) — capped warmup draws are autocorrelated, so the adapted
-#: mass matrix is wrong where the data are strong. What the cap was after — the first
-#: window's long trees — INITIAL_HYPER_VARIANCE removes without it.
+#: step size is 0.005–0.06), ran 100–250 steps per iteration for its ~100 iterations
+#: (warmup 200, 1 chain, seeds 1 and 2, 128² Matérn 3/2 weak, q 0.98; a scratch script
+#: running numpyro's MCMC.warmup with collect_warmup and the num_steps field: steps per 25
+#: warmup iterations 3 200–5 000 in the first window uncapped, 1 200–1 500 at depth 6,
+#: 580–750 at depth 5). 4 × (1000 + 1000), ``bench/bench_lgcp.py --one 128 matern32 weak
+#: --variance-kept 0.98 --warmup-depth D``, one session: uncapped 200.9 s, depth 6 187.4 s,
+#: depth 5 179.2 s (min cell ESS 4219, 3987, 4043; R-hat ≤ 1.007); 256² squared exponential
+#: weak q 0.999: 207.8 s uncapped, 175.5 s at depth 5. But 256² squared exponential strong,
+#: 1 × (300 + 300), depth 5: 1021 steps per draw after warmup and min cell ESS 1.3
+#: (uncapped, in an earlier session and again in a later one: 32.2 steps, ESS 13.0) —
+#: capped warmup draws are autocorrelated, so the adapted mass matrix is wrong where the
+#: data are strong. What the cap was after — the first window's long trees —
+#: INITIAL_HYPER_VARIANCE removes without it.
 WARMUP_TREE_DEPTH = None
 
 #: variance per unconstrained coordinate (log σ, logit of each ℓ's unit position) of the
 #: (σ, ℓ) block of the inverse mass matrix that warmup starts from, for a truncated field
 #: with the pilot map (numpyro starts at the identity; its first mass-matrix window ends
-#: after 100 warmup iterations). Warmup adapts the block from this start by numpyro's
-#: usual windows; trees are not capped. With the identity σ and ℓ (posterior sd ≈ 0.05–0.3
-#: in these coordinates, correlated) forced step sizes of 0.005–0.06 and 100–250 leapfrog
-#: steps per iteration in the first window. Measured (scratch script: numpyro MCMC.warmup, 1 chain, warmup 300,
-#: collect_warmup and the num_steps field): 128² Matérn 3/2 weak q 0.98, seed 1, warmup
-#: steps in all 21 590 with the identity, 14 714 of them in the first 100 iterations;
-#: 9 862 (3 032) starting at 0.01, 10 860 at 0.03, 10 744 at 0.003. 256² squared
-#: exponential strong q 0.999, seeds 1–3: 25 169, 26 796, 35 618 with the identity
-#: against 24 620, 20 919, 19 878 at 0.01 (0.003 was worse there: 33 616, seed 1).
-#: Adapted block at the end of the warmups printed: var(log σ) 0.008–0.013, var of ℓ's
-#: logit 0.065–0.084 (weak) and 0.002–0.004 (strong). Bench, one session, one run at a
-#: time, start 1 (numpyro's identity) against 0.01: ``bench/bench_lgcp.py --one 128
-#: matern32 weak --variance-kept 0.98 [--start-hyper-variance 1]``, 4 × (1000 + 1000):
-#: 208.2 s against 178.4 and 180.6 s (two runs); ``--one 256 squared_exponential weak
-#: --variance-kept 0.999``: 200.9 s against 179.7 and 184.0 s (31 steps per draw in all);
-#: ``--one 256 squared_exponential strong --chains 1 --warmup 300 --draws 300
-#: --variance-kept 0.999``: min cell ESS 13.0 in 65.6 s (32.2 steps per draw) against
-#: 45.9 in 78.0 s (63 steps per draw; one chain, one seed). Not measured: with per-scan
-#: terms (where ρ₀ is sampled too), anisotropic ℓ, or the dense form of the map.
+#: after 100 warmup iterations). Warmup adapts the block from this start by numpyro's usual
+#: windows; trees are not capped. With the identity σ and ℓ (posterior sd ≈ 0.05–0.3 in
+#: these coordinates, correlated) forced step sizes of 0.005–0.06 and 100–250 leapfrog
+#: steps per iteration in the first window. Measured (scratch script: numpyro MCMC.warmup,
+#: 1 chain, warmup 300, collect_warmup and the num_steps field): 128² Matérn 3/2 weak q
+#: 0.98, seed 1, warmup steps in all 21 590 with the identity, 14 714 of them in the first
+#: 100 iterations; 9 862 (3 032) starting at 0.01, 10 860 at 0.03, 10 744 at 0.003. 256²
+#: squared exponential strong q 0.999, seeds 1–3: 25 169, 26 796, 35 618 with the identity
+#: against 24 620, 20 919, 19 878 at 0.01 (0.003 was worse there: 33 616, seed 1). Adapted
+#: block at the end of the warmups printed: var(log σ) 0.008–0.013, var of ℓ's logit
+#: 0.065–0.084 (weak) and 0.002–0.004 (strong). Bench, one session, one run at a time,
+#: start 1 (numpyro's identity) against 0.01: ``bench/bench_lgcp.py --one 128 matern32 weak
+#: --variance-kept 0.98 [--start-hyper-variance 1]``, 4 × (1000 + 1000): 208.2 s against
+#: 178.4 and 180.6 s (two runs); ``--one 256 squared_exponential weak --variance-kept
+#: 0.999``: 200.9 s against 179.7 and 184.0 s (31 steps per draw in all); ``--one 256
+#: squared_exponential strong --chains 1 --warmup 300 --draws 300 --variance-kept 0.999``:
+#: min cell ESS 13.0 in 65.6 s (32.2 steps per draw) against 45.9 in 78.0 s (63 steps per
+#: draw; one chain, one seed). Not measured: with per-scan terms (where ρ₀ is sampled too),
+#: anisotropic ℓ, or the dense form of the map.
 INITIAL_HYPER_VARIANCE = 0.01
 
 #: Why a truncated field with the pilot map runs the chains of each chain process vectorised
