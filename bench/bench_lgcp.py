@@ -366,13 +366,15 @@ def main():
                          "has its pilot map (models.lgcp.INITIAL_HYPER_VARIANCE; 1 is numpyro's identity)")
     ap.add_argument("--parts", default="abcd")
     args = ap.parse_args()
-    if args.warmup_depth is not None or args.start_hyper_variance is not None:
+    # sampler constants of models.lgcp set from the command line (and passed on to the parts' runs)
+    knobs = [(flag, name, value) for flag, name, value in
+             (("--warmup-depth", "WARMUP_TREE_DEPTH", args.warmup_depth),
+              ("--start-hyper-variance", "INITIAL_HYPER_VARIANCE", args.start_hyper_variance)) if value is not None]
+    if knobs:
         from sceneprior.models import lgcp
 
-        if args.warmup_depth is not None:
-            lgcp.WARMUP_TREE_DEPTH = args.warmup_depth
-        if args.start_hyper_variance is not None:
-            lgcp.INITIAL_HYPER_VARIANCE = args.start_hyper_variance
+        for _, name, value in knobs:
+            setattr(lgcp, name, value)
     if args.one:
         return gradient_cost(args) if args.gradient else one(args)
     if args.quick:
@@ -382,10 +384,8 @@ def main():
         sizes = args.sizes or [32, 64, 128, 256]
     base = [sys.executable, __file__, "--chains", str(args.chains), "--warmup", str(args.warmup),
             "--draws", str(args.draws), "--variance-kept", str(args.variance_kept)]
-    if args.warmup_depth is not None:
-        base += ["--warmup-depth", str(args.warmup_depth)]
-    if args.start_hyper_variance is not None:
-        base += ["--start-hyper-variance", str(args.start_hyper_variance)]
+    for flag, _, value in knobs:
+        base += [flag, str(value)]
 
     def call(*extra, scans=None):
         cmd = base + ["--scans", str(scans or args.scans)] + list(extra)

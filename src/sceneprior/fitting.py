@@ -98,12 +98,12 @@ def _check_memory(setup, stats, smp, source: str, thinning: int = 1) -> None:
 
     from .inference import CHAIN_PROCESS_BYTES, PROCESSES, chain_layout, chains_at_once, usable_cores
 
-    n_latent = int(setup.extra.get("n_latent", 0))
+    opts = nuts_options(setup, stats.grid.n_cells)
+    n_latent = opts["n_latent"]
     if not n_latent:
         return
     kept = -(-smp.draws // thinning)
-    running = chains_at_once(n_latent, smp.chains, stats.grid.n_cells,
-                             bool(setup.extra.get("vectorize_chain_groups")))
+    running = chains_at_once(n_latent, smp.chains, stats.grid.n_cells, opts["vectorize_groups"])
     need = smp.chains * 3 * kept * stats.grid.n_cells * 4.0 + running * 12 * n_latent * 8.0
     if chain_layout(n_latent, smp.chains, stats.grid.n_cells) == PROCESSES:
         # each chain process (one per usable core): its own jax and compiled sampler, and

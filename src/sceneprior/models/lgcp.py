@@ -431,7 +431,7 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None):
 
     kernel = model_spec.options.get("kernel", "matern32")
     variance_kept = model_spec.options.get("variance_kept", 1.0)
-    warmup_depth, alike, start_mass = None, False, None
+    with_map = False  # a truncated field with the pilot map: the sampler options below
     _check_variance_kept(variance_kept)
     obs = np.flatnonzero(stats.exposure > 0)
     a, b = gamma_prior(prior["rate_median"], prior["rate_log_sd"], stats.window_total)
@@ -444,9 +444,7 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None):
             basis, counts_all, exposure_all, lo, hi, prior["sigma_scale"])
         kernels = TruncatedFieldKernels(basis)
         n_latent, dense_mass, exclude = basis.n_latent, [("sigma", "ls_unit")], ["u_modes"]
-        if report["truncation"]["mode_preconditioner"]["form"] != "identity":
-            warmup_depth, alike = WARMUP_TREE_DEPTH, True
-            start_mass = {dense_mass[0]: INITIAL_HYPER_VARIANCE * np.eye(1 + lo.size)}  # σ and ℓ per axis
+        with_map = report["truncation"]["mode_preconditioner"]["form"] != "identity"
     else:
         spectrum, report, lo, hi = plan(stats, kernel, prior)
         pre = build_preconditioner(spectrum, stats.grid.shape, counts_all, exposure_all,
@@ -471,13 +469,13 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None):
         "n_latent": n_latent, "modes": basis,
         "dense_mass": dense_mass,
         "exclude_sites": exclude,
-        "warmup_tree_depth": warmup_depth,
-        # (σ, ℓ) block of the mass matrix warmup starts from (see INITIAL_HYPER_VARIANCE)
-        "initial_inverse_mass": start_mass,
+        "warmup_tree_depth": WARMUP_TREE_DEPTH if with_map else None,
+        # (σ, ℓ per axis) block of the mass matrix warmup starts from (see INITIAL_HYPER_VARIANCE)
+        "initial_inverse_mass": {dense_mass[0]: INITIAL_HYPER_VARIANCE * np.eye(1 + lo.size)} if with_map else None,
         # with the map every chain takes the same trees (31 steps per draw in the weak-data
         # bench cases), so chain processes may run theirs vectorised (see the comment after
         # WARMUP_TREE_DEPTH)
-        "vectorize_chain_groups": alike,
+        "vectorize_chain_groups": with_map,
         # ρ₀ (sampled only with per-scan terms) starts at its conditional mean given a flat field
         "init_strategy": init_to_value(values={"sigma": max(pre.pilot["sigma"], 0.05),
                                                "ls_unit": u_pilot[: lo.size],
@@ -608,7 +606,7 @@ def _mass_start(start) -> dict | str:
     """What NUTS's warmup started its mass matrix from, for summary.json."""
     if start is None:
         return "identity (numpyro's default)"
-    return {str("+".join(k)): {"variance_per_unconstrained_coordinate": float(np.diag(v)[0]), "size": int(len(v))}
+    return {"+".join(k): {"variance_per_unconstrained_coordinate": float(np.diag(v)[0]), "size": int(len(v))}
             for k, v in start.items()} | {"elsewhere": "identity"}
 
 
