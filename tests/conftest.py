@@ -291,7 +291,8 @@ def rain_runs(tmp_path_factory):
     return {"data": data, "od": write_run(od), "plain": write_run(plain), "od_result": od}
 
 
-def batched_nuts(model, inputs: dict, dense_mass, keep, warmup: int, draws: int, init_strategy=None):
+def batched_nuts(model, inputs: dict, dense_mass, keep, warmup: int, draws: int, init_strategy=None,
+                 extra_uturn_checks: bool = False):
     """One compiled NUTS run over many data sets, for replicated checks (coverage, SBC):
     numpyro's functional NUTS (``numpyro.infer.hmc.hmc``, the kernel ``MCMC`` uses) jitted
     once and mapped over data sets with ``jax.lax.map``, so each data set gets its own
@@ -302,7 +303,9 @@ def batched_nuts(model, inputs: dict, dense_mass, keep, warmup: int, draws: int,
     over all chains' states (``inference.chain_layout``); 30 data sets of the LGCP checks
     took 30.1 s mapped against 38.5 s vmapped, compilation included (measured).
 
-    ``inputs``: one data set's model arguments (fixes shapes and the starting point).
+    ``inputs``: one data set's model arguments (fixes shapes and the starting point);
+    ``extra_uturn_checks``: the trees of ``sceneprior.nuts_tree``, as production builds them
+    where the model's set-up asks (``setup.extra["extra_uturn_checks"]``).
     Returns ``fit(batch, seed)``: ``batch`` a list of argument dicts of that form; result
     {site: numpy array (data set, draw, ...)} for the sites in ``keep`` plus
     ``num_steps``, warmup draws dropped."""
@@ -331,9 +334,15 @@ def batched_nuts(model, inputs: dict, dense_mass, keep, warmup: int, draws: int,
     run = jax.jit(lambda keys, kws: jax.lax.map(lambda a: one_chain(*a), (keys, kws)))
 
     def fit(batch, seed: int) -> dict:
+        import contextlib
+
+        from sceneprior.nuts_tree import extra_checks
+
         stacked = jax.tree.map(lambda *xs: jnp.stack([jnp.asarray(x) for x in xs]), *batch)
         keys = jax.random.split(jax.random.PRNGKey(seed), len(batch))
-        return jax.tree.map(np.asarray, run(keys, stacked))
+        with extra_checks() if extra_uturn_checks else contextlib.nullcontext():  # traced on the first call
+            out = run(keys, stacked)
+        return jax.tree.map(np.asarray, out)
 
     return fit
 

@@ -75,11 +75,14 @@ def machinery():
     # mass matrix to start warmup from
     assert setup.extra["warmup_tree_depth"] is None and setup.extra["vectorize_chain_groups"] is False
     assert setup.extra["initial_inverse_mass"] is None
+    # NUTS trees with the extra U-turn checks (sceneprior.nuts_tree), the step size fixed
+    assert setup.extra["extra_uturn_checks"] is True and setup.extra["step_size_jitter"] == 0.0
     inp = dict(setup.inputs)
     kernels = inp.pop("kernels")
     model = partial(lgcp.lgcp_model, kernels=kernels)
     run = batched_nuts(model, inp, setup.extra["dense_mass"],
-                       ("sigma", "length_scale", "field", "log_z", "log_window_integral"), WARMUP, DRAWS)
+                       ("sigma", "length_scale", "field", "log_z", "log_window_integral"), WARMUP, DRAWS,
+                       extra_uturn_checks=setup.extra["extra_uturn_checks"])
     return dict(kind=kind, prior=prior, setup=setup, inp=inp, kernels=kernels, run=run,
                 spectrum=kernels.spectrum)
 
@@ -329,6 +332,8 @@ def test_lgcp_run_outputs_on_a_polar_masked_grid(tmp_path, variance_kept):
     z = (s["rate"]["mean"] - truth) / s["rate"]["sd"]
     assert abs(z) < 3.5, z
     assert s["lgcp"]["embedding"]["method"] in ("embedding", "periodised")
+    assert "halves of every merged subtree" in s["sampler"]["nuts_trees"]
+    assert s["sampler"]["step_size_after_warmup"] == "the adapted step size, fixed"
     if variance_kept == 1.0:
         assert s["lgcp"]["field_parameters"]["truncation"].startswith("none")
     else:

@@ -168,7 +168,8 @@ def run_nuts(fn, inputs: dict, sampler, progress: bool = True, dense_mass: bool 
              dims: dict | None = None, coords: dict | None = None, init_strategy=None,
              exclude_sites=(), thinning: int = 1, n_latent: int = 0, n_cells: int = 0,
              warmup_tree_depth: int | None = None, vectorize_groups: bool = False,
-             inverse_mass_matrix: dict | None = None):
+             inverse_mass_matrix: dict | None = None, step_size_jitter: float = 0.0,
+             extra_uturn_checks: bool = False):
     """Sample ``fn(**inputs)`` with NUTS; returns InferenceData whose sample_stats hold the
     leapfrog steps and divergences per draw. ``exclude_sites``: latent sites not kept (a
     field's white noise; its deterministic images are kept instead); ``thinning``: keep
@@ -181,6 +182,10 @@ def run_nuts(fn, inputs: dict, sampler, progress: bool = True, dense_mass: bool 
     ``inverse_mass_matrix``: the mass matrix warmup starts from, as numpyro's NUTS takes it
     ({tuple of site names: matrix or diagonal}; sites not named start at the identity);
     warmup adapts it from there (``models.lgcp.INITIAL_HYPER_VARIANCE`` says why);
+    ``step_size_jitter``: after warmup each transition's step size is the adapted one times
+    U(1 − j, 1 + j) (:func:`jittered_step_size` says why; 0: numpyro's fixed step size);
+    ``extra_uturn_checks``: NUTS trees that also check the U-turn criterion across the two
+    halves of every merged subtree (:mod:`sceneprior.nuts_tree` says why);
     ``vectorize_groups``: the model's chains are alike in cost per iteration (the same tree
     depths), so the chain processes of the "processes" layout may run theirs vectorised
     (:func:`run_chains_in_processes`)."""
@@ -193,15 +198,16 @@ def run_nuts(fn, inputs: dict, sampler, progress: bool = True, dense_mass: bool 
     # start chains at prior medians: an arbitrary start far out in log-intensity makes
     # warmup spend its first hundreds of iterations walking in
     init_strategy = init_strategy or init_to_median(num_samples=15)
+    # the NUTS kernel's options, as one bundle through every layout (see _sample)
+    kernel = {"dense_mass": dense_mass, "init_strategy": init_strategy, "warmup_tree_depth": warmup_tree_depth,
+              "inverse_mass_matrix": inverse_mass_matrix, "step_size_jitter": step_size_jitter,
+              "extra_uturn_checks": extra_uturn_checks}
     if layout == PROCESSES:
-        return run_chains_in_processes(fn, inputs, sampler, progress=progress, dense_mass=dense_mass,
-                                       dims=dims, coords=coords, init_strategy=init_strategy,
+        return run_chains_in_processes(fn, inputs, sampler, kernel, progress=progress, dims=dims, coords=coords,
                                        exclude_sites=exclude_sites, thinning=thinning,
-                                       warmup_tree_depth=warmup_tree_depth, vectorize_groups=vectorize_groups,
-                                       inverse_mass_matrix=inverse_mass_matrix)
-    mcmc = _sample(fn, inputs, jax.random.PRNGKey(sampler.seed), dense_mass, init_strategy, sampler.warmup,
-                   sampler.draws, thinning, exclude_sites, sampler.chains, layout, progress and sampler.progress,
-                   warmup_tree_depth, inverse_mass_matrix)
+                                       vectorize_groups=vectorize_groups)
+    mcmc = _sample(fn, inputs, jax.random.PRNGKey(sampler.seed), kernel, sampler.warmup, sampler.draws, thinning,
+                   exclude_sites, sampler.chains, layout, progress and sampler.progress)
     return az.from_numpyro(mcmc, log_likelihood=False, dims=dims, coords=coords)
 
 
@@ -209,23 +215,101 @@ def run_nuts(fn, inputs: dict, sampler, progress: bool = True, dense_mass: bool 
 MAX_TREE_DEPTH = 10
 
 
-def _sample(fn, inputs, key, dense_mass, init_strategy, warmup, draws, thinning, exclude_sites, chains, method,
-            progress, warmup_tree_depth=None, inverse_mass_matrix=None):
+def _sample(fn, inputs, key, kernel: dict, warmup, draws, thinning, exclude_sites, chains, method, progress):
     """numpyro's NUTS and MCMC as every layout runs them; returns the finished MCMC.
-    ``warmup_tree_depth``, ``inverse_mass_matrix``: see :func:`run_nuts` (numpyro takes
-    (warmup, sampling) depths; it fills in the mass matrix dict it is given, so it gets a copy)."""
+    ``kernel``: the NUTS options of :func:`run_nuts` (``dense_mass``, ``init_strategy``,
+    ``warmup_tree_depth``, ``inverse_mass_matrix``, ``step_size_jitter``,
+    ``extra_uturn_checks``; numpyro takes (warmup, sampling) depths, and it fills in the mass
+    matrix dict it is given, so it gets a copy)."""
     import jax.numpy as jnp
     from numpyro.infer import MCMC, NUTS
 
-    depth = MAX_TREE_DEPTH if warmup_tree_depth is None else (int(warmup_tree_depth), MAX_TREE_DEPTH)
-    start = None if inverse_mass_matrix is None else {k: jnp.asarray(v) for k, v in inverse_mass_matrix.items()}
-    kernel = NUTS(fn, dense_mass=dense_mass, init_strategy=init_strategy, max_tree_depth=depth,
-                  inverse_mass_matrix=start)
-    mcmc = MCMC(kernel, num_warmup=warmup, num_samples=draws, num_chains=chains, chain_method=method,
+    wd, imm = kernel["warmup_tree_depth"], kernel["inverse_mass_matrix"]
+    depth = MAX_TREE_DEPTH if wd is None else (int(wd), MAX_TREE_DEPTH)
+    start = None if imm is None else {k: jnp.asarray(v) for k, v in imm.items()}
+    tuned = {k: v for k, v in (("step_size_jitter", float(kernel.get("step_size_jitter") or 0.0)),
+                                ("extra_uturn_checks", bool(kernel.get("extra_uturn_checks")))) if v}
+    cls = _tuned_nuts(NUTS) if tuned else NUTS
+    nuts = cls(fn, dense_mass=kernel["dense_mass"], init_strategy=kernel["init_strategy"], max_tree_depth=depth,
+               inverse_mass_matrix=start, **tuned)
+    mcmc = MCMC(nuts, num_warmup=warmup, num_samples=draws, num_chains=chains, chain_method=method,
                 progress_bar=progress, thinning=thinning)
     drop = tuple(f"~z.{name}" for name in exclude_sites)
     mcmc.run(key, extra_fields=("diverging", "num_steps") + drop, **inputs)
     return mcmc
+
+
+def jittered_step_size(key, i, step_size, warmup: int, jitter: float):
+    """The step size of one NUTS transition: during warmup (iteration ``i`` < ``warmup``)
+    numpyro's adapted ``step_size``; after it, ``step_size`` · U(1 − jitter, 1 + jitter), drawn
+    afresh each transition from ``key``. Why: a fixed step size can resonate with the
+    trajectories of a near-Gaussian posterior, so that the no-U-turn criterion misses the
+    turn for a whole chain — measured on the 32² Matérn 3/2 LGCP (bench/bench_lgcp.py's weak
+    data, 4 × (1000 + 1000), seed 1): one chain of four took 295 leapfrog steps per draw
+    against 31 for the others at near-equal adapted step sizes (0.198 against 0.176–0.195)
+    and mass matrices; continued at its own step size × 0.9, 0.97, 1.03, 1.1 it took 31, 31,
+    17.5, 15 steps, at × 1.0 280 (``models.lgcp.STEP_SIZE_JITTER`` has the full scan and
+    why the jitter is not on by default). A step size drawn independently of the state each
+    transition keeps the posterior invariant (a mixture of kernels that each do); randomising
+    it to break such periodicities is Neal's remedy (Handbook of MCMC, 2011, ch. 5, §5.4.2.2;
+    from memory)."""
+    import jax
+    import jax.numpy as jnp
+
+    u = jax.random.uniform(jax.random.fold_in(key, 0x6A17), (), minval=1.0 - jitter, maxval=1.0 + jitter)
+    return jnp.where(i >= warmup, step_size * u.astype(jnp.result_type(step_size)), step_size)
+
+
+_TUNED = {}
+
+
+def _tuned_nuts(base):
+    """numpyro's NUTS (``base``, imported where it is used so tests may replace it) with two
+    options: ``step_size_jitter`` — each post-warmup transition's step size from
+    :func:`jittered_step_size` (warmup and its adaptation are numpyro's own, the same draws;
+    the adapted step size stays in the state between transitions) — and
+    ``extra_uturn_checks`` — the trees of :mod:`sceneprior.nuts_tree`."""
+    if base in _TUNED:
+        return _TUNED[base]
+
+    class TunedNUTS(base):
+        def __init__(self, *args, step_size_jitter: float = 0.0, extra_uturn_checks: bool = False, **kwargs):
+            if not 0.0 <= step_size_jitter < 1.0:
+                raise ValueError(f"step_size_jitter must be in [0, 1), got {step_size_jitter}")
+            self._jitter = float(step_size_jitter)
+            self._extra_checks = bool(extra_uturn_checks)
+            self._jitter_from = 0
+            super().__init__(*args, **kwargs)
+
+        def init(self, rng_key, num_warmup, *args, **kwargs):
+            self._jitter_from = int(num_warmup)
+            return super().init(rng_key, num_warmup, *args, **kwargs)
+
+        def sample(self, state, model_args, model_kwargs):
+            import contextlib
+            from functools import partial
+
+            import jax
+            import jax.numpy as jnp
+
+            from .nuts_tree import extra_checks
+
+            adapted = state.adapt_state.step_size
+            if self._jitter:
+                draw = partial(jittered_step_size, warmup=self._jitter_from, jitter=self._jitter)
+                if state.rng_key.ndim > 1:  # vectorised chains: numpyro's kernel is vmapped inside, its state batched
+                    draw = jax.vmap(draw)
+                eps = draw(state.rng_key, state.i, adapted)
+                state = state._replace(adapt_state=state.adapt_state._replace(step_size=eps))
+            with extra_checks() if self._extra_checks else contextlib.nullcontext():  # traced here
+                new = super().sample(state, model_args, model_kwargs)
+            if self._jitter:
+                kept = jnp.where(state.i >= self._jitter_from, adapted, new.adapt_state.step_size)
+                new = new._replace(adapt_state=new.adapt_state._replace(step_size=kept))
+            return new
+
+    _TUNED[base] = TunedNUTS
+    return TunedNUTS
 
 
 def _end_with_parent() -> None:
@@ -279,9 +363,8 @@ def _chain_group(job_bytes: bytes, group: list[int], core: int | None, keys, res
         n = len(group)
         key = jnp.asarray(keys if n > 1 else keys[0], dtype=jnp.uint32)  # 2-D: one key per chain
         method = "vectorized" if job["vectorize"] and n > 1 else "sequential"
-        mcmc = _sample(job["fn"], job["inputs"], key, job["dense_mass"], job["init_strategy"], job["warmup"],
-                       job["draws"], job["thinning"], job["exclude_sites"], n, method,
-                       job["bar"] and group[0] == 0, job["warmup_tree_depth"], job["inverse_mass_matrix"])
+        mcmc = _sample(job["fn"], job["inputs"], key, job["kernel"], job["warmup"], job["draws"], job["thinning"],
+                       job["exclude_sites"], n, method, job["bar"] and group[0] == 0)
         draws = {k: np.asarray(v) for k, v in jax.device_get(mcmc.get_samples(group_by_chain=True)).items()}
         extra = jax.device_get(mcmc.get_extra_fields(group_by_chain=True))
         stats = {"diverging": np.asarray(extra["diverging"]), "n_steps": np.asarray(extra["num_steps"])}
@@ -296,14 +379,13 @@ def _chain_names(group) -> str:
     return f"chain {group[0] + 1}" if len(group) == 1 else f"chains {group[0] + 1}–{group[-1] + 1}"
 
 
-def run_chains_in_processes(fn, inputs: dict, sampler, progress: bool = True, dense_mass=False, dims=None,
-                            coords=None, init_strategy=None, exclude_sites=(), thinning: int = 1,
-                            warmup_tree_depth: int | None = None, vectorize_groups: bool = False,
-                            inverse_mass_matrix: dict | None = None):
+def run_chains_in_processes(fn, inputs: dict, sampler, kernel: dict, progress: bool = True, dims=None,
+                            coords=None, exclude_sites=(), thinning: int = 1, vectorize_groups: bool = False):
     """NUTS with the chains in separate processes (``chain_layout``'s "processes"): one process
     per usable core, each pinned to its core and running a group of chains
     (:func:`chain_groups`) — vectorised when ``vectorize_groups``, else one after another —
-    so each process starts jax and compiles the sampler once. Chain c uses the c-th of
+    so each process starts jax and compiles the sampler once; ``kernel`` is the NUTS options
+    bundle of :func:`run_nuts` (:func:`_sample`). Chain c uses the c-th of
     ``jax.random.split(PRNGKey(seed), chains)``, as numpyro's one-after-another chains do:
     one after another within a process, the draws are theirs; vectorised, they agree up to
     rounding at first (1.3 × 10⁻⁵ in tests/test_chains.py's toy model) and drift apart over
@@ -328,11 +410,9 @@ def run_chains_in_processes(fn, inputs: dict, sampler, progress: bool = True, de
     root = jax.random.PRNGKey(sampler.seed)
     keys = np.asarray(jax.random.split(root, chains) if chains > 1 else root[None])  # numpyro: one chain, no split
     show = progress and sampler.progress
-    job = pickle.dumps({"fn": fn, "inputs": inputs, "dense_mass": dense_mass, "init_strategy": init_strategy,
-                        "exclude_sites": tuple(exclude_sites), "thinning": thinning, "warmup": sampler.warmup,
-                        "draws": sampler.draws, "bar": show,
-                        "warmup_tree_depth": warmup_tree_depth, "vectorize": bool(vectorize_groups),
-                        "inverse_mass_matrix": inverse_mass_matrix})
+    job = pickle.dumps({"fn": fn, "inputs": inputs, "kernel": kernel, "exclude_sites": tuple(exclude_sites),
+                        "thinning": thinning, "warmup": sampler.warmup, "draws": sampler.draws, "bar": show,
+                        "vectorize": bool(vectorize_groups)})
     ctx = mp.get_context("spawn")  # jax is not fork-safe
     results = ctx.Queue()
     running = {}

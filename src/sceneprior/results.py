@@ -286,6 +286,20 @@ def _gate_entry(result) -> dict:
     return entry
 
 
+def _nuts_notes(extra: dict) -> dict:
+    """How NUTS chose its step size after warmup and built its trees (``inference.run_nuts``'s
+    step_size_jitter and extra_uturn_checks, as the model's set-up asked)."""
+    jitter = extra.get("step_size_jitter")
+    return {
+        "step_size_after_warmup": ("the adapted step size, fixed" if not jitter else
+                                   f"the adapted step size × U({1 - jitter:g}, {1 + jitter:g}), drawn afresh each "
+                                   "transition (the posterior is unchanged)"),
+        "nuts_trees": ("numpyro's, with the U-turn criterion also checked across the two halves of every merged "
+                       "subtree (sceneprior/nuts_tree.py: stops trajectories that circle at step sizes where the "
+                       "leapfrog period is near a power of two)" if extra.get("extra_uturn_checks") else "numpyro's"),
+    }
+
+
 def _zone_rates(result) -> dict:
     """Rate posterior per named zone: Σ_c λ_c |c ∩ W ∩ Z| per draw (DESIGN.md §4)."""
     if not result.spec.zones:
@@ -352,7 +366,8 @@ def summary_dict(result) -> dict:
         "zones": _zone_rates(result),
         "sampler": {"method": spec.sampler.method, "chains": spec.sampler.chains,
                     "warmup": spec.sampler.warmup, "draws": spec.sampler.draws,
-                    "seed": spec.sampler.seed},
+                    "seed": spec.sampler.seed,
+                    **(_nuts_notes(getattr(result.setup, "extra", {})) if spec.sampler.method == "nuts" else {})},
         "diagnostics": result.diagnostics,
         "gate": _gate_entry(result),
         "draws_kept": {

@@ -426,6 +426,37 @@ INITIAL_HYPER_VARIANCE = 0.01
 #: without the map (trees of varying depth).
 
 
+#: after warmup, each NUTS transition's step size is the adapted one × U(1 − j, 1 + j)
+#: (``inference.jittered_step_size``); 0: numpyro's fixed step size. NOT on by default: it
+#: dilutes a resonance but does not remove it. Measured on the 32² Matérn 3/2 bench fit
+#: (``bench/bench_lgcp.py --one 32 matern32 weak``'s set-up and data, 4 × (1000 + 1000), seed
+#: 1, chains one after another on one core; scratch scripts): at the adapted step sizes
+#: (0.195, 0.198, 0.180, 0.176) the chains took 31, 295, 31, 31 leapfrog steps per draw.
+#: Continued from the end of warmup at the adapted step size × 0.85 … 1.15 (40 draws per
+#: factor), chains 1 and 2 both resonate in the same narrow band of step sizes, 0.196–0.205
+#: (184–429 steps per draw; our reading: for unit-scale directions the leapfrog period there,
+#: 2π/0.2 ≈ 32 steps, is a power of two, and the no-U-turn criterion misses the turn), take
+#: 31 steps below it and 15 above it (acceptance
+#: rates 0.79–0.87 below, 0.70–0.81 above). Dual averaging towards an acceptance of 0.8 ended
+#: at or just below the band in both (our reading: inside the band the acceptance, 0.76–0.85,
+#: no longer falls steadily with the step size). With j = 0.1 the same run took 68.8, 58.5,
+#: 38.5, 31 steps per draw (min cell ESS 1798 against 2126 at j = 0): the resonating chain
+#: 5× cheaper, the two near the band 1.2–2.2× dearer — a jittered step falls into the band
+#: some of the time wherever the band is within reach. Bench flag ``--step-size-jitter``. Read by ``setup`` and ``lgcp_sites``.
+STEP_SIZE_JITTER = 0.0
+
+#: NUTS trees with the extra U-turn checks of ``sceneprior.nuts_tree`` (across the halves of
+#: every merged subtree), which stop the resonating trajectories above: the same 32² run
+#: (4 × (1000 + 1000), seed 1, chains one after another on one core, timed until the draws
+#: were computed) took 31, 31, 31, 31 leapfrog steps per draw (adapted step sizes 0.194,
+#: 0.179, 0.184, 0.160) in 79.0 s, min cell ESS 1798, ESS of σ 650, against 31, 295, 31, 31
+#: steps in 154.5 s, 2126, 731 without them. Where nothing resonates they cost no time: 128²
+#: Matérn 3/2 weak q 0.98, ``bench/bench_lgcp.py --one 128 matern32 weak --variance-kept
+#: 0.98``, 4 × (1000 + 1000): 201.3 s with, 201.0 s without (one session, 31 steps per draw
+#: in both). Read by ``setup`` and ``lgcp_sites``; bench flag ``--extra-uturn-checks 0|1``.
+EXTRA_UTURN_CHECKS = True
+
+
 def setup(stats, prior: dict, model_spec, use_pad: bool | None = None):
     from .registry import ModelSetup
 
@@ -476,6 +507,8 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None):
         # bench cases), so chain processes may run theirs vectorised (see the comment after
         # WARMUP_TREE_DEPTH)
         "vectorize_chain_groups": with_map,
+        "step_size_jitter": STEP_SIZE_JITTER,  # see the constant (0: numpyro's fixed step size)
+        "extra_uturn_checks": EXTRA_UTURN_CHECKS,
         # ρ₀ (sampled only with per-scan terms) starts at its conditional mean given a flat field
         "init_strategy": init_to_value(values={"sigma": max(pre.pilot["sigma"], 0.05),
                                                "ls_unit": u_pilot[: lo.size],
