@@ -1,6 +1,6 @@
 """NUTS trees with the extra U-turn checks (``sceneprior.nuts_tree``): they stop trajectories
 that circle at a step size where the leapfrog period is near a power of two, keep the
-target distribution, and leave plain numpyro NUTS in the same process unchanged."""
+target distribution; the checkpoint bookkeeping inside a subtree is checked directly."""
 
 from __future__ import annotations
 
@@ -16,7 +16,8 @@ from sceneprior import inference
 
 #: found by scanning fixed step sizes on these targets (numpyro 0.22, seed 0): at 0.204 plain
 #: NUTS on 1 000 iid standard normals took 281 leapfrog steps per draw, on the Gamma target
-#: below 72; with the checks 27 and 23; at 0.2 and 0.208 both took the same trees (29 and 15)
+#: below 72; with the checks 27 and 23; on the Gamma target at 0.2 and 0.208 both took the same
+#: trees (29 and 15 steps per draw)
 CIRCLING_STEP = 0.204
 DIM = 1000
 
@@ -38,10 +39,10 @@ def test_extra_checks_stop_a_circling_trajectory():
     period; the draws keep the target's variance (1, the standard normal's)."""
     inference.configure_jax()
     tuned = inference._tuned_nuts(NUTS)
-    _, plain_steps = _run(NUTS, _normal, CIRCLING_STEP, 0, 60)
+    _, plain_steps = _run(NUTS, _normal, CIRCLING_STEP, 0, 30)
     if plain_steps.mean() < 100:
         pytest.skip(f"numpyro's NUTS no longer circles here ({plain_steps.mean():.0f} steps per draw)")
-    y, steps = _run(tuned, _normal, CIRCLING_STEP, 50, 300, extra_uturn_checks=True)
+    y, steps = _run(tuned, _normal, CIRCLING_STEP, 30, 200, extra_uturn_checks=True)
     assert steps.mean() < 40
     per_draw = (y * y).mean(axis=1)  # each draw's mean square over the coordinates
     ess = float(az.ess(per_draw[None, :]))
@@ -64,7 +65,7 @@ def test_extra_checks_keep_a_skewed_target():
         return -jnp.sum(k * lx - jnp.exp(lx))
 
     y, steps = _run(inference._tuned_nuts(NUTS), potential, CIRCLING_STEP, 100, 400, extra_uturn_checks=True)
-    _, plain_steps = _run(NUTS, potential, CIRCLING_STEP, 0, 60)
+    _, plain_steps = _run(NUTS, potential, CIRCLING_STEP, 0, 30)
     assert steps.mean() < plain_steps.mean()  # the checks stopped some trees early
     x = np.exp(c + s * y)
     ref = stats.gamma(k)
@@ -76,26 +77,6 @@ def test_extra_checks_keep_a_skewed_target():
         ess = float(az.ess(per_draw[None, :]))
         mcse = per_draw.std() / np.sqrt(ess)
         assert abs(per_draw.mean() - float(expected)) < 4 * mcse, (name, per_draw.mean(), expected, mcse)
-
-
-def test_plain_nuts_unchanged_beside_checked_trees():
-    """Plain numpyro NUTS traced after a checked kernel in the same process takes its own
-    trees (the switch is read while a kernel is traced)."""
-    inference.configure_jax()
-    _run(inference._tuned_nuts(NUTS), _normal, CIRCLING_STEP, 0, 5, extra_uturn_checks=True)
-    y1, s1 = _run(NUTS, _normal, 0.2, 0, 30)
-    from numpyro.infer import hmc_util
-
-    from sceneprior import nuts_tree
-
-    assert hmc_util._double_tree is nuts_tree._double_tree  # installed, yet inactive here
-    hmc_util._double_tree = nuts_tree._NUMPYRO_DOUBLE_TREE
-    try:
-        y2, s2 = _run(NUTS, _normal, 0.2, 0, 30)
-    finally:
-        nuts_tree.install()
-    np.testing.assert_array_equal(s1, s2)
-    np.testing.assert_array_equal(y1, y2)
 
 
 def test_subtree_checks_cover_every_subtree_ending_at_a_leaf():

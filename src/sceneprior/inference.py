@@ -251,8 +251,8 @@ def jittered_step_size(key, i, step_size, warmup: int, jitter: float):
     17.5, 15 steps, at × 1.0 280 (``models.lgcp.STEP_SIZE_JITTER`` has the full scan and
     why the jitter is not on by default). A step size drawn independently of the state each
     transition keeps the posterior invariant (a mixture of kernels that each do); randomising
-    it to break such periodicities is Neal's remedy (Handbook of MCMC, 2011, ch. 5, §5.4.2.2;
-    from memory)."""
+    it to break such periodicities is Neal's remedy (Handbook of MCMC, 2011, ch. 5 "MCMC using
+    Hamiltonian dynamics", §5.4.2; from memory, subsection not checked)."""
     import jax
     import jax.numpy as jnp
 
@@ -291,13 +291,14 @@ def _tuned_nuts(base):
 
             import jax
             import jax.numpy as jnp
+            from numpyro.util import is_prng_key
 
             from .nuts_tree import extra_checks
 
             adapted = state.adapt_state.step_size
             if self._jitter:
                 draw = partial(jittered_step_size, warmup=self._jitter_from, jitter=self._jitter)
-                if state.rng_key.ndim > 1:  # vectorised chains: numpyro's kernel is vmapped inside, its state batched
+                if not is_prng_key(state.rng_key):  # vectorised chains: a batch of keys, numpyro's kernel vmapped
                     draw = jax.vmap(draw)
                 eps = draw(state.rng_key, state.i, adapted)
                 state = state._replace(adapt_state=state.adapt_state._replace(step_size=eps))

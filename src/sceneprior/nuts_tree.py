@@ -12,8 +12,11 @@ merge of a left subtree L and a right subtree R into one, the criterion also on
     L plus the first state of R   (ends: first state of L, first state of R), and
     the last state of L plus R    (ends: last state of L, last state of R),
 
-whose spans are not whole periods when L ∪ R is. This is the extra check of Stan's NUTS
-(from memory; Stan's base_nuts, since about 2.21), here inside numpyro's tree builder: at
+whose spans are not whole periods when L ∪ R is. The idea is the extra check of Stan's NUTS
+(src/stan/mcmc/hmc/nuts/base_nuts.hpp; from memory, release not checked), adapted here to
+numpyro's criterion, which subtracts half of the two end momenta from the sum (Betancourt
+2017, "A conceptual introduction to Hamiltonian Monte Carlo", appendix A.4.2, as numpyro's
+source cites it), and placed inside numpyro's tree builder: at
 the top-level doubling (:func:`_double_tree`) and inside each new subtree, where numpyro's
 checkpoints hold the first state and running momentum sum of every subtree that ends at
 the current leaf; the last state of a left half is kept beside them (``r_prev_ckpts``).
@@ -21,19 +24,21 @@ the current leaf; the last state of a left half is kept beside them (``r_prev_ck
 Validity: the checks are functions of a subtree's states, applied at every merge of the
 binary tree whether that merge is a top-level doubling or inside a new subtree, so the
 set of trees on which sampling stops is the same from every starting state of the final
-tree — the condition NUTS's reversibility rests on (Hoffman & Gelman 2014, §3.1; from
+tree — the condition NUTS's reversibility rests on (Hoffman & Gelman 2014, §3; from
 memory). They only ever stop a trajectory earlier.
 
 Switch: numpyro's ``hmc_util._double_tree`` is replaced by :func:`_double_tree`, which runs
-numpyro's own function unless :func:`extra_checks` is active while the transition is
-traced — so plain ``numpyro.infer.NUTS`` anywhere in the process is unchanged, and a kernel
-asks for the checks by tracing its transition inside ``with extra_checks():``
-(``inference._tuned_nuts``).
+numpyro's own function unless :func:`extra_checks` is active in this thread while the
+transition is traced — so plain ``numpyro.infer.NUTS`` anywhere in the process is
+unchanged, and a kernel asks for the checks by tracing its transition inside ``with
+extra_checks():`` (``inference._tuned_nuts``). Written against numpyro 0.22 (pinned in
+pyproject.toml); :func:`install` refuses internals whose parameters differ.
 """
 
 from __future__ import annotations
 
 import contextlib
+import threading
 
 import jax
 import jax.numpy as jnp
@@ -44,7 +49,7 @@ from numpyro.util import cond, identity, while_loop
 
 __all__ = ["extra_checks", "install"]
 
-_ACTIVE = [False]  # trace-time switch (see the module docstring)
+_SWITCH = threading.local()  # .active: the trace-time switch, per thread (see the module docstring)
 _NUMPYRO_DOUBLE_TREE = _hu._double_tree
 
 
@@ -53,12 +58,12 @@ def extra_checks():
     """Within this context, NUTS transitions traced by numpyro's tree builder use the
     extra checks."""
     install()
-    before = _ACTIVE[0]
-    _ACTIVE[0] = True
+    before = getattr(_SWITCH, "active", False)
+    _SWITCH.active = True
     try:
         yield
     finally:
-        _ACTIVE[0] = before
+        _SWITCH.active = before
 
 
 #: the numpyro internals this module calls or replaces, with their parameters (numpyro
@@ -103,7 +108,7 @@ def _double_tree(current_tree, vv_update, kinetic_fn, inverse_mass_matrix, step_
     """numpyro's ``_double_tree`` (same arguments and result), with the extra checks when
     :func:`extra_checks` is active: on the new subtree's internal merges, and on the merge
     of the current tree with it."""
-    if not _ACTIVE[0]:
+    if not getattr(_SWITCH, "active", False):
         return _NUMPYRO_DOUBLE_TREE(current_tree, vv_update, kinetic_fn, inverse_mass_matrix, step_size, going_right,
                                     rng_key, energy_current, max_delta_energy, r_ckpts, r_sum_ckpts)
     key, transition_key = random.split(rng_key)

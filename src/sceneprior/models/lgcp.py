@@ -450,7 +450,9 @@ STEP_SIZE_JITTER = 0.0
 #: (4 × (1000 + 1000), seed 1, chains one after another on one core, timed until the draws
 #: were computed) took 31, 31, 31, 31 leapfrog steps per draw (adapted step sizes 0.194,
 #: 0.179, 0.184, 0.160) in 79.0 s, min cell ESS 1798, ESS of σ 650, against 31, 295, 31, 31
-#: steps in 154.5 s, 2126, 731 without them. Where nothing resonates they cost no time: 128²
+#: steps in 154.5 s, 2126, 731 without them (min cell ESS per second 22.8 against 13.8; per
+#: draw lower, one seed — not separated from chain-to-chain noise). Where nothing resonates
+#: they cost no time: 128²
 #: Matérn 3/2 weak q 0.98, ``bench/bench_lgcp.py --one 128 matern32 weak --variance-kept
 #: 0.98``, 4 × (1000 + 1000): 201.3 s with, 201.0 s without (one session, 31 steps per draw
 #: in both). Read by ``setup`` and ``lgcp_sites``; bench flag ``--extra-uturn-checks 0|1``.
