@@ -133,6 +133,22 @@ def test_chains_in_processes_equal_sequential(monkeypatch, vectorise):
     assert d["chains"] == 3 and d["draws"] == 100 and d["leapfrog_steps_mean"] > 0
 
 
+def _recording_nuts(monkeypatch, record):
+    """numpyro's NUTS replaced by a subclass named Recording that appends ``record(kernel,
+    keyword arguments)`` for each kernel built; returns that list and a 1 × (20 + 20) sampler."""
+    seen = []
+
+    class Recording(NUTS):
+        def __init__(self, *a, **k):
+            seen.append(record(self, k))
+            super().__init__(*a, **k)
+
+    monkeypatch.setattr(numpyro.infer, "NUTS", Recording)
+    smp = _Sampler()
+    smp.chains, smp.warmup, smp.draws = 1, 20, 20
+    return seen, smp
+
+
 def test_warmup_tree_depth_reaches_the_sampler(monkeypatch):
     """A warmup depth caps NUTS's trees during warmup only (numpyro takes (warmup, sampling)
     depths); without one both phases keep numpyro's default depth 10. A tree of depth d
@@ -144,16 +160,7 @@ def test_warmup_tree_depth_reaches_the_sampler(monkeypatch):
     assert int(np.max(mc.get_extra_fields()["num_steps"])) <= 2**d - 1
     mc.run(mc.post_warmup_state.rng_key, extra_fields=("num_steps",))
     assert int(np.max(mc.get_extra_fields()["num_steps"])) > 2**d - 1
-    seen = []
-
-    class Recording(NUTS):
-        def __init__(self, *a, **k):
-            seen.append(k.get("max_tree_depth"))
-            super().__init__(*a, **k)
-
-    monkeypatch.setattr(numpyro.infer, "NUTS", Recording)
-    smp = _Sampler()
-    smp.chains, smp.warmup, smp.draws = 1, 20, 20
+    seen, smp = _recording_nuts(monkeypatch, lambda kernel, kwargs: kwargs.get("max_tree_depth"))
     y = jnp.zeros(5)
     inference.run_nuts(_model, {"y": y}, smp, progress=False, n_latent=inference.SEQUENTIAL_FROM, warmup_tree_depth=3)
     inference.run_nuts(_model, {"y": y}, smp, progress=False, n_latent=inference.SEQUENTIAL_FROM)
@@ -267,16 +274,8 @@ def test_kernel_options_reach_the_sampler(monkeypatch):
     import pickle
     import queue
 
-    seen = []
-
-    class Recording(NUTS):
-        def __init__(self, *a, **k):
-            seen.append((type(self).__name__, getattr(self, "_jitter", None), getattr(self, "_extra_checks", None)))
-            super().__init__(*a, **k)
-
-    monkeypatch.setattr(numpyro.infer, "NUTS", Recording)
-    smp = _Sampler()
-    smp.chains, smp.warmup, smp.draws = 1, 20, 20
+    seen, smp = _recording_nuts(monkeypatch, lambda kernel, kwargs: (
+        type(kernel).__name__, getattr(kernel, "_jitter", None), getattr(kernel, "_extra_checks", None)))
     y = jnp.zeros(5)
     inference.run_nuts(_model, {"y": y}, smp, progress=False, n_latent=inference.SEQUENTIAL_FROM, step_size_jitter=0.1)
     inference.run_nuts(_model, {"y": y}, smp, progress=False, n_latent=inference.SEQUENTIAL_FROM,

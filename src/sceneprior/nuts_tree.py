@@ -66,8 +66,9 @@ def extra_checks():
         _SWITCH.active = before
 
 
-#: the numpyro internals this module calls or replaces, with their parameters (numpyro
-#: 0.22): a release that changes them must be read against this module before it is used
+#: the numpyro internals this module calls, replaces or mirrors (``_is_iterative_turning``,
+#: inside :func:`_subtrees_turning`), with their parameters (numpyro 0.22): a release that
+#: changes them must be read against this module before it is used
 _EXPECTED = {
     "_double_tree": ("current_tree", "vv_update", "kinetic_fn", "inverse_mass_matrix", "step_size", "going_right",
                      "rng_key", "energy_current", "max_delta_energy", "r_ckpts", "r_sum_ckpts"),
@@ -115,13 +116,11 @@ def _double_tree(current_tree, vv_update, kinetic_fn, inverse_mass_matrix, step_
     new_tree = _build_subtree(current_tree, vv_update, kinetic_fn, inverse_mass_matrix, step_size, going_right,
                               key, energy_current, max_delta_energy, r_ckpts, r_sum_ckpts)
     tree = _hu._combine_tree(current_tree, new_tree, inverse_mass_matrix, going_right, transition_key, True)
-    # the left and the right part of the merged tree
-    l_first = _tree_where(going_right, current_tree.r_left, new_tree.r_left)
-    l_last = _tree_where(going_right, current_tree.r_right, new_tree.r_right)
-    l_sum = _tree_where(going_right, current_tree.r_sum, new_tree.r_sum)
-    r_first = _tree_where(going_right, new_tree.r_left, current_tree.r_left)
-    r_last = _tree_where(going_right, new_tree.r_right, current_tree.r_right)
-    r_sum = _tree_where(going_right, new_tree.r_sum, current_tree.r_sum)
+    # (first, last, sum) momenta of the left and the right part of the merged tree
+    cur = (current_tree.r_left, current_tree.r_right, current_tree.r_sum)
+    new = (new_tree.r_left, new_tree.r_right, new_tree.r_sum)
+    l_first, l_last, l_sum = _tree_where(going_right, cur, new)
+    r_first, r_last, r_sum = _tree_where(going_right, new, cur)
     add = lambda a, b: jax.tree.map(jnp.add, a, b)  # noqa: E731
     left_plus = _hu._is_turning(inverse_mass_matrix, l_first, r_first, add(l_sum, r_first))
     plus_right = _hu._is_turning(inverse_mass_matrix, l_last, r_last, add(r_sum, l_last))
