@@ -11,8 +11,8 @@ import numpy as np
 import pytest
 
 os.environ.setdefault("JAX_PLATFORMS", "cpu")
-# the suite runs in one process and re-uses compiled kernels in memory; a persistent cache
-# shared with other processes is not needed here
+# each test process (pytest-xdist worker) re-uses compiled kernels in memory; a persistent
+# cache shared with other processes is not needed here
 os.environ.setdefault("SCENEPRIOR_JAX_CACHE", "")
 
 from sceneprior.inference import configure_jax  # noqa: E402
@@ -20,6 +20,27 @@ from sceneprior.inference import configure_jax  # noqa: E402
 configure_jax()
 
 REPO = Path(__file__).resolve().parents[1]
+
+
+#: test files that share an expensive session fixture, scheduled together (the fixture's name)
+SHARED_FIXTURE_FILES = {"test_demo": "demo_run", "test_export": "demo_run", "test_report": "demo_run",
+                        "test_checks": "rain_runs", "test_overdispersion": "rain_runs"}
+
+
+@pytest.hookimpl(optionalhook=True)  # a pytest-xdist hook: run without xdist, it is not called
+def pytest_xdist_make_scheduler(config, log):
+    """pytest-xdist (pyproject's addopts: two workers) runs each test file whole on one
+    worker, so its module fixtures are built once, and the files of SHARED_FIXTURE_FILES
+    together, so their session fixture is built once. (xdist's own ``--dist loadgroup``
+    marks do not group under pytest 9.2, which no longer reads the node ids xdist edits.)"""
+    from xdist.scheduler import LoadScopeScheduling
+
+    class ByFile(LoadScopeScheduling):
+        def _split_scope(self, nodeid: str) -> str:
+            stem = nodeid.split("::", 1)[0].rsplit("/", 1)[-1].removesuffix(".py")
+            return SHARED_FIXTURE_FILES.get(stem, stem)
+
+    return ByFile(config, log)
 
 
 def write_csv(path: Path, header: list[str], rows) -> Path:
