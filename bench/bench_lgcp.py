@@ -362,14 +362,17 @@ def main():
                     help="cap NUTS trees at this depth during warmup where the LGCP has its pilot map "
                          "(models.lgcp.WARMUP_TREE_DEPTH; default: that constant, uncapped)")
     ap.add_argument("--start-hyper-variance", type=float, default=None,
-                    help="variance per coordinate of the (σ, ℓ) mass block warmup starts from where the LGCP "
-                         "has its pilot map (models.lgcp.INITIAL_HYPER_VARIANCE; 1 is numpyro's identity)")
+                    help="variance per coordinate of the LGCP's (σ, ℓ) mass block warmup starts from "
+                         "(models.lgcp.INITIAL_HYPER_VARIANCE; 1 is numpyro's identity)")
     ap.add_argument("--step-size-jitter", type=float, default=None,
                     help="after warmup, each transition's step size × U(1 − j, 1 + j) for the LGCP "
                          "(models.lgcp.STEP_SIZE_JITTER; 0: numpyro's fixed step size)")
     ap.add_argument("--extra-uturn-checks", type=int, choices=(0, 1), default=None,
                     help="NUTS trees with the extra U-turn checks of sceneprior.nuts_tree for the LGCP "
                          "(models.lgcp.EXTRA_UTURN_CHECKS; default: that constant, on)")
+    ap.add_argument("--target-accept", type=float, default=None,
+                    help="mean acceptance probability warmup's step-size adaptation aims at for the LGCP "
+                         "(models.lgcp.TARGET_ACCEPT; default: that constant)")
     ap.add_argument("--parts", default="abcd")
     args = ap.parse_args()
     # sampler constants of models.lgcp set from the command line (and passed on to the parts' runs)
@@ -377,7 +380,8 @@ def main():
              (("--warmup-depth", "WARMUP_TREE_DEPTH", args.warmup_depth),
               ("--start-hyper-variance", "INITIAL_HYPER_VARIANCE", args.start_hyper_variance),
               ("--step-size-jitter", "STEP_SIZE_JITTER", args.step_size_jitter),
-              ("--extra-uturn-checks", "EXTRA_UTURN_CHECKS", args.extra_uturn_checks)) if value is not None]
+              ("--extra-uturn-checks", "EXTRA_UTURN_CHECKS", args.extra_uturn_checks),
+              ("--target-accept", "TARGET_ACCEPT", args.target_accept)) if value is not None]
     if knobs:
         from sceneprior.models import lgcp
 

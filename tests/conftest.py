@@ -313,7 +313,7 @@ def rain_runs(tmp_path_factory):
 
 
 def batched_nuts(model, inputs: dict, dense_mass, keep, warmup: int, draws: int, init_strategy=None,
-                 extra_uturn_checks: bool = False):
+                 extra_uturn_checks: bool = False, inverse_mass_matrix: dict | None = None):
     """One compiled NUTS run over many data sets, for replicated checks (coverage, SBC):
     numpyro's functional NUTS (``numpyro.infer.hmc.hmc``, the kernel ``MCMC`` uses) jitted
     once and mapped over data sets with ``jax.lax.map``, so each data set gets its own
@@ -326,7 +326,9 @@ def batched_nuts(model, inputs: dict, dense_mass, keep, warmup: int, draws: int,
 
     ``inputs``: one data set's model arguments (fixes shapes and the starting point);
     ``extra_uturn_checks``: the trees of ``sceneprior.nuts_tree``, as production builds them
-    where the model's set-up asks (``setup.extra["extra_uturn_checks"]``).
+    where the model's set-up asks (``setup.extra["extra_uturn_checks"]``);
+    ``inverse_mass_matrix``: the mass-matrix blocks warmup starts from, as production passes
+    them (``setup.extra["initial_inverse_mass"]``; None: numpyro's identity).
     Returns ``fit(batch, seed)``: ``batch`` a list of argument dicts of that form; result
     {site: numpy array (data set, draw, ...)} for the sites in ``keep`` plus
     ``num_steps``, warmup draws dropped."""
@@ -342,7 +344,9 @@ def batched_nuts(model, inputs: dict, dense_mass, keep, warmup: int, draws: int,
     z0 = info.param_info.z
 
     def one_chain(key, kw):
-        state = init_kernel(z0, warmup, dense_mass=dense_mass, model_kwargs=kw, rng_key=key)
+        start = None if inverse_mass_matrix is None else {k: jnp.asarray(v) for k, v in inverse_mass_matrix.items()}
+        state = init_kernel(z0, warmup, dense_mass=dense_mass, inverse_mass_matrix=start, model_kwargs=kw,
+                            rng_key=key)
 
         def step(st, _):
             st = sample_kernel(st, model_kwargs=kw)

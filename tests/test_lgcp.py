@@ -71,10 +71,11 @@ def machinery():
                                  "length_scale_max": 300.0}, "test")
     stats0 = _stats(np.full(N * N, int(PER_CELL)))
     setup = kind.setup(stats0, prior, ModelSpec("lgcp", {}, {"kernel": "matern32"}), use_pad=True)
-    # full torus: warmup trees uncapped, chain groups one after another, numpyro's identity
-    # mass matrix to start warmup from
+    # full torus: warmup trees uncapped, chain groups one after another; warmup's mass block
+    # starts at INITIAL_HYPER_VARIANCE for σ and ℓ (one ℓ: isotropic), 1 for the soft direction
     assert setup.extra["warmup_tree_depth"] is None and setup.extra["vectorize_chain_groups"] is False
-    assert setup.extra["initial_inverse_mass"] is None
+    np.testing.assert_array_equal(setup.extra["initial_inverse_mass"][("sigma", "ls_unit", "u_soft")],
+                                  np.diag([lgcp.INITIAL_HYPER_VARIANCE] * 2 + [1.0]))
     # NUTS trees with the extra U-turn checks (sceneprior.nuts_tree), the step size fixed
     assert setup.extra["extra_uturn_checks"] is True and setup.extra["step_size_jitter"] == 0.0
     inp = dict(setup.inputs)
@@ -82,7 +83,8 @@ def machinery():
     model = partial(lgcp.lgcp_model, kernels=kernels)
     run = batched_nuts(model, inp, setup.extra["dense_mass"],
                        ("sigma", "length_scale", "field", "log_z", "log_window_integral"), WARMUP, DRAWS,
-                       extra_uturn_checks=setup.extra["extra_uturn_checks"])
+                       extra_uturn_checks=setup.extra["extra_uturn_checks"],
+                       inverse_mass_matrix=setup.extra["initial_inverse_mass"])
     return dict(kind=kind, prior=prior, setup=setup, inp=inp, kernels=kernels, run=run,
                 spectrum=kernels.spectrum)
 
@@ -334,6 +336,7 @@ def test_lgcp_run_outputs_on_a_polar_masked_grid(tmp_path, variance_kept):
     assert s["lgcp"]["embedding"]["method"] in ("embedding", "periodised")
     assert "halves of every merged subtree" in s["sampler"]["nuts_trees"]
     assert s["sampler"]["step_size_after_warmup"] == "the adapted step size, fixed"
+    assert s["sampler"]["step_size_adaptation_target"]["mean_acceptance_probability"] == 0.8  # numpyro's default
     if variance_kept == 1.0:
         assert s["lgcp"]["field_parameters"]["truncation"].startswith("none")
     else:
@@ -342,13 +345,13 @@ def test_lgcp_run_outputs_on_a_polar_masked_grid(tmp_path, variance_kept):
         assert variance_kept <= tr["variance_fraction_kept_at_shortest_length_scale"] <= 1.0
         assert s["lgcp"]["embedding"]["method"] == "periodised"
     assert ("padding_correction" if variance_kept == 1.0 else "mode_map") in s["lgcp"]["parametrisation"]
-    # with a map, warmup started σ and both length scales (range, bearing) at their own mass
-    # block, which numpyro took (a wrong size would not have run)
+    # warmup started σ and both length scales (range, bearing) — on the full torus also the
+    # soft direction — at their own mass block, which numpyro took (a wrong size would not run)
     start = s["lgcp"]["parametrisation"]["warmup_mass_start"]
-    if variance_kept == 1.0 or s["lgcp"]["parametrisation"]["mode_map"]["form"] == "identity":
-        assert start.startswith("identity")
-    else:
-        assert start["sigma+ls_unit"]["size"] == 3 and len(s["lgcp"]["posterior"]["length_scale"]) == 2
+    assert len(s["lgcp"]["posterior"]["length_scale"]) == 2
+    block = start["sigma+ls_unit+u_soft" if variance_kept == 1.0 else "sigma+ls_unit"]
+    assert block["variance_per_unconstrained_coordinate"] == ([lgcp.INITIAL_HYPER_VARIANCE] * 3
+                                                              + [1.0] * (variance_kept == 1.0))
     assert "range" in s["lgcp"]["stationarity"] and "shoal" in s["zones"]
     assert s["diagnostics"]["cells"]["n_cells"] > 0
     ds = xr.open_dataset(path / "intensity.nc", engine="h5netcdf")

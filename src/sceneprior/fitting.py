@@ -77,15 +77,18 @@ class FitResult:
 def nuts_options(setup, n_cells: int) -> dict:
     """The ``inference.run_nuts`` options a model's set-up chooses (mass matrix blocks and
     their start, initial point, sites not kept, latent size, warmup depth, vectorised chain
-    groups, step-size jitter, extra U-turn checks) for a grid of ``n_cells`` cells: the one place ``fit`` and bench/bench_lgcp.py
+    groups, step-size jitter, extra U-turn checks, target acceptance) for a grid of ``n_cells`` cells: the one place ``fit`` and bench/bench_lgcp.py
     read them from ``setup.extra``."""
+    from .inference import TARGET_ACCEPT
+
     ex = setup.extra
     return dict(dense_mass=ex.get("dense_mass", False), init_strategy=ex.get("init_strategy"),
                 exclude_sites=ex.get("exclude_sites", ()), n_latent=int(ex.get("n_latent", 0)), n_cells=n_cells,
                 warmup_tree_depth=ex.get("warmup_tree_depth"), inverse_mass_matrix=ex.get("initial_inverse_mass"),
                 vectorize_groups=bool(ex.get("vectorize_chain_groups")),
                 step_size_jitter=float(ex.get("step_size_jitter") or 0.0),
-                extra_uturn_checks=bool(ex.get("extra_uturn_checks")))
+                extra_uturn_checks=bool(ex.get("extra_uturn_checks")),
+                target_accept=float(ex.get("target_accept", TARGET_ACCEPT)))
 
 
 def _check_memory(setup, stats, smp, source: str, thinning: int = 1) -> None:

@@ -164,12 +164,16 @@ def chains_at_once(n_latent: int, chains: int, n_cells: int = 0, vectorize_group
     return chains
 
 
+#: numpyro's default target of warmup's step-size adaptation (mean acceptance probability)
+TARGET_ACCEPT = 0.8
+
+
 def run_nuts(fn, inputs: dict, sampler, progress: bool = True, dense_mass: bool = False,
              dims: dict | None = None, coords: dict | None = None, init_strategy=None,
              exclude_sites=(), thinning: int = 1, n_latent: int = 0, n_cells: int = 0,
              warmup_tree_depth: int | None = None, vectorize_groups: bool = False,
              inverse_mass_matrix: dict | None = None, step_size_jitter: float = 0.0,
-             extra_uturn_checks: bool = False):
+             extra_uturn_checks: bool = False, target_accept: float = TARGET_ACCEPT):
     """Sample ``fn(**inputs)`` with NUTS; returns InferenceData whose sample_stats hold the
     leapfrog steps and divergences per draw. ``exclude_sites``: latent sites not kept (a
     field's white noise; its deterministic images are kept instead); ``thinning``: keep
@@ -186,6 +190,8 @@ def run_nuts(fn, inputs: dict, sampler, progress: bool = True, dense_mass: bool 
     U(1 − j, 1 + j) (:func:`jittered_step_size` says why; 0: numpyro's fixed step size);
     ``extra_uturn_checks``: NUTS trees that also check the U-turn criterion across the two
     halves of every merged subtree (:mod:`sceneprior.nuts_tree` says why);
+    ``target_accept``: the mean acceptance probability warmup's step-size adaptation aims at
+    (numpyro's ``target_accept_prob``; lower: larger steps, shorter trees);
     ``vectorize_groups``: the model's chains are alike in cost per iteration (the same tree
     depths), so the chain processes of the "processes" layout may run theirs vectorised
     (:func:`run_chains_in_processes`)."""
@@ -201,7 +207,7 @@ def run_nuts(fn, inputs: dict, sampler, progress: bool = True, dense_mass: bool 
     # the NUTS kernel's options, as one bundle through every layout (see _sample)
     kernel = {"dense_mass": dense_mass, "init_strategy": init_strategy, "warmup_tree_depth": warmup_tree_depth,
               "inverse_mass_matrix": inverse_mass_matrix, "step_size_jitter": step_size_jitter,
-              "extra_uturn_checks": extra_uturn_checks}
+              "extra_uturn_checks": extra_uturn_checks, "target_accept": float(target_accept)}
     if layout == PROCESSES:
         return run_chains_in_processes(fn, inputs, sampler, kernel, progress=progress, dims=dims, coords=coords,
                                        exclude_sites=exclude_sites, thinning=thinning,
@@ -219,7 +225,7 @@ def _sample(fn, inputs, key, kernel: dict, warmup, draws, thinning, exclude_site
     """numpyro's NUTS and MCMC as every layout runs them; returns the finished MCMC.
     ``kernel``: the NUTS options of :func:`run_nuts` (``dense_mass``, ``init_strategy``,
     ``warmup_tree_depth``, ``inverse_mass_matrix``, ``step_size_jitter``,
-    ``extra_uturn_checks``; numpyro takes (warmup, sampling) depths, and it fills in the mass
+    ``extra_uturn_checks``, ``target_accept``; numpyro takes (warmup, sampling) depths, and it fills in the mass
     matrix dict it is given, so it gets a copy)."""
     import jax.numpy as jnp
     from numpyro.infer import MCMC, NUTS
@@ -231,7 +237,7 @@ def _sample(fn, inputs, key, kernel: dict, warmup, draws, thinning, exclude_site
                                 ("extra_uturn_checks", bool(kernel.get("extra_uturn_checks")))) if v}
     cls = _tuned_nuts(NUTS) if tuned else NUTS
     nuts = cls(fn, dense_mass=kernel["dense_mass"], init_strategy=kernel["init_strategy"], max_tree_depth=depth,
-               inverse_mass_matrix=start, **tuned)
+               inverse_mass_matrix=start, target_accept_prob=kernel.get("target_accept", TARGET_ACCEPT), **tuned)
     mcmc = MCMC(nuts, num_warmup=warmup, num_samples=draws, num_chains=chains, chain_method=method,
                 progress_bar=progress, thinning=thinning)
     drop = tuple(f"~z.{name}" for name in exclude_sites)

@@ -288,9 +288,12 @@ def _gate_entry(result) -> dict:
 
 def _nuts_notes(extra: dict) -> dict:
     """How NUTS chose its step size after warmup and built its trees (``inference.run_nuts``'s
-    step_size_jitter and extra_uturn_checks, as the model's set-up asked)."""
+    target_accept, step_size_jitter and extra_uturn_checks, as the model's set-up asked)."""
+    from .inference import TARGET_ACCEPT
+
     jitter = extra.get("step_size_jitter")
     return {
+        "step_size_adaptation_target": {"mean_acceptance_probability": float(extra.get("target_accept", TARGET_ACCEPT))},
         "step_size_after_warmup": ("the adapted step size, fixed" if not jitter else
                                    f"the adapted step size × U({1 - jitter:g}, {1 + jitter:g}), drawn afresh each "
                                    "transition (the posterior is unchanged)"),

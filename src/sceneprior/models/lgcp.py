@@ -391,9 +391,10 @@ def scipy_fast(n: int) -> int:
 WARMUP_TREE_DEPTH = None
 
 #: variance per unconstrained coordinate (log σ, logit of each ℓ's unit position) of the
-#: (σ, ℓ) block of the inverse mass matrix that warmup starts from, for a truncated field
-#: with the pilot map (numpyro starts at the identity; its first mass-matrix window ends
-#: after 100 warmup iterations). Warmup adapts the block from this start by numpyro's usual
+#: (σ, ℓ) block of the inverse mass matrix that warmup starts from, for every LGCP field —
+#: truncated (with or without the pilot map) and full torus, where the block also holds the
+#: soft direction's white coordinate, started at 1 (numpyro starts the whole block at the
+#: identity; its first mass-matrix window ends after 100 warmup iterations). Warmup adapts the block from this start by numpyro's usual
 #: windows; trees are not capped. With the identity σ and ℓ (posterior sd ≈ 0.05–0.3 in
 #: these coordinates, correlated) forced step sizes of 0.005–0.06 and 100–250 leapfrog
 #: steps per iteration in the first window. Measured (scratch script: numpyro MCMC.warmup,
@@ -412,6 +413,17 @@ WARMUP_TREE_DEPTH = None
 #: min cell ESS 13.0 in 65.6 s (32.2 steps per draw) against 45.9 in 78.0 s (63 steps per
 #: draw; one chain, one seed). Not measured: with per-scan terms (where ρ₀ is sampled too),
 #: anisotropic ℓ, or the dense form of the map.
+#: Full torus (a later session; the same scratch script, 1 chain, warmup 1000, one core;
+#: 32² Matérn 3/2, the bench's part (c) data): with the identity the first 100 warmup
+#: iterations averaged 67–71 leapfrog steps at 1× the scans and 167–169 at 10×, warmup
+#: 30 422–31 407 and 41 710–42 514 steps in all (seeds 1, 2); at 0.01: 26–27 and 28–35 per
+#: iteration, 26 280–26 514 and 27 966–28 862 steps (seeds 1–3). Starting the field's white
+#: coordinates at 0 instead of numpyro's uniform(−2, 2) changed nothing (first window
+#: 74–79 and 152–180). Bench, one session, one run at a time, ``--start-hyper-variance 1``
+#: (the identity) against the default: ``--parts c`` 47.4 / 68.6 s (ratio 1.45) against
+#: 45.2 / 58.4 s (1.29), min cell ESS 1611 / 1545 against 1662 / 1539; ``--one 64 matern32
+#: strong`` 454.6 s against 380.4 s, 63 steps per draw in both, min cell ESS 2037 against
+#: 1953, max R-hat 1.008 in both.
 INITIAL_HYPER_VARIANCE = 0.01
 
 #: Why a truncated field with the pilot map runs the chains of each chain process vectorised
@@ -458,6 +470,14 @@ STEP_SIZE_JITTER = 0.0
 #: in both). Read by ``setup`` and ``lgcp_sites``; bench flag ``--extra-uturn-checks 0|1``.
 EXTRA_UTURN_CHECKS = True
 
+#: mean acceptance probability warmup's step-size adaptation aims at (numpyro's default
+#: 0.8). A lower target buys larger steps and shorter trees but not more ESS per second:
+#: ``bench/bench_lgcp.py --one 128 matern32 weak --variance-kept 0.98 --target-accept T``,
+#: one session: T = 0.8 192.2 s, 31 steps per draw, min cell ESS 3970 (20.7 per s); T =
+#: 0.65 163.5 s, 22.4 steps, 2373 (14.5 per s). Read by ``setup`` and ``lgcp_sites``; bench
+#: flag ``--target-accept``.
+TARGET_ACCEPT = 0.8
+
 
 def setup(stats, prior: dict, model_spec, use_pad: bool | None = None):
     from .registry import ModelSetup
@@ -503,14 +523,17 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None):
         "dense_mass": dense_mass,
         "exclude_sites": exclude,
         "warmup_tree_depth": WARMUP_TREE_DEPTH if with_map else None,
-        # (σ, ℓ per axis) block of the mass matrix warmup starts from (see INITIAL_HYPER_VARIANCE)
-        "initial_inverse_mass": {dense_mass[0]: INITIAL_HYPER_VARIANCE * np.eye(1 + lo.size)} if with_map else None,
+        # the (σ, ℓ per axis[, soft direction]) block of the mass matrix warmup starts from:
+        # σ and ℓ at INITIAL_HYPER_VARIANCE, the soft direction's white coordinate at numpyro's 1
+        "initial_inverse_mass": {dense_mass[0]: np.diag([INITIAL_HYPER_VARIANCE] * (1 + lo.size)
+                                                        + [1.0] * (len(dense_mass[0]) - 2))},
         # with the map every chain takes the same trees (31 steps per draw in the weak-data
         # bench cases), so chain processes may run theirs vectorised (see the comment after
         # WARMUP_TREE_DEPTH)
         "vectorize_chain_groups": with_map,
         "step_size_jitter": STEP_SIZE_JITTER,  # see the constant (0: numpyro's fixed step size)
         "extra_uturn_checks": EXTRA_UTURN_CHECKS,
+        "target_accept": TARGET_ACCEPT,
         # ρ₀ (sampled only with per-scan terms) starts at its conditional mean given a flat field
         "init_strategy": init_to_value(values={"sigma": max(pre.pilot["sigma"], 0.05),
                                                "ls_unit": u_pilot[: lo.size],
@@ -638,11 +661,13 @@ def _hyper_summary(result) -> dict:
 
 
 def _mass_start(start) -> dict | str:
-    """What NUTS's warmup started its mass matrix from, for summary.json."""
+    """What NUTS's warmup started its mass matrix from, for summary.json: per block of sites,
+    the diagonal of its inverse (one value per unconstrained coordinate, in the block's site
+    order; the off-diagonal entries start at 0)."""
     if start is None:
         return "identity (numpyro's default)"
-    return {"+".join(k): {"variance_per_unconstrained_coordinate": float(np.diag(v)[0]), "size": int(len(v))}
-            for k, v in start.items()} | {"elsewhere": "identity"}
+    return {"+".join(k): {"variance_per_unconstrained_coordinate": [float(x) for x in np.diag(v)],
+                          "size": int(len(v))} for k, v in start.items()} | {"elsewhere": "identity"}
 
 
 def summary(result) -> dict:

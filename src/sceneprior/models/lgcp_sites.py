@@ -321,6 +321,7 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None):
         "exclude_sites": ["u_rest", "dev_rest"],
         "step_size_jitter": lgcp.STEP_SIZE_JITTER,  # see the constants
         "extra_uturn_checks": lgcp.EXTRA_UTURN_CHECKS,
+        "target_accept": lgcp.TARGET_ACCEPT,
         "init_strategy": init_to_value(values=start),
         "complete": complete_posterior,
         "dims": {"length_scale": ["axis"], "ls_unit": ["axis"], "field": ["cell"], "deviation": ["site", "cell"],
