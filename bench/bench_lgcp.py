@@ -363,7 +363,8 @@ def main():
                          "(models.lgcp.WARMUP_TREE_DEPTH; default: that constant, uncapped)")
     ap.add_argument("--start-hyper-variance", type=float, default=None,
                     help="variance per coordinate of the LGCP's (σ, ℓ) mass block warmup starts from "
-                         "(models.lgcp.INITIAL_HYPER_VARIANCE; 1 is numpyro's identity)")
+                         "(models.lgcp.INITIAL_HYPER_VARIANCE; 1 is numpyro's identity; not part (a)'s dense "
+                         "baseline, which keeps numpyro's defaults)")
     ap.add_argument("--step-size-jitter", type=float, default=None,
                     help="after warmup, each transition's step size × U(1 − j, 1 + j) for the LGCP "
                          "(models.lgcp.STEP_SIZE_JITTER; 0: numpyro's fixed step size)")
@@ -372,7 +373,7 @@ def main():
                          "(models.lgcp.EXTRA_UTURN_CHECKS; default: that constant, on)")
     ap.add_argument("--target-accept", type=float, default=None,
                     help="mean acceptance probability warmup's step-size adaptation aims at for the LGCP "
-                         "(models.lgcp.TARGET_ACCEPT; default: that constant)")
+                         "(models.lgcp.TARGET_ACCEPT; default: that constant; not part (a)'s dense baseline)")
     ap.add_argument("--parts", default="abcd")
     args = ap.parse_args()
     # sampler constants of models.lgcp set from the command line (and passed on to the parts' runs)

@@ -11,8 +11,9 @@ import numpy as np
 import pytest
 
 os.environ.setdefault("JAX_PLATFORMS", "cpu")
-# each test process (pytest-xdist worker) re-uses compiled kernels in memory; a persistent
-# cache shared with other processes is not needed here
+# each test process (pytest-xdist worker) re-uses compiled kernels in memory; the persistent
+# cache stays off unless the caller sets SCENEPRIOR_JAX_CACHE (.ci/run does: then both
+# workers and their chain processes share it — jax recompiles an entry it cannot read)
 os.environ.setdefault("SCENEPRIOR_JAX_CACHE", "")
 
 from sceneprior.inference import configure_jax  # noqa: E402
@@ -32,7 +33,10 @@ def pytest_xdist_make_scheduler(config, log):
     """pytest-xdist (pyproject's addopts: two workers) runs each test file whole on one
     worker, so its module fixtures are built once, and the files of SHARED_FIXTURE_FILES
     together, so their session fixture is built once. (xdist's own ``--dist loadgroup``
-    marks do not group under pytest 9.2, which no longer reads the node ids xdist edits.)"""
+    marks do not group under pytest 9.2, which no longer reads the node ids xdist edits.)
+    Another ``--dist`` on the command line keeps xdist's own scheduler."""
+    if config.getvalue("dist") != "loadfile":
+        return None
     from xdist.scheduler import LoadScopeScheduling
 
     class ByFile(LoadScopeScheduling):

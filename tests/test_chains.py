@@ -268,28 +268,32 @@ def test_jittered_nuts_keeps_numpyros_warmup_and_the_posterior():
 
 def test_kernel_options_reach_the_sampler(monkeypatch):
     """run_nuts hands the jitter and the extra U-turn checks to the kernel (a subclass of
-    numpyro's NUTS); without them numpyro's NUTS itself. A chain process's job carries the
-    same options to ``_sample`` (its worker run in this process, the job pickled as for a
+    numpyro's NUTS); without them numpyro's NUTS itself; the target acceptance to either
+    (numpyro's ``target_accept_prob``, default 0.8). A chain process's job carries the same
+    options to ``_sample`` (its worker run in this process, the job pickled as for a
     spawned one)."""
     import pickle
     import queue
 
     seen, smp = _recording_nuts(monkeypatch, lambda kernel, kwargs: (
-        type(kernel).__name__, getattr(kernel, "_jitter", None), getattr(kernel, "_extra_checks", None)))
+        type(kernel).__name__, getattr(kernel, "_jitter", None), getattr(kernel, "_extra_checks", None),
+        kwargs.get("target_accept_prob")))
     y = jnp.zeros(5)
     inference.run_nuts(_model, {"y": y}, smp, progress=False, n_latent=inference.SEQUENTIAL_FROM, step_size_jitter=0.1)
     inference.run_nuts(_model, {"y": y}, smp, progress=False, n_latent=inference.SEQUENTIAL_FROM,
                        extra_uturn_checks=True)
-    inference.run_nuts(_model, {"y": y}, smp, progress=False, n_latent=inference.SEQUENTIAL_FROM)
-    assert seen == [("TunedNUTS", 0.1, False), ("TunedNUTS", 0.0, True), ("Recording", None, None)]
+    inference.run_nuts(_model, {"y": y}, smp, progress=False, n_latent=inference.SEQUENTIAL_FROM, target_accept=0.7)
+    assert seen == [("TunedNUTS", 0.1, False, 0.8), ("TunedNUTS", 0.0, True, 0.8), ("Recording", None, None, 0.7)]
     kernel = {"dense_mass": False, "init_strategy": numpyro.infer.init_to_median(num_samples=15),
               "warmup_tree_depth": None, "inverse_mass_matrix": None, "step_size_jitter": 0.0,
-              "extra_uturn_checks": True}
+              "extra_uturn_checks": True, "target_accept": 0.9}
     job = pickle.dumps({"fn": _model, "inputs": {"y": y}, "kernel": kernel, "exclude_sites": (), "thinning": 1,
                         "warmup": 20, "draws": 20, "bar": False, "vectorize": False})
     results = queue.Queue()
     monkeypatch.setattr(inference, "_end_with_parent", lambda: None)
     inference._chain_group(job, [0], None, np.asarray(jax.random.PRNGKey(7))[None], results)
-    assert results.get_nowait()[1] == "ok" and seen[-1] == ("TunedNUTS", 0.0, True)
+    assert results.get_nowait()[1] == "ok" and seen[-1] == ("TunedNUTS", 0.0, True, 0.9)
+    with pytest.raises(ValueError, match="target_accept"):
+        inference.run_nuts(_model, {"y": y}, smp, progress=False, target_accept=1.0)
     with pytest.raises(ValueError, match="step_size_jitter"):
         inference._tuned_nuts(NUTS)(_model, step_size_jitter=1.0)

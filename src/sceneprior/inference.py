@@ -195,6 +195,8 @@ def run_nuts(fn, inputs: dict, sampler, progress: bool = True, dense_mass: bool 
     ``vectorize_groups``: the model's chains are alike in cost per iteration (the same tree
     depths), so the chain processes of the "processes" layout may run theirs vectorised
     (:func:`run_chains_in_processes`)."""
+    if not 0.0 < target_accept < 1.0:
+        raise ValueError(f"target_accept must be in (0, 1), got {target_accept}")
     configure_jax()
     import arviz as az
     import jax

@@ -159,11 +159,11 @@ def _subtrees_turning(inverse_mass_matrix, r, r_sum, r_ckpts, r_sum_ckpts, r_pre
 
 
 def _build_subtree(prototype_tree, vv_update, kinetic_fn, inverse_mass_matrix, step_size, going_right, rng_key,
-                   energy_current, max_delta_energy, r_ckpts, r_sum_ckpts):
+                   energy_current, max_delta_energy, r_ckpts, r_sum_ckpts, halves: bool = True):
     """A new subtree of 2^depth leaves, as numpyro's ``_iterative_build_subtree`` builds it
     (the same leaves, multinomial proposals and checkpoints), its checkpoint checks with the
     extra ones in one loop (:func:`_subtrees_turning`), and the checkpoint of the leaf before
-    each checkpointed one."""
+    each checkpointed one. ``halves`` False: without the extra checks (for tests)."""
     max_num_proposals = 2**prototype_tree.depth
     r_prev_ckpts = jnp.zeros_like(r_ckpts)
     r_prev0 = jnp.zeros(r_ckpts.shape[1:], r_ckpts.dtype)
@@ -190,7 +190,7 @@ def _build_subtree(prototype_tree, vv_update, kinetic_fn, inverse_mass_matrix, s
             lambda x: (x[0].at[idx_max].set(r_flat), x[1].at[idx_max].set(r_sum_flat), x[2].at[idx_max].set(r_prev)),
             (r_ckpts, r_sum_ckpts, r_prev_ckpts), identity)
         turning = _subtrees_turning(inverse_mass_matrix, r_flat, r_sum_flat, r_ckpts, r_sum_ckpts, r_prev_ckpts,
-                                    idx_min, idx_max, unravel_fn)
+                                    idx_min, idx_max, unravel_fn, halves=halves)
         return new_tree, turning, r_ckpts, r_sum_ckpts, r_prev_ckpts, r_flat, rng_key
 
     basetree = prototype_tree._replace(num_proposals=0)
