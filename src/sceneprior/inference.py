@@ -227,8 +227,8 @@ def _sample(fn, inputs, key, kernel: dict, warmup, draws, thinning, exclude_site
     """numpyro's NUTS and MCMC as every layout runs them; returns the finished MCMC.
     ``kernel``: the NUTS options of :func:`run_nuts` (``dense_mass``, ``init_strategy``,
     ``warmup_tree_depth``, ``inverse_mass_matrix``, ``step_size_jitter``,
-    ``extra_uturn_checks``, ``target_accept``; numpyro takes (warmup, sampling) depths, and it fills in the mass
-    matrix dict it is given, so it gets a copy)."""
+    ``extra_uturn_checks``, ``target_accept``; numpyro takes (warmup, sampling) depths, and
+    it fills in the mass matrix dict it is given, so it gets a copy)."""
     import jax.numpy as jnp
     from numpyro.infer import MCMC, NUTS
 

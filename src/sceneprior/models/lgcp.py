@@ -394,8 +394,8 @@ WARMUP_TREE_DEPTH = None
 #: (σ, ℓ) block of the inverse mass matrix that warmup starts from, for every LGCP field —
 #: truncated (with or without the pilot map) and full torus, where the block also holds the
 #: soft direction's white coordinate, started at 1 (numpyro starts the whole block at the
-#: identity; its first mass-matrix window ends after 100 warmup iterations). Warmup adapts the block from this start by numpyro's usual
-#: windows; trees are not capped. With the identity σ and ℓ (posterior sd ≈ 0.05–0.3 in
+#: identity; its first mass-matrix window ends after 100 warmup iterations). Warmup adapts
+#: the block from this start by numpyro's usual windows; trees are not capped. With the identity σ and ℓ (posterior sd ≈ 0.05–0.3 in
 #: these coordinates, correlated) forced step sizes of 0.005–0.06 and 100–250 leapfrog
 #: steps per iteration in the first window. Measured (scratch script: numpyro MCMC.warmup,
 #: 1 chain, warmup 300, collect_warmup and the num_steps field): 128² Matérn 3/2 weak q
