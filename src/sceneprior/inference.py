@@ -235,11 +235,10 @@ def _sample(fn, inputs, key, kernel: dict, warmup, draws, thinning, exclude_site
     wd, imm = kernel["warmup_tree_depth"], kernel["inverse_mass_matrix"]
     depth = MAX_TREE_DEPTH if wd is None else (int(wd), MAX_TREE_DEPTH)
     start = None if imm is None else {k: jnp.asarray(v) for k, v in imm.items()}
-    tuned = {k: v for k, v in (("step_size_jitter", float(kernel.get("step_size_jitter") or 0.0)),
-                                ("extra_uturn_checks", bool(kernel.get("extra_uturn_checks")))) if v}
+    tuned = {k: kernel[k] for k in ("step_size_jitter", "extra_uturn_checks") if kernel[k]}
     cls = _tuned_nuts(NUTS) if tuned else NUTS
     nuts = cls(fn, dense_mass=kernel["dense_mass"], init_strategy=kernel["init_strategy"], max_tree_depth=depth,
-               inverse_mass_matrix=start, target_accept_prob=kernel.get("target_accept", TARGET_ACCEPT), **tuned)
+               inverse_mass_matrix=start, target_accept_prob=kernel["target_accept"], **tuned)
     mcmc = MCMC(nuts, num_warmup=warmup, num_samples=draws, num_chains=chains, chain_method=method,
                 progress_bar=progress, thinning=thinning)
     drop = tuple(f"~z.{name}" for name in exclude_sites)

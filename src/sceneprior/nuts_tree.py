@@ -66,8 +66,9 @@ def extra_checks():
         _SWITCH.active = before
 
 
-#: the numpyro internals this module calls, replaces or mirrors (``_is_iterative_turning``,
-#: inside :func:`_subtrees_turning`), with their parameters (numpyro 0.22): a release that
+#: the numpyro internals this module calls, replaces or mirrors (``_iterative_build_subtree``
+#: in :func:`_build_subtree`, ``_is_iterative_turning`` inside :func:`_subtrees_turning`), with
+#: their parameters (numpyro 0.22): a release that
 #: changes them must be read against this module before it is used
 _EXPECTED = {
     "_double_tree": ("current_tree", "vv_update", "kinetic_fn", "inverse_mass_matrix", "step_size", "going_right",
@@ -76,6 +77,9 @@ _EXPECTED = {
                       "biased_transition"),
     "_build_basetree": ("vv_update", "kinetic_fn", "z", "r", "z_grad", "inverse_mass_matrix", "step_size",
                         "going_right", "energy_current", "max_delta_energy"),
+    "_iterative_build_subtree": ("prototype_tree", "vv_update", "kinetic_fn", "inverse_mass_matrix", "step_size",
+                                 "going_right", "rng_key", "energy_current", "max_delta_energy", "r_ckpts",
+                                 "r_sum_ckpts"),
     "_is_iterative_turning": ("inverse_mass_matrix", "r", "r_sum", "r_ckpts", "r_sum_ckpts", "idx_min", "idx_max",
                               "unravel_fn"),
     "_is_turning": ("inverse_mass_matrix", "r_left", "r_right", "r_sum"),

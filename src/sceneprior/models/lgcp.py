@@ -458,7 +458,8 @@ INITIAL_HYPER_VARIANCE = 0.01
 #: no longer falls steadily with the step size). With j = 0.1 the same run took 68.8, 58.5,
 #: 38.5, 31 steps per draw (min cell ESS 1798 against 2126 at j = 0): the resonating chain
 #: 5× cheaper, the two near the band 1.2–2.2× dearer — a jittered step falls into the band
-#: some of the time wherever the band is within reach. Bench flag ``--step-size-jitter``. Read by ``setup`` and ``lgcp_sites``.
+#: some of the time wherever the band is within reach. Bench flag ``--step-size-jitter``;
+#: read through :func:`sampler_constants`.
 STEP_SIZE_JITTER = 0.0
 
 #: NUTS trees with the extra U-turn checks of ``sceneprior.nuts_tree`` (across the halves of
@@ -468,19 +469,26 @@ STEP_SIZE_JITTER = 0.0
 #: 0.179, 0.184, 0.160) in 79.0 s, min cell ESS 1798, ESS of σ 650, against 31, 295, 31, 31
 #: steps in 154.5 s, 2126, 731 without them (min cell ESS per second 22.8 against 13.8; per
 #: draw lower, one seed — not separated from chain-to-chain noise). Where nothing resonates
-#: they cost no time: 128²
-#: Matérn 3/2 weak q 0.98, ``bench/bench_lgcp.py --one 128 matern32 weak --variance-kept
-#: 0.98``, 4 × (1000 + 1000): 201.3 s with, 201.0 s without (one session, 31 steps per draw
-#: in both). Read by ``setup`` and ``lgcp_sites``; bench flag ``--extra-uturn-checks 0|1``.
+#: they cost no time: 128² Matérn 3/2 weak q 0.98, ``bench/bench_lgcp.py --one 128 matern32
+#: weak --variance-kept 0.98``, 4 × (1000 + 1000): 201.3 s with, 201.0 s without (one
+#: session, 31 steps per draw in both). Bench flag ``--extra-uturn-checks 0|1``; read
+#: through :func:`sampler_constants`.
 EXTRA_UTURN_CHECKS = True
 
 #: mean acceptance probability warmup's step-size adaptation aims at (numpyro's default
 #: 0.8). A lower target buys larger steps and shorter trees but not more ESS per second:
 #: ``bench/bench_lgcp.py --one 128 matern32 weak --variance-kept 0.98 --target-accept T``,
 #: one session: T = 0.8 192.2 s, 31 steps per draw, min cell ESS 3970 (20.7 per s); T =
-#: 0.65 163.5 s, 22.4 steps, 2373 (14.5 per s). Read by ``setup`` and ``lgcp_sites``; bench
-#: flag ``--target-accept``.
+#: 0.65 163.5 s, 22.4 steps, 2373 (14.5 per s). Bench flag ``--target-accept``; read
+#: through :func:`sampler_constants`.
 TARGET_ACCEPT = 0.8
+
+
+def sampler_constants() -> dict:
+    """The NUTS options above as ``setup.extra`` carries them (``fitting.nuts_options`` reads
+    them), for ``setup`` here and in ``lgcp_sites``."""
+    return {"step_size_jitter": STEP_SIZE_JITTER,  # 0: numpyro's fixed step size
+            "extra_uturn_checks": EXTRA_UTURN_CHECKS, "target_accept": TARGET_ACCEPT}
 
 
 def setup(stats, prior: dict, model_spec, use_pad: bool | None = None):
@@ -535,9 +543,7 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None):
         # bench cases), so chain processes may run theirs vectorised (see the comment after
         # WARMUP_TREE_DEPTH)
         "vectorize_chain_groups": with_map,
-        "step_size_jitter": STEP_SIZE_JITTER,  # see the constant (0: numpyro's fixed step size)
-        "extra_uturn_checks": EXTRA_UTURN_CHECKS,
-        "target_accept": TARGET_ACCEPT,
+        **sampler_constants(),
         # ρ₀ (sampled only with per-scan terms) starts at its conditional mean given a flat field
         "init_strategy": init_to_value(values={"sigma": max(pre.pilot["sigma"], 0.05),
                                                "ls_unit": u_pilot[: lo.size],

@@ -319,9 +319,7 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None):
         "n_latent": (S + 1) * spectrum.geom.n_torus,
         "dense_mass": [("sigma", "sigma_dev", "ls_unit", "cv", "level", "u_soft", "dev_soft")],
         "exclude_sites": ["u_rest", "dev_rest"],
-        "step_size_jitter": lgcp.STEP_SIZE_JITTER,  # see the constants
-        "extra_uturn_checks": lgcp.EXTRA_UTURN_CHECKS,
-        "target_accept": lgcp.TARGET_ACCEPT,
+        **lgcp.sampler_constants(),
         "init_strategy": init_to_value(values=start),
         "complete": complete_posterior,
         "dims": {"length_scale": ["axis"], "ls_unit": ["axis"], "field": ["cell"], "deviation": ["site", "cell"],
