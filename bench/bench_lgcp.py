@@ -21,6 +21,8 @@ Usage:
     python bench/bench_lgcp.py                 # the full issue set-up (hours on 2 cores)
     python bench/bench_lgcp.py --quick         # 1 chain × (200 + 200), small grids only
     python bench/bench_lgcp.py --sizes 32 64 --kernels matern32 --chains 4 --warmup 1000 --draws 1000
+    python bench/bench_lgcp.py --one 32 matern32 weak10 --scans 1000 --warmup-steps --seeds 1 2
+                                               # warmup's leapfrog steps per 100 iterations
 
 Every configuration takes ``--variance-kept Q`` (spectral truncation, model option
 variance_kept: the Fourier modes carrying the fraction Q of the prior variance at the
@@ -324,6 +326,49 @@ def gradient_cost(args):
                       "draws": args.draws}))
 
 
+def warmup_steps(args):
+    """Where warmup's leapfrog steps go, for one configuration (one process): for each seed,
+    one chain through the production NUTS kernel (``inference.nuts_kernel`` with the model's
+    options, ``fitting.nuts_options``), numpyro's ``MCMC.warmup`` with ``collect_warmup`` and
+    the ``num_steps`` field, then the draws; prints the mean steps per iteration in each
+    window of 100 warmup iterations (numpyro's first mass-matrix window ends after 100 on a
+    1000-iteration warmup) and the totals and times of warmup and sampling (compilation
+    included in the first seed's times)."""
+    import jax
+    from numpyro.infer import MCMC
+
+    from sceneprior.fitting import nuts_options
+    from sceneprior.inference import configure_jax, nuts_kernel, nuts_kernel_options
+
+    configure_jax()
+    size, kernel, regime = args.one
+    kind, setup, _ = _setup(int(size), kernel, REGIMES[regime], int(args.scans), variance_kept=args.variance_kept)
+    opts = nuts_options(setup, len(setup.inputs["window_area"]))
+    bundle = nuts_kernel_options(**{k: opts[k] for k in ("dense_mass", "init_strategy", "warmup_tree_depth",
+                                                         "inverse_mass_matrix", "step_size_jitter",
+                                                         "extra_uturn_checks", "target_accept")})
+    for seed in args.seeds:
+        mcmc = MCMC(nuts_kernel(kind.fn, bundle), num_warmup=args.warmup, num_samples=args.draws, progress_bar=False)
+        t = time.perf_counter()
+        mcmc.warmup(jax.random.PRNGKey(seed), collect_warmup=True, extra_fields=("num_steps",), **setup.inputs)
+        w = np.asarray(mcmc.get_extra_fields()["num_steps"])
+        t_warm = time.perf_counter() - t
+        t = time.perf_counter()
+        mcmc.run(mcmc.post_warmup_state.rng_key, extra_fields=("num_steps",), **setup.inputs)
+        s = np.asarray(mcmc.get_extra_fields()["num_steps"])
+        t_draws = time.perf_counter() - t
+        print(json.dumps({"cells": f"{size}²", "kernel": kernel, "regime": regime, "scans": int(args.scans),
+                          "pad": setup.extra["preconditioner"].use_pad, "seed": seed,
+                          "warmup_steps_per_iteration_by_100": [round(float(w[i:i + 100].mean()), 1)
+                                                                for i in range(0, len(w), 100)],
+                          "warmup_steps": int(w.sum()), "warmup_s": t_warm, "sampling_steps": int(s.sum()),
+                          "sampling_steps_per_draw": float(s.mean()), "sampling_s": t_draws,
+                          "warmup_mass_start": {str(k): np.diag(np.asarray(v)).tolist() if np.ndim(v) == 2
+                                                else np.asarray(v).tolist()
+                                                for k, v in (bundle["inverse_mass_matrix"] or {}).items()}}),
+              flush=True)
+
+
 def one(args):
     from sceneprior.inference import configure_jax
 
@@ -358,6 +403,10 @@ def main():
     ap.add_argument("--variance-kept", type=float, default=1.0,
                     help="spectral truncation: fraction of the field's prior variance kept (1: every torus mode)")
     ap.add_argument("--gradient", action="store_true", help="with --one: part (d) for that configuration")
+    ap.add_argument("--warmup-steps", action="store_true",
+                    help="with --one: leapfrog steps per 100 warmup iterations, one chain per --seeds seed, "
+                         "chains one after another (where warmup's time goes)")
+    ap.add_argument("--seeds", type=int, nargs="+", default=[1], help="with --warmup-steps: the chains' seeds")
     ap.add_argument("--warmup-depth", type=int, default=None,
                     help="cap NUTS trees at this depth during warmup where the LGCP has its pilot map "
                          "(models.lgcp.WARMUP_TREE_DEPTH; default: that constant, uncapped)")
@@ -389,7 +438,7 @@ def main():
         for _, name, value in knobs:
             setattr(lgcp, name, value)
     if args.one:
-        return gradient_cost(args) if args.gradient else one(args)
+        return gradient_cost(args) if args.gradient else warmup_steps(args) if args.warmup_steps else one(args)
     if args.quick:
         args.chains, args.warmup, args.draws = 1, 200, 200
         sizes = args.sizes or [16, 32]

@@ -195,21 +195,15 @@ def run_nuts(fn, inputs: dict, sampler, progress: bool = True, dense_mass: bool 
     ``vectorize_groups``: the model's chains are alike in cost per iteration (the same tree
     depths), so the chain processes of the "processes" layout may run theirs vectorised
     (:func:`run_chains_in_processes`)."""
-    if not 0.0 < target_accept < 1.0:
-        raise ValueError(f"target_accept must be in (0, 1), got {target_accept}")
+    kernel = nuts_kernel_options(dense_mass=dense_mass, init_strategy=init_strategy,
+                                 warmup_tree_depth=warmup_tree_depth, inverse_mass_matrix=inverse_mass_matrix,
+                                 step_size_jitter=step_size_jitter, extra_uturn_checks=extra_uturn_checks,
+                                 target_accept=target_accept)
     configure_jax()
     import arviz as az
     import jax
-    from numpyro.infer import init_to_median
 
     layout = chain_layout(n_latent, sampler.chains, n_cells)
-    # start chains at prior medians: an arbitrary start far out in log-intensity makes
-    # warmup spend its first hundreds of iterations walking in
-    init_strategy = init_strategy or init_to_median(num_samples=15)
-    # the NUTS kernel's options, as one bundle through every layout (see _sample)
-    kernel = {"dense_mass": dense_mass, "init_strategy": init_strategy, "warmup_tree_depth": warmup_tree_depth,
-              "inverse_mass_matrix": inverse_mass_matrix, "step_size_jitter": step_size_jitter,
-              "extra_uturn_checks": extra_uturn_checks, "target_accept": float(target_accept)}
     if layout == PROCESSES:
         return run_chains_in_processes(fn, inputs, sampler, kernel, progress=progress, dims=dims, coords=coords,
                                        exclude_sites=exclude_sites, thinning=thinning,
@@ -223,23 +217,45 @@ def run_nuts(fn, inputs: dict, sampler, progress: bool = True, dense_mass: bool 
 MAX_TREE_DEPTH = 10
 
 
-def _sample(fn, inputs, key, kernel: dict, warmup, draws, thinning, exclude_sites, chains, method, progress):
-    """numpyro's NUTS and MCMC as every layout runs them; returns the finished MCMC.
-    ``kernel``: the NUTS options of :func:`run_nuts` (``dense_mass``, ``init_strategy``,
-    ``warmup_tree_depth``, ``inverse_mass_matrix``, ``step_size_jitter``,
-    ``extra_uturn_checks``, ``target_accept``; numpyro takes (warmup, sampling) depths, and
-    it fills in the mass matrix dict it is given, so it gets a copy)."""
+def nuts_kernel_options(dense_mass=False, init_strategy=None, warmup_tree_depth: int | None = None,
+                        inverse_mass_matrix: dict | None = None, step_size_jitter: float = 0.0,
+                        extra_uturn_checks: bool = False, target_accept: float = TARGET_ACCEPT) -> dict:
+    """The NUTS kernel's options (:func:`run_nuts` says what each does) as the one bundle every
+    chain layout passes to :func:`nuts_kernel`, checked; ``init_strategy`` None: numpyro's
+    ``init_to_median`` — an arbitrary start far out in log intensity makes warmup spend its
+    first hundreds of iterations walking in."""
+    if not 0.0 < target_accept < 1.0:
+        raise ValueError(f"target_accept must be in (0, 1), got {target_accept}")
+    from numpyro.infer import init_to_median
+
+    return {"dense_mass": dense_mass, "init_strategy": init_strategy or init_to_median(num_samples=15),
+            "warmup_tree_depth": warmup_tree_depth, "inverse_mass_matrix": inverse_mass_matrix,
+            "step_size_jitter": step_size_jitter, "extra_uturn_checks": extra_uturn_checks,
+            "target_accept": float(target_accept)}
+
+
+def nuts_kernel(fn, kernel: dict):
+    """numpyro's NUTS for ``fn`` with the options bundle of :func:`nuts_kernel_options`
+    (numpyro takes (warmup, sampling) tree depths, and it fills in the mass matrix dict it is
+    given, so it gets a copy)."""
     import jax.numpy as jnp
-    from numpyro.infer import MCMC, NUTS
+    from numpyro.infer import NUTS
 
     wd, imm = kernel["warmup_tree_depth"], kernel["inverse_mass_matrix"]
     depth = MAX_TREE_DEPTH if wd is None else (int(wd), MAX_TREE_DEPTH)
     start = None if imm is None else {k: jnp.asarray(v) for k, v in imm.items()}
     tuned = {k: kernel[k] for k in ("step_size_jitter", "extra_uturn_checks") if kernel[k]}
     cls = _tuned_nuts(NUTS) if tuned else NUTS
-    nuts = cls(fn, dense_mass=kernel["dense_mass"], init_strategy=kernel["init_strategy"], max_tree_depth=depth,
+    return cls(fn, dense_mass=kernel["dense_mass"], init_strategy=kernel["init_strategy"], max_tree_depth=depth,
                inverse_mass_matrix=start, target_accept_prob=kernel["target_accept"], **tuned)
-    mcmc = MCMC(nuts, num_warmup=warmup, num_samples=draws, num_chains=chains, chain_method=method,
+
+
+def _sample(fn, inputs, key, kernel: dict, warmup, draws, thinning, exclude_sites, chains, method, progress):
+    """numpyro's NUTS (:func:`nuts_kernel`) and MCMC as every layout runs them; returns the
+    finished MCMC."""
+    from numpyro.infer import MCMC
+
+    mcmc = MCMC(nuts_kernel(fn, kernel), num_warmup=warmup, num_samples=draws, num_chains=chains, chain_method=method,
                 progress_bar=progress, thinning=thinning)
     drop = tuple(f"~z.{name}" for name in exclude_sites)
     mcmc.run(key, extra_fields=("diverging", "num_steps") + drop, **inputs)
