@@ -317,7 +317,8 @@ def rain_runs(tmp_path_factory):
 
 
 def batched_nuts(model, inputs: dict, dense_mass, keep, warmup: int, draws: int, init_strategy=None,
-                 extra_uturn_checks: bool = False, inverse_mass_matrix: dict | None = None):
+                 extra_uturn_checks: bool = False, inverse_mass_matrix: dict | None = None,
+                 target_accept: float = 0.8):
     """One compiled NUTS run over many data sets, for replicated checks (coverage, SBC):
     numpyro's functional NUTS (``numpyro.infer.hmc.hmc``, the kernel ``MCMC`` uses) jitted
     once and mapped over data sets with ``jax.lax.map``, so each data set gets its own
@@ -332,7 +333,9 @@ def batched_nuts(model, inputs: dict, dense_mass, keep, warmup: int, draws: int,
     ``extra_uturn_checks``: the trees of ``sceneprior.nuts_tree``, as production builds them
     where the model's set-up asks (``setup.extra["extra_uturn_checks"]``);
     ``inverse_mass_matrix``: the mass-matrix blocks warmup starts from, as production passes
-    them (``setup.extra["initial_inverse_mass"]``; None: numpyro's identity).
+    them (``setup.extra["initial_inverse_mass"]``; None: numpyro's identity);
+    ``target_accept``: the acceptance warmup's step size aims at (``setup.extra["target_accept"]``;
+    0.8 is numpyro's default).
     Returns ``fit(batch, seed)``: ``batch`` a list of argument dicts of that form; result
     {site: numpy array (data set, draw, ...)} for the sites in ``keep`` plus
     ``num_steps``, warmup draws dropped."""
@@ -350,7 +353,7 @@ def batched_nuts(model, inputs: dict, dense_mass, keep, warmup: int, draws: int,
     def one_chain(key, kw):
         start = None if inverse_mass_matrix is None else {k: jnp.asarray(v) for k, v in inverse_mass_matrix.items()}
         state = init_kernel(z0, warmup, dense_mass=dense_mass, inverse_mass_matrix=start, model_kwargs=kw,
-                            rng_key=key)
+                            rng_key=key, target_accept_prob=target_accept)
 
         def step(st, _):
             st = sample_kernel(st, model_kwargs=kw)

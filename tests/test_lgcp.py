@@ -84,7 +84,8 @@ def machinery():
     run = batched_nuts(model, inp, setup.extra["dense_mass"],
                        ("sigma", "length_scale", "field", "log_z", "log_window_integral"), WARMUP, DRAWS,
                        extra_uturn_checks=setup.extra["extra_uturn_checks"],
-                       inverse_mass_matrix=setup.extra["initial_inverse_mass"])
+                       inverse_mass_matrix=setup.extra["initial_inverse_mass"],
+                       target_accept=setup.extra["target_accept"])
     return dict(kind=kind, prior=prior, setup=setup, inp=inp, kernels=kernels, run=run,
                 spectrum=kernels.spectrum)
 

@@ -232,7 +232,8 @@ def machinery(tmp_path_factory):
     run = batched_nuts(model, inp, setup.extra["dense_mass"],
                        ("level", "cv", "sigma", "sigma_dev", "field", "deviation", "log_z", "log_window_integral",
                         "rate"), WARMUP, DRAWS, init_strategy=setup.extra["init_strategy"],
-                       extra_uturn_checks=setup.extra["extra_uturn_checks"])
+                       extra_uturn_checks=setup.extra["extra_uturn_checks"],
+                       target_accept=setup.extra["target_accept"])
     return dict(kind=kind, prior=prior, setup=setup, inp=inp, spectrum=kernels.spectrum, stats0=stats0,
                 run=run, make_setup=make_setup, tmp=tmp)
 

@@ -252,7 +252,8 @@ def test_simulation_based_calibration_with_truncation():
     run = batched_nuts(partial(lgcp.lgcp_model, kernels=kernels), inp, setup.extra["dense_mass"],
                        ("sigma", "length_scale", "field", "log_z", "log_window_integral"), WARMUP, DRAWS,
                        extra_uturn_checks=setup.extra["extra_uturn_checks"],
-                       inverse_mass_matrix=setup.extra["initial_inverse_mass"])
+                       inverse_mass_matrix=setup.extra["initial_inverse_mass"],
+                       target_accept=setup.extra["target_accept"])
     full = setup.extra["geom"]  # the periodised spectrum on the same torus, EVERY mode
     rng = np.random.default_rng(2018)
     reps, L = 100, 19
