@@ -195,11 +195,11 @@ def run_nuts(fn, inputs: dict, sampler, progress: bool = True, dense_mass: bool 
     ``vectorize_groups``: the model's chains are alike in cost per iteration (the same tree
     depths), so the chain processes of the "processes" layout may run theirs vectorised
     (:func:`run_chains_in_processes`)."""
+    configure_jax()  # before numpyro is imported (nuts_kernel_options)
     kernel = nuts_kernel_options(dense_mass=dense_mass, init_strategy=init_strategy,
                                  warmup_tree_depth=warmup_tree_depth, inverse_mass_matrix=inverse_mass_matrix,
                                  step_size_jitter=step_size_jitter, extra_uturn_checks=extra_uturn_checks,
                                  target_accept=target_accept)
-    configure_jax()
     import arviz as az
     import jax
 
