@@ -334,19 +334,20 @@ def warmup_steps(args):
     window of 100 warmup iterations (numpyro's first mass-matrix window ends after 100 on a
     1000-iteration warmup) and the totals and times of warmup and sampling (compilation
     included in the first seed's times)."""
+    import inspect
+
     import jax
     from numpyro.infer import MCMC
 
     from sceneprior.fitting import nuts_options
     from sceneprior.inference import configure_jax, nuts_kernel, nuts_kernel_options
+    from sceneprior.models.lgcp import _mass_start
 
     configure_jax()
     size, kernel, regime = args.one
     kind, setup, _ = _setup(int(size), kernel, REGIMES[regime], int(args.scans), variance_kept=args.variance_kept)
     opts = nuts_options(setup, len(setup.inputs["window_area"]))
-    bundle = nuts_kernel_options(**{k: opts[k] for k in ("dense_mass", "init_strategy", "warmup_tree_depth",
-                                                         "inverse_mass_matrix", "step_size_jitter",
-                                                         "extra_uturn_checks", "target_accept")})
+    bundle = nuts_kernel_options(**{k: opts[k] for k in inspect.signature(nuts_kernel_options).parameters})
     for seed in args.seeds:
         mcmc = MCMC(nuts_kernel(kind.fn, bundle), num_warmup=args.warmup, num_samples=args.draws, progress_bar=False)
         t = time.perf_counter()
@@ -363,9 +364,7 @@ def warmup_steps(args):
                                                                 for i in range(0, len(w), 100)],
                           "warmup_steps": int(w.sum()), "warmup_s": t_warm, "sampling_steps": int(s.sum()),
                           "sampling_steps_per_draw": float(s.mean()), "sampling_s": t_draws,
-                          "warmup_mass_start": {str(k): np.diag(np.asarray(v)).tolist() if np.ndim(v) == 2
-                                                else np.asarray(v).tolist()
-                                                for k, v in (bundle["inverse_mass_matrix"] or {}).items()}}),
+                          "warmup_mass_start": _mass_start(bundle["inverse_mass_matrix"])}),
               flush=True)
 
 

@@ -318,7 +318,7 @@ def rain_runs(tmp_path_factory):
 
 def batched_nuts(model, inputs: dict, dense_mass, keep, warmup: int, draws: int, init_strategy=None,
                  extra_uturn_checks: bool = False, inverse_mass_matrix: dict | None = None,
-                 target_accept: float = 0.8):
+                 target_accept: float | None = None):
     """One compiled NUTS run over many data sets, for replicated checks (coverage, SBC):
     numpyro's functional NUTS (``numpyro.infer.hmc.hmc``, the kernel ``MCMC`` uses) jitted
     once and mapped over data sets with ``jax.lax.map``, so each data set gets its own
@@ -335,7 +335,7 @@ def batched_nuts(model, inputs: dict, dense_mass, keep, warmup: int, draws: int,
     ``inverse_mass_matrix``: the mass-matrix blocks warmup starts from, as production passes
     them (``setup.extra["initial_inverse_mass"]``; None: numpyro's identity);
     ``target_accept``: the acceptance warmup's step size aims at (``setup.extra["target_accept"]``;
-    0.8 is numpyro's default).
+    None: ``inference.TARGET_ACCEPT``, run_nuts's default).
     Returns ``fit(batch, seed)``: ``batch`` a list of argument dicts of that form; result
     {site: numpy array (data set, draw, ...)} for the sites in ``keep`` plus
     ``num_steps``, warmup draws dropped."""
@@ -344,6 +344,9 @@ def batched_nuts(model, inputs: dict, dense_mass, keep, warmup: int, draws: int,
     from numpyro.infer.hmc import hmc
     from numpyro.infer.util import initialize_model
 
+    from sceneprior.inference import TARGET_ACCEPT
+
+    target_accept = TARGET_ACCEPT if target_accept is None else target_accept
     extra = {} if init_strategy is None else {"init_strategy": init_strategy}
     info = initialize_model(jax.random.PRNGKey(0), model, model_kwargs=inputs, dynamic_args=True, **extra)
     init_kernel, sample_kernel = hmc(potential_fn_gen=info.potential_fn, algo="NUTS")
