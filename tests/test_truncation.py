@@ -123,16 +123,22 @@ def _stats(n, side, counts, K):
                        np.zeros(K, np.int64), sp.csr_matrix((K, g.n_cells)))
 
 
-@pytest.mark.parametrize("band", [1.5, 4.0])
-def test_model_prior_on_the_field_is_the_truncated_field(monkeypatch, band):
+@pytest.mark.parametrize("band,row_share,entries", [(1.5, 1.0, None), (4.0, 1.0, None), (1.5, 0.9, None),
+                                                    (1.5, 0.9, 600)])
+def test_model_prior_on_the_field_is_the_truncated_field(monkeypatch, band, row_share, entries):
     """At hyperparameters away from the pilot, with the data-built map y = L z in place
-    (dense, and low rank with band 4), the model's prior density of its coordinates
+    (dense, and low rank with band 4 or a cap of 600 entries; on every coefficient, and on
+    the rows that carry 90 % of the correction), the model's prior density of its coordinates
     implies exactly the truncated field's covariance on the grid (change of variables;
     Wood & Chan 1994), and its normaliser is right as σ, ℓ move: for a Gaussian density
     log p(0) − ½ log det P is the same constant at every θ."""
     import sceneprior.fields.truncation as tr
 
     monkeypatch.setattr(tr, "LOW_RANK_BAND", band)
+    monkeypatch.setattr(tr, "ROW_SHARE", row_share)
+    if entries is not None:
+        monkeypatch.setattr(tr, "MAP_ENTRIES", entries)
+        monkeypatch.setattr(tr, "NEAR_ENTRIES", entries)
     kind = get_model("lgcp")
     n = 8
     prior = resolve_prior(kind, {"rate_median": 40.0 * n * n / 20, "length_scale_min": 150.0,
@@ -153,7 +159,10 @@ def test_model_prior_on_the_field_is_the_truncated_field(monkeypatch, band):
     assert setup.extra["vectorize_chain_groups"] is True
     np.testing.assert_array_equal(setup.extra["initial_inverse_mass"][("sigma", "ls_unit")],
                                   lgcp.INITIAL_HYPER_VARIANCE * np.eye(1 + setup.inputs["ls_lo"].size))
-    assert ("low_rank_vectors" in pre) == (band == 4.0) and ("dense" in pre) == (band == 1.5), rep
+    low_rank = band == 4.0 or entries is not None
+    assert ("low_rank_vectors" in pre) == low_rank and ("dense" in pre) == (not low_rank), rep
+    # a share below 1 leaves some coefficients alone: the map acts on a subset of rows
+    assert ("map_rows" in pre) == (row_share < 1.0) and (rep["rows"] < kern.n_latent) == (row_share < 1.0), rep
     inp = setup.inputs
     basis = setup.extra["modes"]
     # the stored map is float32 (truncation.MAP_DTYPE, memory traffic); the exact checks below
@@ -221,11 +230,17 @@ def _as_dense(pre):
     """The low-rank form of y = L z as the same map in dense form (fixed shapes across
     data sets for one compiled run)."""
     pre = dict(pre)
+    K = pre["modes"]["coef_rep"].shape[0]
+    rows = np.asarray(pre.pop("map_rows", np.arange(K)))
+    block = np.eye(rows.size)
     if "low_rank_vectors" in pre:
         V, s = np.asarray(pre.pop("low_rank_vectors")), np.asarray(pre.pop("low_rank_scale"))
-        pre["dense"] = jnp.asarray(np.eye(V.shape[0]) + (V * s) @ V.T)
-    elif "dense" not in pre:
-        pre["dense"] = jnp.eye(pre["modes"]["coef_rep"].shape[0])
+        block = block + (V * s) @ V.T
+    elif "dense" in pre:
+        block = np.asarray(pre["dense"])  # kept in its stored precision
+    full = np.eye(K, dtype=block.dtype)
+    full[np.ix_(rows, rows)] = block
+    pre["dense"] = jnp.asarray(full)
     return pre
 
 

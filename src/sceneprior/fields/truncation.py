@@ -230,14 +230,30 @@ def mode_basis(geom: TorusGeometry, lo2, hi2, variance_kept: float) -> ModeBasis
 MAP_MAX_COEFFICIENTS = 6000
 #: precision eigenvalues inside [1/band, band] are left alone by the low-rank preconditioner
 LOW_RANK_BAND = 1.5
-#: most entries of the map's matrix (rank × K for the low-rank form, K² for the dense one):
-#: applying the map reads its matrix twice per log-density and twice per gradient, so its
-#: cost is memory traffic. Measured with bench/bench_lgcp.py --one 128 matern32 weak
+#: the map acts on the fewest coefficients that carry this share of the correction (each
+#: coefficient's weight: its squared components in the eigenvectors outside the band, times
+#: |log e| of their eigenvalue); the others are left alone (y_j = z_j)
+ROW_SHARE = 0.9
+#: directions whose precision eigenvalue lies beyond [1/FAR_BAND, FAR_BAND] are corrected
+#: as far as MAP_ENTRIES allows; those between the two bands only within NEAR_ENTRIES
+FAR_BAND = 4.0
+NEAR_ENTRIES = 250_000
+#: most entries of the map's matrix (rank × rows for the low-rank form, rows² for the dense
+#: one): applying the map reads its matrix twice per log-density and twice per gradient, so
+#: its cost is memory traffic. Measured with bench/bench_lgcp.py --one 128 matern32 weak
 #: --variance-kept 0.98 (4 797 coefficients, LOW_RANK_BAND and the cap set by hand): the
 #: full band-1.5 map (rank 891) made a 1 × (200 + 200) run slower than no map (129.8 s
 #: against 50.4 s); rank 169 (band 8, float64) took 31 steps per draw instead of 127,
-#: 4 × (1000 + 1000) in 280.9 s against 346.0 s without a map; this cap (rank 208, float32)
-#: 199.9 s.
+#: 4 × (1000 + 1000) in 280.9 s against 346.0 s without a map; rank 208 on every row
+#: (float32) 199.9 s. Restricting the rows (2026-12-03, 4 × (1000 + 1000), one run each,
+#: rows / rank / wall / min cell ESS): every row 4 797 / 208 / 191.8 s / 3970; share 0.99
+#: with 250 000 entries 1 637 / 152 / 145.0 s / 3409; 0.95: 1 003 / 249 / 132.0 s / 4299;
+#: 0.9: 726 / 344 / 126.9 s / 4577; 0.8: 535 / 467 / 130.0 s / 3851; 0.9 with 500 000:
+#: 726 / 676 / 143.1 s / 3383; ranks under ~150 cost leapfrog steps (0.99 with 125 000:
+#: rank 76, 44 steps per draw, 175.6 s). Strong data (--one 128 matern32 strong, 1 × (300 +
+#: 300)) needs the rank: 0.9 with 250 000 entries for every direction (rank 70) took 868
+#: steps per draw against 262 on every row — hence FAR_BAND: there this rule keeps rank 282
+#: on 3 536 rows (255 steps per draw).
 MAP_ENTRIES = 1_000_000
 #: the map is applied in float32 (half the memory traffic): the coordinates are rounded to
 #: float32 before the product, so the log density carries float32 rounding (2–8 × 10⁻⁵ nats
@@ -257,14 +273,20 @@ def dense_preconditioner(basis: ModeBasis, amp, d, weights, band: float | None =
     approximately (``preconditioning`` steps 1–2): the window covers a quarter of the torus,
     so Fourier modes are coupled by the data, and the field's mean over the window is a
     direction no diagonal mass matrix sees. Gᵀ W G is built column by column with the
-    transpose of G (jax.linear_transpose), in batches. H = V diag(e) Vᵀ; of the eigenvalues
-    outside [1/band, band] (the y coordinates are scaled so that uniform data give H = I)
-    the r farthest from 1 (|log e| largest) are corrected, r·K ≤ MAP_ENTRIES:
-    L = I + V_r diag(e_r^{-1/2} − 1) V_rᵀ, within a factor √band of the dense L in scale
-    wherever r reaches every eigenvalue outside the band; the dense L when those are half
-    the coefficients or more and K² ≤ MAP_ENTRIES. Stored in MAP_DTYPE.
-    A constant linear map (log-Jacobian −½ Σ log e_r): the posterior is unchanged, only
-    the sampler's geometry. Returns (arrays for the model, report)."""
+    transpose of G (jax.linear_transpose), in batches. H = V diag(e) Vᵀ (the y coordinates
+    are scaled so that uniform data give H = I). The correction of the eigenvalues outside
+    [1/band, band] lands mostly on a few coefficients (low frequencies), so the map acts on
+    the rows J that carry ROW_SHARE of it and leaves the others alone: on J it is the
+    symmetric square root of y's marginal covariance at the pilot, (H⁻¹)_JJ = U diag(c) Uᵀ
+    (J = every row: H^{-1/2} itself). Of its eigenvalues outside the band the r farthest
+    from 1 are corrected — all beyond FAR_BAND as far as r·|J| ≤ MAP_ENTRIES, the rest within
+    NEAR_ENTRIES: L_J = I + U_r diag(c_r^{1/2} − 1) U_rᵀ, within a factor √band of the dense
+    square root in scale wherever r reaches every eigenvalue outside the band; the dense
+    square root when those are half the rows or more and |J|² ≤ MAP_ENTRIES. Stored in
+    MAP_DTYPE. A constant, invertible linear map (block-diagonal: L_J on J, the identity
+    elsewhere; log-Jacobian ½ Σ log c_r): the posterior is unchanged, only the sampler's
+    geometry. Returns (arrays for the model: ``map_rows`` when J is not every row, and
+    ``dense`` or ``low_rank_vectors``/``low_rank_scale``; report)."""
     import jax
 
     band = LOW_RANK_BAND if band is None else band
@@ -287,20 +309,43 @@ def dense_preconditioner(basis: ModeBasis, amp, d, weights, band: float | None =
     dj = np.asarray(d)[np.asarray(arr["coef_rep"])]
     H = 0.5 * (np.asarray(M) + np.asarray(M).T) + np.diag(1.0 / dj)
     ev, V = np.linalg.eigh(H)
-    outside = int(np.sum((ev < 1.0 / band) | (ev > band)))
-    # the directions farthest from 1 first, as many as MAP_ENTRIES allows
-    r = min(outside, MAP_ENTRIES // K)
-    far = np.argsort(-np.abs(np.log(ev)), kind="stable")[:r]
-    report = {"rank": r, "outside_band": outside, "coefficients": K, "band": band,
-              "max_entries": MAP_ENTRIES, "dtype": np.dtype(MAP_DTYPE).name,
-              "precision_eigenvalues_min_max": [float(ev.min()), float(ev.max())]}
+    outside_all = (ev < 1.0 / band) | (ev > band)
+    outside = int(np.sum(outside_all))
+    report = {"outside_band": outside, "coefficients": K, "band": band, "far_band": FAR_BAND,
+              "max_entries": MAP_ENTRIES, "near_entries": NEAR_ENTRIES, "dtype": np.dtype(MAP_DTYPE).name, "precision_eigenvalues_min_max": [float(ev.min()), float(ev.max())]}
+    if outside == 0:
+        report.update(form="identity", rank=0, rows=0)
+        return {}, report
+    # the coefficients the correction lands on: each row's share of the outside-band
+    # directions, weighted by how far their eigenvalue is from 1; the fewest rows that carry
+    # ROW_SHARE of it
+    weight = (V[:, outside_all] ** 2) @ np.abs(np.log(ev[outside_all]))
+    order = np.argsort(-weight, kind="stable")
+    n_rows = int(np.searchsorted(np.cumsum(weight[order]) / np.sum(weight), ROW_SHARE)) + 1
+    rows = np.arange(K) if ROW_SHARE >= 1.0 else np.sort(order[:min(n_rows, K)])  # 1: every row, zero weights too
+    # on those rows: the symmetric square root of y's marginal covariance (H⁻¹)_JJ at the
+    # pilot (all rows: H^{-1/2} itself); elsewhere y = z
+    if rows.size == K:
+        c, U = 1.0 / ev, V
+    else:
+        c, U = np.linalg.eigh((V[rows] / ev) @ V[rows].T)
+        c = np.maximum(c, 1e-300)
+    J = rows.size
+    out_j = int(np.sum((c < 1.0 / band) | (c > band)))
+    # the directions farthest from 1 first: every one beyond FAR_BAND as far as MAP_ENTRIES
+    # allows, the rest of those outside the band within NEAR_ENTRIES
+    beyond = int(np.sum((c < 1.0 / FAR_BAND) | (c > FAR_BAND)))
+    r = min(out_j, max(NEAR_ENTRIES // J, min(beyond, MAP_ENTRIES // J)))
+    far = np.argsort(-np.abs(np.log(c)), kind="stable")[:r]
+    report.update(rank=r, rows=J, row_share=ROW_SHARE)
+    arrays = {} if J == K else {"map_rows": rows.astype(np.int64)}
     if r == 0:
         report["form"] = "identity"
         return {}, report
-    if r == outside and 2 * r >= K and K * K <= MAP_ENTRIES:
+    if r == out_j and 2 * r >= J and J * J <= MAP_ENTRIES:
         report["form"] = "dense"
-        return {"dense": ((V * ev**-0.5) @ V.T).astype(MAP_DTYPE)}, report
-    # y = z + V_r (ev_r^{-1/2} − 1) V_rᵀ z: cost 2·K·r per product
+        return {**arrays, "dense": ((U * np.sqrt(c)) @ U.T).astype(MAP_DTYPE)}, report
+    # y_J = z_J + U_r (√c_r − 1) U_rᵀ z_J: cost 2·J·r per product
     report["form"] = "low rank"
-    return {"low_rank_vectors": V[:, far].astype(MAP_DTYPE),
-            "low_rank_scale": (ev[far] ** -0.5 - 1.0).astype(MAP_DTYPE)}, report
+    return {**arrays, "low_rank_vectors": U[:, far].astype(MAP_DTYPE),
+            "low_rank_scale": (np.sqrt(c[far]) - 1.0).astype(MAP_DTYPE)}, report
