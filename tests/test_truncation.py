@@ -227,8 +227,8 @@ WARMUP, DRAWS = 200, 200
 
 
 def _as_dense(pre):
-    """The low-rank form of y = L z as the same map in dense form (fixed shapes across
-    data sets for one compiled run)."""
+    """The map y = L z (low rank, dense, on a subset of rows or none) as the same map in
+    dense form over every coefficient (fixed shapes across data sets for one compiled run)."""
     pre = dict(pre)
     K = pre["modes"]["coef_rep"].shape[0]
     rows = np.asarray(pre.pop("map_rows", np.arange(K)))

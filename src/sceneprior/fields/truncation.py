@@ -319,7 +319,7 @@ def dense_preconditioner(basis: ModeBasis, amp, d, weights, band: float | None =
     # the coefficients the correction lands on: each row's share of the outside-band
     # directions, weighted by how far their eigenvalue is from 1; the fewest rows that carry
     # ROW_SHARE of it
-    weight = (V[:, outside_all] ** 2) @ np.abs(np.log(ev[outside_all]))
+    weight = np.einsum("ij,j,ij->i", V, np.where(outside_all, np.abs(np.log(ev)), 0.0), V)  # no K × K temporary
     order = np.argsort(-weight, kind="stable")
     n_rows = int(np.searchsorted(np.cumsum(weight[order]) / np.sum(weight), ROW_SHARE)) + 1
     rows = np.arange(K) if ROW_SHARE >= 1.0 else np.sort(order[:min(n_rows, K)])  # 1: every row, zero weights too
