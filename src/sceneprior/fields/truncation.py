@@ -261,6 +261,11 @@ MAP_ENTRIES = 1_000_000
 MAP_DTYPE = np.float32
 
 
+def _beyond(e, band: float):
+    """Eigenvalues outside [1/band, band] (farther than a factor ``band`` from 1)."""
+    return (e < 1.0 / band) | (e > band)
+
+
 def dense_preconditioner(basis: ModeBasis, amp, d, weights, band: float | None = None, batch: int = 64):
     """Fixed symmetric map L = H^{-1/2} with y = L z, so that the coefficients y are
     ≈ N(0, H⁻¹) when z ~ N(0, I) at the pilot hyperparameters.
@@ -309,10 +314,11 @@ def dense_preconditioner(basis: ModeBasis, amp, d, weights, band: float | None =
     dj = np.asarray(d)[np.asarray(arr["coef_rep"])]
     H = 0.5 * (np.asarray(M) + np.asarray(M).T) + np.diag(1.0 / dj)
     ev, V = np.linalg.eigh(H)
-    outside_all = (ev < 1.0 / band) | (ev > band)
+    outside_all = _beyond(ev, band)
     outside = int(np.sum(outside_all))
     report = {"outside_band": outside, "coefficients": K, "band": band, "far_band": FAR_BAND,
-              "max_entries": MAP_ENTRIES, "near_entries": NEAR_ENTRIES, "dtype": np.dtype(MAP_DTYPE).name, "precision_eigenvalues_min_max": [float(ev.min()), float(ev.max())]}
+              "max_entries": MAP_ENTRIES, "near_entries": NEAR_ENTRIES, "dtype": np.dtype(MAP_DTYPE).name,
+              "precision_eigenvalues_min_max": [float(ev.min()), float(ev.max())]}
     if outside == 0:
         report.update(form="identity", rank=0, rows=0)
         return {}, report
@@ -331,10 +337,10 @@ def dense_preconditioner(basis: ModeBasis, amp, d, weights, band: float | None =
         c, U = np.linalg.eigh((V[rows] / ev) @ V[rows].T)
         c = np.maximum(c, 1e-300)
     J = rows.size
-    out_j = int(np.sum((c < 1.0 / band) | (c > band)))
+    out_j = int(np.sum(_beyond(c, band)))
     # the directions farthest from 1 first: every one beyond FAR_BAND as far as MAP_ENTRIES
     # allows, the rest of those outside the band within NEAR_ENTRIES
-    beyond = int(np.sum((c < 1.0 / FAR_BAND) | (c > FAR_BAND)))
+    beyond = int(np.sum(_beyond(c, FAR_BAND)))
     r = min(out_j, max(NEAR_ENTRIES // J, min(beyond, MAP_ENTRIES // J)))
     far = np.argsort(-np.abs(np.log(c)), kind="stable")[:r]
     report.update(rank=r, rows=J, row_share=ROW_SHARE)

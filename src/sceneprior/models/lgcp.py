@@ -231,14 +231,15 @@ class TruncatedFieldKernels:
             d = 1.0 + zero * pre["w_scale"] * lam
             amp = safe_sqrt(lam / d)
             y = u
-            z = u[pre["map_rows"]] if "map_rows" in pre else u  # the coefficients the map acts on
-            if "dense" in pre:  # the map in its stored precision (truncation.MAP_DTYPE)
-                yz = (pre["dense"] @ z.astype(pre["dense"].dtype)).astype(u.dtype)
-            elif "low_rank_vectors" in pre:
-                V = pre["low_rank_vectors"]
-                yz = z + (V @ (pre["low_rank_scale"] * (z.astype(V.dtype) @ V))).astype(u.dtype)
-            if "dense" in pre or "low_rank_vectors" in pre:
-                y = u.at[pre["map_rows"]].set(yz) if "map_rows" in pre else yz
+            if "dense" in pre or "low_rank_vectors" in pre:  # the map, in its stored precision
+                rows = pre.get("map_rows")  # the coefficients it acts on (None: all)
+                z = u if rows is None else u[rows]
+                if "dense" in pre:
+                    yz = (pre["dense"] @ z.astype(pre["dense"].dtype)).astype(u.dtype)
+                else:
+                    V = pre["low_rank_vectors"]
+                    yz = z + (V @ (pre["low_rank_scale"] * (z.astype(V.dtype) @ V))).astype(u.dtype)
+                y = yz if rows is None else u.at[rows].set(yz)
             f = field_from_coefficients(y, amp, pre["modes"], box, grid)
             dj = d[pre["modes"]["coef_rep"]]
             logp = -0.5 * jnp.sum(y * y / dj) - 0.5 * jnp.sum(jnp.log(dj))
