@@ -42,6 +42,7 @@ Priors (units only — region and cell size — never the counts):
 from __future__ import annotations
 
 from dataclasses import dataclass
+from functools import partial
 
 import jax
 import jax.numpy as jnp
@@ -495,6 +496,84 @@ def sampler_constants() -> dict:
             "extra_uturn_checks": EXTRA_UTURN_CHECKS, "target_accept": TARGET_ACCEPT}
 
 
+#: the field's white coordinates start at their conditional posterior mode at the pilot σ,
+#: ℓ, plus U(−START_RADIUS, START_RADIUS) per coordinate drawn per chain (numpyro's own start
+#: is U(−2, 2) around 0). Why: with strong data the posterior of the white coordinates sits
+#: far from 0 (the partially centred modes carry the data), so a start around 0 is a field
+#: unrelated to the data, and warmup's first trajectories fall down a potential millions of
+#: nats high. Measured (2026-12-03, sixth session; scratch scripts on
+#: bench/bench_lgcp.py's 256² squared exponential strong data, q 0.999, the chains 3 and 4 of
+#: a 4-chain fit, seed 1): run vectorised as in a chain process, chain 3 ended the first 25
+#: warmup iterations 4.7 × 10⁵ nats above chain 4 at a short length scale, with a step size
+#: of 10⁻⁸–10⁻⁷ and 1 023 leapfrog steps per iteration for the rest of the first 150 (the
+#: full-length fit's chain group did not finish in 29 min); the same two chains one at a time
+#: took 31 steps per draw and 2 min each. START_RADIUS keeps the chains' starts apart at
+#: about the posterior's scale in these coordinates, so R-hat still compares dispersed starts.
+START_RADIUS = 2.0
+#: most L-BFGS iterations for that mode (set-up time; any point nearer the mode helps)
+START_MAXITER = 200
+
+
+def init_near(site=None, values=None, centred=(), radius=START_RADIUS):
+    """numpyro init strategy: a site named in ``values`` starts at its value, and one also in
+    ``centred`` (unconstrained Normal sites) at value + U(−radius, radius) per coordinate,
+    drawn from the site's own key as numpyro's ``init_to_uniform`` draws around 0; other
+    sites as ``init_to_uniform``."""
+    from numpyro.infer import init_to_uniform
+
+    if site is None:
+        return partial(init_near, values=values, centred=centred, radius=radius)
+    if site["type"] != "sample" or site["is_observed"]:
+        return None
+    name = site["name"]
+    if name not in values:
+        return init_to_uniform(site)
+    if name not in centred:
+        return values[name]
+    v = jnp.asarray(values[name])
+    shape = tuple(site["kwargs"].get("sample_shape", ())) + v.shape
+    return v + jax.random.uniform(site["kwargs"]["rng_key"], shape, minval=-radius, maxval=radius, dtype=v.dtype)
+
+
+def conditional_mode(inputs: dict, sigma: float, ls) -> tuple[dict, dict]:
+    """The field's white coordinates at the mode of their conditional posterior given σ and
+    ℓ (the model's density with ρ₀ integrated out; per-scan terms left out), by L-BFGS-B
+    (scipy.optimize, Byrd, Lu, Nocedal & Zhu 1995) from 0 with at most START_MAXITER
+    iterations. Returns ({site: value} for ``lgcp_model``'s white sites, report); the start
+    0 if the search fails. Only a starting point: the posterior does not depend on it."""
+    import scipy.optimize
+
+    kernels, pre = inputs["kernels"], inputs["precond"]
+    counts, exposure, obs, area = (jnp.asarray(inputs[k]) for k in ("counts", "exposure", "obs", "window_area"))
+    a, b, total = inputs["gamma_a"], inputs["gamma_b"], float(np.sum(inputs["counts"]))
+    sig, lsj = jnp.asarray(sigma, float), jnp.asarray(ls, float)
+    truncated = isinstance(kernels, TruncatedFieldKernels)
+
+    def negative(x):
+        u = x if truncated else kernels.rotate(x[0], x[1:], pre["householder"])
+        f, log_prior_u, log_z, _ = kernels.evaluate(u, sig, lsj, pre, exposure, obs, area)
+        return -(log_prior_u + _count_dot(f, pre, obs, counts) - (a + total) * jnp.logaddexp(jnp.log(b), log_z))
+
+    value_grad = jax.jit(jax.value_and_grad(negative))
+
+    def fun(x):
+        v, g = value_grad(jnp.asarray(x))
+        return float(v), np.asarray(g, float)
+
+    x0 = np.zeros(kernels.n_latent if truncated else kernels.n_torus)
+    f0 = fun(x0)[0]
+    res = scipy.optimize.minimize(fun, x0, jac=True, method="L-BFGS-B", options={"maxiter": START_MAXITER})
+    ok = bool(np.all(np.isfinite(res.x)) and np.isfinite(res.fun) and res.fun <= f0)
+    x = res.x if ok else x0
+    report = {"white_coordinates": (f"conditional posterior mode at the pilot σ, ℓ (L-BFGS-B) + U(−{START_RADIUS:g}, "
+                                    f"{START_RADIUS:g}) per coordinate and chain" if ok else
+                                    f"U(−{START_RADIUS:g}, {START_RADIUS:g}) around 0 (the mode search failed)"),
+              "mode_search_iterations": int(res.nit), "log_density_gain_nats": float(f0 - res.fun) if ok else 0.0,
+              "mode_search_converged": bool(res.success)}
+    sites = {"u_modes": x} if truncated else {"u_soft": np.asarray(x[0]), "u_rest": x[1:]}
+    return sites, report
+
+
 def setup(stats, prior: dict, model_spec, use_pad: bool | None = None):
     from .registry import ModelSetup
 
@@ -529,7 +608,8 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None):
     )
     u_pilot = np.clip((np.log(np.asarray(pre.pilot["length_scale"])) - np.log(lo)) / (np.log(hi) - np.log(lo)),
                       0.05, 0.95)
-    from numpyro.infer import init_to_value
+    ls_pilot = lo * (hi / lo) ** u_pilot[: lo.size]
+    start_sites, start_report = conditional_mode(inputs, max(pre.pilot["sigma"], 0.05), ls_pilot)
 
     extra = {
         "kernel": kernel, "geom": spectrum, "embedding": report, "preconditioner": pre,
@@ -548,10 +628,14 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None):
         # WARMUP_TREE_DEPTH)
         "vectorize_chain_groups": with_map,
         **sampler_constants(),
-        # ρ₀ (sampled only with per-scan terms) starts at its conditional mean given a flat field
-        "init_strategy": init_to_value(values={"sigma": max(pre.pilot["sigma"], 0.05),
-                                               "ls_unit": u_pilot[: lo.size],
-                                               "rho0": (a + float(stats.counts[obs].sum())) / (b + float(stats.exposure[obs].sum()))}),
+        # σ, ℓ at the pilot; the field's white coordinates around their conditional mode there
+        # (chain_start); ρ₀ (sampled only with per-scan terms) at its conditional mean given a
+        # flat field
+        "init_strategy": partial(init_near, values={
+            "sigma": max(pre.pilot["sigma"], 0.05), "ls_unit": u_pilot[: lo.size],
+            "rho0": (a + float(stats.counts[obs].sum())) / (b + float(stats.exposure[obs].sum())),
+            **start_sites}, centred=tuple(start_sites), radius=START_RADIUS),
+        "chain_start": start_report,
         "complete": complete_posterior,
         "dims": {"length_scale": ["axis"], "ls_unit": ["axis"], "field": ["cell"]},
         "coords": {"axis": list(stats.grid.axes[: lo.size]) if lo.size == 2 else ["isotropic"]},
@@ -714,6 +798,7 @@ def summary(result) -> dict:
                 "pilot_source": "binned pair correlation (fields/preconditioning.pair_correlation_pilot)",
                 "mode_map": ex["embedding"]["truncation"].get("mode_preconditioner")}),
             "warmup_mass_start": _mass_start(ex.get("initial_inverse_mass")),
+            "chain_start": ex.get("chain_start"),
         },
         "extrapolation": "cells without exposure are predicted through the field from their "
                          "neighbours; exports mask permanently excluded cells",
