@@ -119,8 +119,7 @@ def lgcp_model(counts, exposure, window_area, obs, gamma_a, gamma_b, sigma_scale
     numpyro.deterministic("log_window_integral", log_w)
     total = jnp.sum(counts)
     if scan_terms is None:
-        numpyro.factor("loglik", _count_dot(f, precond, obs, counts)
-                       - (gamma_a + total) * jnp.logaddexp(jnp.log(gamma_b), log_z))
+        numpyro.factor("loglik", integrated_loglik(f, log_z, precond, obs, counts, gamma_a, gamma_b))
         return
     from .scanterms import ppp_factor
 
@@ -146,6 +145,12 @@ def grid_data(counts, exposure, obs, n_cells) -> dict:
     le = np.full(n_cells, -np.inf)
     le[obs] = np.log(exposure)
     return {"counts_grid": jnp.asarray(c), "log_exposure_grid": jnp.asarray(le)}
+
+
+def integrated_loglik(f, log_z, pre, obs, counts, gamma_a, gamma_b):
+    """log-likelihood of the counts given the field with ρ₀ ~ Gamma(a, b) integrated out, up
+    to a constant: Σ_c N_c f_c − (a + N) log(b + Σ_c E_c e^{f_c})."""
+    return _count_dot(f, pre, obs, counts) - (gamma_a + jnp.sum(counts)) * jnp.logaddexp(jnp.log(gamma_b), log_z)
 
 
 def _count_dot(f, pre, obs, counts):
@@ -545,14 +550,14 @@ def conditional_mode(inputs: dict, sigma: float, ls) -> tuple[dict, dict]:
 
     kernels, pre = inputs["kernels"], inputs["precond"]
     counts, exposure, obs, area = (jnp.asarray(inputs[k]) for k in ("counts", "exposure", "obs", "window_area"))
-    a, b, total = inputs["gamma_a"], inputs["gamma_b"], float(np.sum(inputs["counts"]))
+    a, b = inputs["gamma_a"], inputs["gamma_b"]
     sig, lsj = jnp.asarray(sigma, float), jnp.asarray(ls, float)
     truncated = isinstance(kernels, TruncatedFieldKernels)
 
     def negative(x):
         u = x if truncated else kernels.rotate(x[0], x[1:], pre["householder"])
         f, log_prior_u, log_z, _ = kernels.evaluate(u, sig, lsj, pre, exposure, obs, area)
-        return -(log_prior_u + _count_dot(f, pre, obs, counts) - (a + total) * jnp.logaddexp(jnp.log(b), log_z))
+        return -(log_prior_u + integrated_loglik(f, log_z, pre, obs, counts, a, b))
 
     value_grad = jax.jit(jax.value_and_grad(negative))
 
