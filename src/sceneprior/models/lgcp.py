@@ -540,14 +540,36 @@ def init_near(site=None, values=None, centred=(), radius=START_RADIUS):
     return v + jax.random.uniform(site["kwargs"]["rng_key"], shape, minval=-radius, maxval=radius, dtype=v.dtype)
 
 
-def conditional_mode(inputs: dict, sigma: float, ls) -> tuple[dict, dict]:
-    """The field's white coordinates at the mode of their conditional posterior given σ and
-    ℓ (the model's density with ρ₀ integrated out; per-scan terms left out), by L-BFGS-B
-    (scipy.optimize, Byrd, Lu, Nocedal & Zhu 1995) from 0 with at most START_MAXITER
-    iterations. Returns ({site: value} for ``lgcp_model``'s white sites, report); the start
-    0 if the search fails. Only a starting point: the posterior does not depend on it."""
+def mode_search(negative, n: int) -> tuple[np.ndarray, dict]:
+    """Minimise ``negative`` (a jax function of a length-n vector: minus a model's log
+    density in its white coordinates, the rest held) by L-BFGS-B (scipy.optimize, Byrd, Lu,
+    Nocedal & Zhu 1995) from 0 with at most START_MAXITER iterations, one compiled value and
+    gradient. Returns (x, report); x = 0 if the search fails. Only a chains' starting point:
+    the posterior does not depend on it."""
     import scipy.optimize
 
+    value_grad = jax.jit(jax.value_and_grad(negative))
+
+    def fun(x):
+        v, g = value_grad(jnp.asarray(x))
+        return float(v), np.asarray(g, float)
+
+    x0 = np.zeros(n)
+    f0 = fun(x0)[0]
+    res = scipy.optimize.minimize(fun, x0, jac=True, method="L-BFGS-B", options={"maxiter": START_MAXITER})
+    ok = bool(np.all(np.isfinite(res.x)) and np.isfinite(res.fun) and res.fun <= f0)
+    report = {"white_coordinates": (f"conditional posterior mode at the pilot σ, ℓ (L-BFGS-B) + U(−{START_RADIUS:g}, "
+                                    f"{START_RADIUS:g}) per coordinate and chain" if ok else
+                                    f"U(−{START_RADIUS:g}, {START_RADIUS:g}) around 0 (the mode search failed)"),
+              "mode_search_iterations": int(res.nit), "log_density_gain_nats": float(f0 - res.fun) if ok else 0.0,
+              "mode_search_converged": bool(res.success)}
+    return (res.x if ok else x0), report
+
+
+def conditional_mode(inputs: dict, sigma: float, ls) -> tuple[dict, dict]:
+    """The field's white coordinates at the mode of their conditional posterior given σ and
+    ℓ (the model's density with ρ₀ integrated out; per-scan terms left out), by
+    :func:`mode_search`. Returns ({site: value} for ``lgcp_model``'s white sites, report)."""
     kernels, pre = inputs["kernels"], inputs["precond"]
     counts, exposure, obs, area = (jnp.asarray(inputs[k]) for k in ("counts", "exposure", "obs", "window_area"))
     a, b = inputs["gamma_a"], inputs["gamma_b"]
@@ -559,22 +581,7 @@ def conditional_mode(inputs: dict, sigma: float, ls) -> tuple[dict, dict]:
         f, log_prior_u, log_z, _ = kernels.evaluate(u, sig, lsj, pre, exposure, obs, area)
         return -(log_prior_u + integrated_loglik(f, log_z, pre, obs, counts, a, b))
 
-    value_grad = jax.jit(jax.value_and_grad(negative))
-
-    def fun(x):
-        v, g = value_grad(jnp.asarray(x))
-        return float(v), np.asarray(g, float)
-
-    x0 = np.zeros(kernels.n_latent if truncated else kernels.n_torus)
-    f0 = fun(x0)[0]
-    res = scipy.optimize.minimize(fun, x0, jac=True, method="L-BFGS-B", options={"maxiter": START_MAXITER})
-    ok = bool(np.all(np.isfinite(res.x)) and np.isfinite(res.fun) and res.fun <= f0)
-    x = res.x if ok else x0
-    report = {"white_coordinates": (f"conditional posterior mode at the pilot σ, ℓ (L-BFGS-B) + U(−{START_RADIUS:g}, "
-                                    f"{START_RADIUS:g}) per coordinate and chain" if ok else
-                                    f"U(−{START_RADIUS:g}, {START_RADIUS:g}) around 0 (the mode search failed)"),
-              "mode_search_iterations": int(res.nit), "log_density_gain_nats": float(f0 - res.fun) if ok else 0.0,
-              "mode_search_converged": bool(res.success)}
+    x, report = mode_search(negative, kernels.n_latent if truncated else kernels.n_torus)
     sites = {"u_modes": x} if truncated else {"u_soft": np.asarray(x[0]), "u_rest": x[1:]}
     return sites, report
 

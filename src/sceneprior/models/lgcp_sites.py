@@ -70,6 +70,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from functools import partial
 
 import jax
 import jax.numpy as jnp
@@ -279,9 +280,27 @@ def _preconditioners(spectrum, stats, counts, exposure, kernel, lo, hi, prior, u
     return pre, devs
 
 
-def setup(stats, prior: dict, model_spec, use_pad: bool | None = None):
-    from numpyro.infer import init_to_value
+def conditional_mode(inputs: dict, held: dict) -> tuple[dict, dict]:
+    """The white coordinates of the shared and deviation fields (u_soft, u_rest, dev_soft,
+    dev_rest) at the mode of their conditional posterior, the other sites held at ``held``
+    (the start values): the model's own log density (numpyro's ``log_density``) maximised by
+    :func:`lgcp.mode_search`. Returns ({site: value}, report)."""
+    from numpyro.infer.util import log_density
 
+    S, n = inputs["counts"].shape[0], inputs["kernels"].n_torus
+    fixed = {k: jnp.asarray(v, float) for k, v in held.items()}
+
+    def split(x):
+        return {"u_soft": x[0], "u_rest": x[1:n], "dev_soft": x[n:n + S], "dev_rest": x[n + S:].reshape(S, n - 1)}
+
+    def negative(x):
+        return -log_density(lgcp_sites_model, (), inputs, {**fixed, **split(x)})[0]
+
+    x, report = lgcp.mode_search(negative, (S + 1) * n)
+    return {k: np.asarray(v) for k, v in split(x).items()}, report
+
+
+def setup(stats, prior: dict, model_spec, use_pad: bool | None = None):
     from .registry import ModelSetup
 
     column, sites, idx = _site_labels(stats, model_spec)
@@ -310,6 +329,7 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None):
              "sigma_dev": max(float(np.median([d.pilot["sigma"] for d in devs])), 0.05),
              "ls_unit": u_pilot[: lo.size], "level": level0,
              "cv": float(np.clip(np.std(raw), 0.05, 1.0))}
+    start_sites, start_report = conditional_mode(inputs, start)
     scans = np.bincount(idx, minlength=S).astype(float)
     extra = {
         "kernel": kernel, "geom": spectrum, "embedding": report, "preconditioner": pre,
@@ -320,7 +340,11 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None):
         "dense_mass": [("sigma", "sigma_dev", "ls_unit", "cv", "level", "u_soft", "dev_soft")],
         "exclude_sites": ["u_rest", "dev_rest"],
         **lgcp.sampler_constants(),
-        "init_strategy": init_to_value(values=start),
+        # hyperparameters at the pilots; the fields' white coordinates around their
+        # conditional mode there (chain_start), per chain, as lgcp does
+        "init_strategy": partial(lgcp.init_near, values={**start, **start_sites}, centred=tuple(start_sites),
+                                 radius=lgcp.START_RADIUS),
+        "chain_start": start_report,
         "complete": complete_posterior,
         "dims": {"length_scale": ["axis"], "ls_unit": ["axis"], "field": ["cell"], "deviation": ["site", "cell"],
                  "dev_soft": ["site"], "log_z": ["site"], "log_window_integral": ["site"]},
@@ -433,6 +457,7 @@ def summary(result) -> dict:
                            "η = log m + <f>_W sampled instead of log m",
             "shared_field": pre.report(),
             "deviation_fields": {s: d.report() for s, d in zip(sites, ex["dev_preconditioners"])},
+            "chain_start": ex.get("chain_start"),
         },
         "note": note,
         "window_area_m2": stats.window_total,
