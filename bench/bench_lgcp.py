@@ -131,7 +131,7 @@ class TreeMemory:
         return max(self.peak_kb, own) / 1024
 
 
-def _run(kind, setup, chains, warmup, draws, dense_baseline=False, setup_s=0.0):
+def _run(kind, setup, chains, warmup, draws, dense_baseline=False, setup_s=0.0, progress=False):
     """One fit through the production sampler (``inference.run_nuts``: same chain layout,
     kept sites and diagnostics as ``sceneprior fit``); wall time = set-up (pilot,
     preconditioner) + compilation + warmup + sampling."""
@@ -146,7 +146,7 @@ def _run(kind, setup, chains, warmup, draws, dense_baseline=False, setup_s=0.0):
         pass
 
     smp = Sampler()
-    smp.chains, smp.warmup, smp.draws, smp.seed, smp.progress = chains, warmup, draws, 1, False
+    smp.chains, smp.warmup, smp.draws, smp.seed, smp.progress = chains, warmup, draws, 1, progress
     if dense_baseline:
         fn, inputs = dense_model_inputs(setup)
         kw = dict(init_strategy=init_to_median(num_samples=15), n_latent=len(setup.inputs["window_area"]),
@@ -158,7 +158,7 @@ def _run(kind, setup, chains, warmup, draws, dense_baseline=False, setup_s=0.0):
     thinning = thin_for_budget(draws, len(setup.inputs["window_area"]) * chains, DRAWS_BUDGET_MB)
     t = time.perf_counter()
     memory = TreeMemory()
-    idata = run_nuts(fn, inputs, smp, progress=False, thinning=thinning, **kw)
+    idata = run_nuts(fn, inputs, smp, progress=progress, thinning=thinning, **kw)
     wall = time.perf_counter() - t + setup_s
     peak_sampling = memory.stop_mb()
     # cell log intensity μ + f, μ = log ρ₀ drawn exactly from its conjugate Gamma given f
@@ -378,7 +378,7 @@ def one(args):
     K = int(args.scans)
     kind, setup, counts = _setup(size, kernel, per_cell, K, variance_kept=args.variance_kept)
     res = _run(kind, setup, args.chains, args.warmup, args.draws, dense_baseline=args.dense,
-               setup_s=0.0 if args.dense else setup.extra["bench_setup_s"])
+               setup_s=0.0 if args.dense else setup.extra["bench_setup_s"], progress=args.progress)
     res.update({"cells": f"{size}²", "kernel": kernel, "regime": regime, "scans": K,
                 "detections": int(counts.sum()), "pad": setup.extra["preconditioner"].use_pad,
                 "torus": setup.extra["embedding"]["torus_shape"],
@@ -399,6 +399,9 @@ def main():
     ap.add_argument("--scans", type=int, default=100)
     ap.add_argument("--one", nargs=3, metavar=("SIZE", "KERNEL", "REGIME"))
     ap.add_argument("--dense", action="store_true")
+    ap.add_argument("--progress", action="store_true",
+                    help="with --one: the sampler's progress bar on stderr (step size, leapfrog steps per "
+                         "iteration) — for long runs such as the dense baseline at 32²")
     ap.add_argument("--variance-kept", type=float, default=1.0,
                     help="spectral truncation: fraction of the field's prior variance kept (1: every torus mode)")
     ap.add_argument("--gradient", action="store_true", help="with --one: part (d) for that configuration")
