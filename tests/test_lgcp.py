@@ -442,8 +442,7 @@ def test_chains_start_around_the_conditional_mode_of_the_model_density(variance_
     its gradient at the mode must be ~0 against that at 0 (the mode is a stationary point
     of the model's density, calculus). ``init_near`` must put each chain
     within START_RADIUS of the mode per coordinate, at different points per key."""
-    from numpyro.infer.util import potential_energy
-    from numpyro.infer.util import initialize_model
+    from conftest import check_chain_start
 
     kind = get_model("lgcp")
     prior = resolve_prior(kind, {"rate_median": PER_CELL * N * N / K_SCANS, "rate_log_sd": 0.5,
@@ -452,35 +451,10 @@ def test_chains_start_around_the_conditional_mode_of_the_model_density(variance_
     counts = rng.poisson(PER_CELL * np.exp(rng.normal(0, 0.6, N * N)))
     setup = kind.setup(_stats(counts), prior, ModelSpec("lgcp", {}, {"kernel": "matern32",
                                                                      "variance_kept": variance_kept}))
-    report = setup.extra["chain_start"]
-    assert report["log_density_gain_nats"] > 0 and "conditional posterior mode" in report["white_coordinates"]
     values = setup.extra["init_strategy"].keywords["values"]
     white = setup.extra["init_strategy"].keywords["centred"]
     assert set(white) == ({"u_modes"} if variance_kept < 1 else {"u_soft", "u_rest"})
     # unconstrained σ, ℓ held at the start's values
     held = {"sigma": jnp.log(values["sigma"]), "ls_unit": jnp.log(values["ls_unit"]) - jnp.log1p(-values["ls_unit"])}
-
-    def pe(w):
-        return potential_energy(kind.fn, (), setup.inputs, {**held, **w})
-
-    zero = {k: jnp.zeros_like(jnp.asarray(values[k], float)) for k in white}
-    mode = {k: jnp.asarray(values[k], float) for k in white}
-    assert float(pe(zero) - pe(mode)) == pytest.approx(report["log_density_gain_nats"], rel=1e-6)
-    grad = jax.grad(pe)
-
-    def norm(at):
-        g = grad(at)
-        return math.sqrt(sum(float(jnp.vdot(g[k], g[k])) for k in white))
-
-    assert norm(mode) < 2e-2 * norm(zero)  # L-BFGS-B stops on relative change in the density
-    starts = []
-    for seed in (0, 1):
-        info = initialize_model(jax.random.PRNGKey(seed), kind.fn, model_kwargs=setup.inputs,
-                                init_strategy=setup.extra["init_strategy"])
-        z = info.param_info.z
-        for k in white:
-            off = np.asarray(z[k]) - np.asarray(values[k])
-            assert np.all(np.abs(off) <= lgcp.START_RADIUS) and (off.size == 1 or np.std(off) > 0.5)  # U(−2, 2): sd 1.15
-        assert float(z["sigma"]) == pytest.approx(float(held["sigma"]))
-        starts.append(np.concatenate([np.ravel(z[k]) for k in white]))
-    assert not np.allclose(starts[0], starts[1])
+    check_chain_start(kind.fn, setup.inputs, setup.extra["init_strategy"], setup.extra["chain_start"], held,
+                      lgcp.START_RADIUS, still="sigma")
