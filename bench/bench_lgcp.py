@@ -1,8 +1,9 @@
 """LGCP benchmark (not a test): prints, in one run, side-by-side figures for
 
   (a) the Fourier-domain LGCP against a dense-covariance formulation of the same model
-      (same kernel, priors, float64, NUTS) at 16² and 32² cells: wall time, minimum bulk
-      ESS over cells, ESS per second, and the ratio;
+      (same kernel, priors, float64, NUTS with the production sampler settings: start,
+      mass-matrix block, target acceptance — ``dense_sampler_options``) at 16² and 32²
+      cells: wall time, minimum bulk ESS over cells, ESS per second, and the ratio;
   (b) scaling at 32², 64², 128², 256² cells for a squared-exponential and a Matérn 3/2
       field, with weak (≈ 0.3 detections per cell in total) and strong (≥ 50 per cell)
       data: wall time including compilation, leapfrog steps per draw, minimum bulk ESS,
@@ -47,6 +48,7 @@ import resource
 import subprocess
 import sys
 import time
+from functools import partial
 
 import numpy as np
 
@@ -131,10 +133,12 @@ class TreeMemory:
         return max(self.peak_kb, own) / 1024
 
 
-def _run(kind, setup, chains, warmup, draws, dense_baseline=False, setup_s=0.0, progress=False):
+def _run(kind, setup, chains, warmup, draws, dense_baseline=False, setup_s=0.0, progress=False, matched=True):
     """One fit through the production sampler (``inference.run_nuts``: same chain layout,
     kept sites and diagnostics as ``sceneprior fit``); wall time = set-up (pilot,
-    preconditioner) + compilation + warmup + sampling."""
+    preconditioner) + compilation + warmup + sampling. ``matched``: the dense baseline
+    takes the production sampler settings (:func:`dense_sampler_options`); otherwise
+    numpyro's defaults (start at prior medians, diagonal identity mass)."""
     from numpyro.infer import init_to_median
 
     from sceneprior.fitting import nuts_options
@@ -149,8 +153,9 @@ def _run(kind, setup, chains, warmup, draws, dense_baseline=False, setup_s=0.0, 
     smp.chains, smp.warmup, smp.draws, smp.seed, smp.progress = chains, warmup, draws, 1, progress
     if dense_baseline:
         fn, inputs = dense_model_inputs(setup)
-        kw = dict(init_strategy=init_to_median(num_samples=15), n_latent=len(setup.inputs["window_area"]),
-                  n_cells=len(setup.inputs["window_area"]))
+        kw = dense_sampler_options(setup) if matched else dict(
+            init_strategy=init_to_median(num_samples=15), n_latent=len(setup.inputs["window_area"]),
+            n_cells=len(setup.inputs["window_area"]))
     else:
         fn, inputs = kind.fn, setup.inputs
         kw = nuts_options(setup, len(setup.inputs["window_area"]))
@@ -192,6 +197,16 @@ def _run(kind, setup, chains, warmup, draws, dense_baseline=False, setup_s=0.0, 
             "chains": chains, "warmup": warmup, "draws": draws, "least_ess": worst}
 
 
+def _cell_distances(setup):
+    """Per-axis distances between the grid's cell centres [m] (n_cells × n_cells each)."""
+    geom = setup.extra["geom"].geom
+    n0, n1 = geom.grid_shape
+    h0, h1 = geom.spacing
+    i0, i1 = np.meshgrid(np.arange(n0), np.arange(n1), indexing="ij")
+    return (np.abs(i0.ravel()[:, None] - i0.ravel()[None, :]) * h0,
+            np.abs(i1.ravel()[:, None] - i1.ravel()[None, :]) * h1)
+
+
 def dense_model_inputs(setup):
     """The same model with the field's covariance as a dense matrix (Cholesky per
     gradient), the baseline of part (a): same kernel (planar, on cell centres), priors."""
@@ -203,13 +218,8 @@ def dense_model_inputs(setup):
     from sceneprior.fields.kernels import anisotropic_kernel
 
     inp = setup.inputs
-    geom = setup.extra["geom"].geom
-    n0, n1 = geom.grid_shape
-    h0, h1 = geom.spacing
-    i0, i1 = np.meshgrid(np.arange(n0), np.arange(n1), indexing="ij")
-    d0 = np.abs(i0.ravel()[:, None] - i0.ravel()[None, :]) * h0
-    d1 = np.abs(i1.ravel()[:, None] - i1.ravel()[None, :]) * h1
-    kernel = geom.kernel
+    kernel = setup.extra["geom"].geom.kernel
+    d0, d1 = _cell_distances(setup)
 
     def model(counts, exposure, window_area, obs, gamma_a, gamma_b, sigma_scale, ls_lo, ls_hi):
         sigma = numpyro.sample("sigma", dist.HalfNormal(sigma_scale))
@@ -226,6 +236,44 @@ def dense_model_inputs(setup):
 
     keys = ("counts", "exposure", "window_area", "obs", "gamma_a", "gamma_b", "sigma_scale", "ls_lo", "ls_hi")
     return model, {k: inp[k] for k in keys}
+
+
+def dense_sampler_options(setup):
+    """The production sampler settings carried over to the dense baseline, so that part (a)
+    compares formulations rather than sampler settings: σ and ℓ start at the pilot, the
+    white coordinates z at L⁻¹ f₀ + U(−2, 2) per coordinate and chain, where f₀ is the field
+    of the production start (its conditional posterior mode, ``lgcp.conditional_mode``) and L
+    the Cholesky factor at the pilot σ, ℓ; a dense mass block over (σ, ℓ) starting at
+    ``lgcp.INITIAL_HYPER_VARIANCE``; the same target acceptance. Set-up work, not timed (as
+    the production set-up is not timed for the dense rows)."""
+    import jax.numpy as jnp
+    import jax.scipy.linalg as jsl
+
+    from sceneprior.fields.kernels import anisotropic_kernel
+    from sceneprior.fitting import nuts_options
+    from sceneprior.models import lgcp
+
+    n = len(setup.inputs["window_area"])
+    opts = nuts_options(setup, n)
+    values = setup.extra["init_strategy"].keywords["values"]
+    inp = setup.inputs
+    ls_lo, ls_hi = np.asarray(inp["ls_lo"]), np.asarray(inp["ls_hi"])
+    ls = ls_lo * (ls_hi / ls_lo) ** np.asarray(values["ls_unit"])
+    kern, pre = inp["kernels"], inp["precond"]
+    u = (values["u_modes"] if "u_modes" in values
+         else kern.rotate(jnp.asarray(values["u_soft"]), jnp.asarray(values["u_rest"]), pre["householder"]))
+    f0 = kern.evaluate(jnp.asarray(u), jnp.asarray(values["sigma"]), jnp.asarray(ls), pre, jnp.asarray(inp["exposure"]),
+                       jnp.asarray(inp["obs"]), jnp.asarray(inp["window_area"]))[0]
+    d0, d1 = _cell_distances(setup)
+    C = anisotropic_kernel(setup.extra["geom"].geom.kernel, (jnp.asarray(d0), jnp.asarray(d1)),
+                           values["sigma"] ** 2, jnp.resize(jnp.asarray(ls), 2))
+    L = jnp.linalg.cholesky(C + 1e-8 * jnp.eye(n))
+    z0 = np.asarray(jsl.solve_triangular(L, f0, lower=True))
+    start = {"sigma": values["sigma"], "ls_unit": np.asarray(values["ls_unit"]), "z": z0}
+    block = ("sigma", "ls_unit")
+    return dict(init_strategy=partial(lgcp.init_near, values=start, centred=("z",), radius=lgcp.START_RADIUS),
+                dense_mass=[block], inverse_mass_matrix={block: np.diag([lgcp.INITIAL_HYPER_VARIANCE] * (1 + ls_lo.size))},
+                n_latent=n, n_cells=n, target_accept=opts["target_accept"])
 
 
 def _timed(f, *a, reps=20, batches=5):
@@ -378,7 +426,8 @@ def one(args):
     K = int(args.scans)
     kind, setup, counts = _setup(size, kernel, per_cell, K, variance_kept=args.variance_kept)
     res = _run(kind, setup, args.chains, args.warmup, args.draws, dense_baseline=args.dense,
-               setup_s=0.0 if args.dense else setup.extra["bench_setup_s"], progress=args.progress)
+               setup_s=0.0 if args.dense else setup.extra["bench_setup_s"], progress=args.progress,
+               matched=not args.dense_numpyro_defaults)
     res.update({"cells": f"{size}²", "kernel": kernel, "regime": regime, "scans": K,
                 "detections": int(counts.sum()), "pad": setup.extra["preconditioner"].use_pad,
                 "torus": setup.extra["embedding"]["torus_shape"],
@@ -399,6 +448,10 @@ def main():
     ap.add_argument("--scans", type=int, default=100)
     ap.add_argument("--one", nargs=3, metavar=("SIZE", "KERNEL", "REGIME"))
     ap.add_argument("--dense", action="store_true")
+    ap.add_argument("--dense-numpyro-defaults", action="store_true",
+                    help="with --dense: numpyro's default start (prior medians) and diagonal identity mass "
+                         "instead of the production sampler settings (the part (a) runs before 2026-12-03's "
+                         "seventh session)")
     ap.add_argument("--progress", action="store_true",
                     help="with --one: the sampler's progress bar on stderr (step size, leapfrog steps per "
                          "iteration) — for long runs such as the dense baseline at 32²")
