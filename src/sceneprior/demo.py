@@ -9,8 +9,7 @@ from importlib import resources
 from pathlib import Path
 
 
-def run_demo(runs: Path, seed: int, quiet: bool = False, with_map: bool = True, log=print,
-             describe=None) -> None:
+def run_demo(runs: Path, seed: int, *, quiet: bool, with_map: bool, log, describe) -> None:
     """Simulate the Lowmarsh recording into RUNS/demo-data, fit the packaged uniform spec
     with gates around the vessels into RUNS/demo (``describe(result, path)`` gives its
     summary lines), set it beside the simulator's truth and an ungated fit, then (with_map)
@@ -36,8 +35,7 @@ def run_demo(runs: Path, seed: int, quiet: bool = False, with_map: bool = True, 
         })
     result = fit(spec, progress=not quiet, log=log)
     path = write_run(result)
-    if describe is not None:
-        print(describe(result, path))
+    print(describe(result, path))
     summary = json.loads((path / "summary.json").read_text())
     true_rate = info["true_rate_per_scan"]
     z = (summary["rate"]["mean"] - true_rate) / summary["rate"]["sd"]
