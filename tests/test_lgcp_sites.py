@@ -220,10 +220,10 @@ def machinery(tmp_path_factory):
     sites = ["a"] * SCANS[0] + ["b"] * SCANS[1]
     per_scan = np.full((sum(SCANS), N_CELLS**2), 2)
 
-    def make_setup(per_scan_counts, folder):
+    def make_setup(per_scan_counts, folder, start_search=True):
         folder.mkdir(exist_ok=True)
         stats, mspec = _site_stats(folder, per_scan_counts, sites, N_CELLS)
-        return stats, kind.setup(stats, prior, mspec, use_pad=True)
+        return stats, kind.setup(stats, prior, mspec, use_pad=True, start_search=start_search)
 
     stats0, setup = make_setup(per_scan, tmp / "0")
     inp = dict(setup.inputs)
@@ -265,19 +265,14 @@ def _fit_many(m, data, seed):
 
     batch, setups = [], []
     # the compiled run starts every data set where the machinery's set-up starts
-    # (batched_nuts' init_strategy), so the per-data-set start search is skipped: it would
-    # compile one value-and-gradient per data set for nothing (about 30 s of the suite)
-    skip = pytest.MonkeyPatch()
-    skip.setattr(lgcp_sites, "conditional_mode", lambda inputs, held: ({}, {"white_coordinates": "not searched"}))
-    try:
-        for i, per_scan in enumerate(data):
-            _, s = m["make_setup"](per_scan, m["tmp"] / f"set{seed}-{i}")
-            kw = dict(s.inputs)
-            kw.pop("kernels")
-            batch.append(kw)
-            setups.append(s)
-    finally:
-        skip.undo()
+    # (batched_nuts' init_strategy), so the per-data-set set-ups skip the start search: it
+    # would compile one value-and-gradient per data set for nothing (about 30 s of the suite)
+    for i, per_scan in enumerate(data):
+        _, s = m["make_setup"](per_scan, m["tmp"] / f"set{seed}-{i}", start_search=False)
+        kw = dict(s.inputs)
+        kw.pop("kernels")
+        batch.append(kw)
+        setups.append(s)
     draws = m["run"](batch, seed)
     out = []
     for i, s in enumerate(setups):

@@ -515,6 +515,8 @@ def sampler_constants() -> dict:
 #: took 31 steps per draw and 2 min each. START_RADIUS keeps the chains' starts apart at
 #: about the posterior's scale in these coordinates, so R-hat still compares dispersed starts.
 START_RADIUS = 2.0
+#: the chain_start report of a set-up without the start search (``setup(start_search=False)``)
+NOT_SEARCHED = {"white_coordinates": "numpyro's start, U(−2, 2) around 0 (no mode search)"}
 #: most L-BFGS iterations for that mode (set-up time; any point nearer the mode helps)
 START_MAXITER = 200
 
@@ -586,7 +588,12 @@ def conditional_mode(inputs: dict, sigma: float, ls) -> tuple[dict, dict]:
     return sites, report
 
 
-def setup(stats, prior: dict, model_spec, use_pad: bool | None = None):
+def setup(stats, prior: dict, model_spec, use_pad: bool | None = None, start_search: bool = True):
+    """The model's inputs and sampler settings for binned ``stats``. ``use_pad``: force the
+    padding correction on or off (None: by the data). ``start_search`` False skips the
+    conditional-mode search for the chains' start (the white coordinates then start as
+    numpyro's U(−2, 2) around 0): for callers that start their chains themselves, such as a
+    run compiled once for many data sets."""
     from .registry import ModelSetup
 
     kernel = model_spec.options.get("kernel", "matern32")
@@ -621,7 +628,8 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None):
     u_pilot = np.clip((np.log(np.asarray(pre.pilot["length_scale"])) - np.log(lo)) / (np.log(hi) - np.log(lo)),
                       0.05, 0.95)
     ls_pilot = lo * (hi / lo) ** u_pilot[: lo.size]
-    start_sites, start_report = conditional_mode(inputs, max(pre.pilot["sigma"], 0.05), ls_pilot)
+    start_sites, start_report = (conditional_mode(inputs, max(pre.pilot["sigma"], 0.05), ls_pilot) if start_search
+                                 else ({}, NOT_SEARCHED))
 
     extra = {
         "kernel": kernel, "geom": spectrum, "embedding": report, "preconditioner": pre,

@@ -300,7 +300,9 @@ def conditional_mode(inputs: dict, held: dict) -> tuple[dict, dict]:
     return {k: np.asarray(v) for k, v in split(x).items()}, report
 
 
-def setup(stats, prior: dict, model_spec, use_pad: bool | None = None):
+def setup(stats, prior: dict, model_spec, use_pad: bool | None = None, start_search: bool = True):
+    """The model's inputs and sampler settings; ``use_pad`` and ``start_search`` as in
+    :func:`lgcp.setup`."""
     from .registry import ModelSetup
 
     column, sites, idx = _site_labels(stats, model_spec)
@@ -329,7 +331,7 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None):
              "sigma_dev": max(float(np.median([d.pilot["sigma"] for d in devs])), 0.05),
              "ls_unit": u_pilot[: lo.size], "level": level0,
              "cv": float(np.clip(np.std(raw), 0.05, 1.0))}
-    start_sites, start_report = conditional_mode(inputs, start)
+    start_sites, start_report = conditional_mode(inputs, start) if start_search else ({}, lgcp.NOT_SEARCHED)
     scans = np.bincount(idx, minlength=S).astype(float)
     extra = {
         "kernel": kernel, "geom": spectrum, "embedding": report, "preconditioner": pre,
