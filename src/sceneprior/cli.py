@@ -135,7 +135,7 @@ def build_parser() -> argparse.ArgumentParser:
 
 def cmd_fit(args) -> int:
     from .fitting import fit
-    from .results import write_run
+    from .results import human_summary, write_run
     from .spec import load_spec
 
     spec = load_spec(args.spec)
@@ -192,39 +192,8 @@ def cmd_report(args) -> int:
 def cmd_demo(args) -> int:
     from .demo import run_demo
 
-    run_demo(Path(args.runs), seed=args.seed, quiet=args.quiet, with_map=not args.no_map, log=_log,
-             describe=human_summary)
+    run_demo(Path(args.runs), seed=args.seed, quiet=args.quiet, with_map=not args.no_map, log=_log)
     return 0
-
-
-def human_summary(result, path: Path) -> str:
-    from .results import CAUTION, summary_dict
-
-    s = summary_dict(result)
-    d, r, mi, dg = s["data"], s["rate"], s["mean_intensity"], s["diagnostics"]
-    lines = [
-        f"run {s['run']} ({s['model']['kind']}, {s['space']['frame']} frame) written to {path}",
-        f"  scans: {d['scans']} ({d['empty_scans']} empty); detections used: {d['detections_used']} "
-        f"(dropped: {d['dropped_in_masks']} in masks, "
-        + (f"{d['dropped_in_gates']} in gates, " if "dropped_in_gates" in d else "")
-        + f"{d['dropped_outside_bounds']} outside bounds)",
-        f"  window: {s['space']['window_area_m2'] / 1e6:.3f} km² (region minus masks)",
-        f"  clutter rate: {r['mean']:.3f} detections/scan, 90 % interval [{r['q05']:.3f}, {r['q95']:.3f}]",
-        f"  mean intensity: {mi['mean']:.4g} per m² per scan ({mi['mean'] * 1e6:.4g} per km² per scan)",
-    ]
-    if "gates" in s:
-        g = s["gates"]
-        lines.append(f"  gates: {g['gates']} around {g['objects']} known objects; on average "
-                     f"{100 * g['mean_fraction_of_window']:.3g} % of the window per scan left the exposure")
-    worst_rhat = max(v["r_hat"] for v in dg["variables"].values())
-    min_ess = min(v["ess_bulk"] for v in dg["variables"].values())
-    lines.append(f"  diagnostics: max R-hat {worst_rhat:.4f}, min bulk ESS {min_ess:.0f}, "
-                 f"divergences {dg['divergences']} ({dg['chains']} chains × {dg['draws']} draws)")
-    g = s["gate"]
-    lines.append("  convergence gate: " + ("passed" if g["converged"] else
-                 f"FAILED ({len(g['failures'])} check(s)); run marked unconverged"))
-    lines.append(f"  caution: {CAUTION}")
-    return "\n".join(lines)
 
 
 COMMANDS = {"fit": cmd_fit, "simulate": cmd_simulate, "demo": cmd_demo, "export": cmd_export,

@@ -9,13 +9,13 @@ from importlib import resources
 from pathlib import Path
 
 
-def run_demo(runs: Path, seed: int, *, quiet: bool, with_map: bool, log, describe) -> None:
+def run_demo(runs: Path, seed: int, *, quiet: bool, with_map: bool, log) -> None:
     """Simulate the Lowmarsh recording into RUNS/demo-data, fit the packaged uniform spec
-    with gates around the vessels into RUNS/demo (``describe(result, path)`` gives its
-    summary lines), set it beside the simulator's truth and an ungated fit, then (with_map)
+    with gates around the vessels into RUNS/demo (summary lines as ``sceneprior fit`` prints
+    them), set it beside the simulator's truth and an ungated fit, then (with_map)
     the clutter map; prints as it goes, progress and log lines through ``log``."""
     from .fitting import fit
-    from .results import write_run
+    from .results import human_summary, write_run
     from .simulate import simulate_scene
     from .spec import load_spec
 
@@ -35,7 +35,7 @@ def run_demo(runs: Path, seed: int, *, quiet: bool, with_map: bool, log, describ
         })
     result = fit(spec, progress=not quiet, log=log)
     path = write_run(result)
-    print(describe(result, path))
+    print(human_summary(result, path))
     summary = json.loads((path / "summary.json").read_text())
     true_rate = info["true_rate_per_scan"]
     z = (summary["rate"]["mean"] - true_rate) / summary["rate"]["sd"]

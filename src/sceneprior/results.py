@@ -416,6 +416,36 @@ def summary_dict(result) -> dict:
     return out
 
 
+def human_summary(result, path: Path) -> str:
+    """The lines ``sceneprior fit`` and the demo print for a written run: data, window, rate,
+    mean intensity, gates, diagnostics, the gate and the caution (from :func:`summary_dict`)."""
+    s = summary_dict(result)
+    d, r, mi, dg = s["data"], s["rate"], s["mean_intensity"], s["diagnostics"]
+    lines = [
+        f"run {s['run']} ({s['model']['kind']}, {s['space']['frame']} frame) written to {path}",
+        f"  scans: {d['scans']} ({d['empty_scans']} empty); detections used: {d['detections_used']} "
+        f"(dropped: {d['dropped_in_masks']} in masks, "
+        + (f"{d['dropped_in_gates']} in gates, " if "dropped_in_gates" in d else "")
+        + f"{d['dropped_outside_bounds']} outside bounds)",
+        f"  window: {s['space']['window_area_m2'] / 1e6:.3f} km² (region minus masks)",
+        f"  clutter rate: {r['mean']:.3f} detections/scan, 90 % interval [{r['q05']:.3f}, {r['q95']:.3f}]",
+        f"  mean intensity: {mi['mean']:.4g} per m² per scan ({mi['mean'] * 1e6:.4g} per km² per scan)",
+    ]
+    if "gates" in s:
+        g = s["gates"]
+        lines.append(f"  gates: {g['gates']} around {g['objects']} known objects; on average "
+                     f"{100 * g['mean_fraction_of_window']:.3g} % of the window per scan left the exposure")
+    worst_rhat = max(v["r_hat"] for v in dg["variables"].values())
+    min_ess = min(v["ess_bulk"] for v in dg["variables"].values())
+    lines.append(f"  diagnostics: max R-hat {worst_rhat:.4f}, min bulk ESS {min_ess:.0f}, "
+                 f"divergences {dg['divergences']} ({dg['chains']} chains × {dg['draws']} draws)")
+    g = s["gate"]
+    lines.append("  convergence gate: " + ("passed" if g["converged"] else
+                 f"FAILED ({len(g['failures'])} check(s)); run marked unconverged"))
+    lines.append(f"  caution: {CAUTION}")
+    return "\n".join(lines)
+
+
 def atomic_run_dir(runs_dir, name: str, write_files) -> Path:
     """Write the run directory ``runs_dir/name`` atomically (DESIGN.md §5) and return its path.
 
