@@ -542,9 +542,10 @@ def init_near(site=None, values=None, centred=(), radius=START_RADIUS):
     return v + jax.random.uniform(site["kwargs"]["rng_key"], shape, minval=-radius, maxval=radius, dtype=v.dtype)
 
 
-def mode_search(negative, n: int) -> tuple[np.ndarray, dict]:
+def mode_search(negative, n: int, held: str) -> tuple[np.ndarray, dict]:
     """Minimise ``negative`` (a jax function of a length-n vector: minus a model's log
-    density in its white coordinates, the rest held) by L-BFGS-B (scipy.optimize, Byrd, Lu,
+    density in its white coordinates, the rest held; ``held`` says what is held, for the
+    report) by L-BFGS-B (scipy.optimize, Byrd, Lu,
     Nocedal & Zhu 1995) from 0 with at most START_MAXITER iterations, one compiled value and
     gradient. Returns (x, report); x = 0 if the search fails. Only a chains' starting point:
     the posterior does not depend on it."""
@@ -560,7 +561,7 @@ def mode_search(negative, n: int) -> tuple[np.ndarray, dict]:
     f0 = fun(x0)[0]
     res = scipy.optimize.minimize(fun, x0, jac=True, method="L-BFGS-B", options={"maxiter": START_MAXITER})
     ok = bool(np.all(np.isfinite(res.x)) and np.isfinite(res.fun) and res.fun <= f0)
-    report = {"white_coordinates": (f"conditional posterior mode at the pilot σ, ℓ (L-BFGS-B) + U(−{START_RADIUS:g}, "
+    report = {"white_coordinates": (f"conditional posterior mode given {held} (L-BFGS-B) + U(−{START_RADIUS:g}, "
                                     f"{START_RADIUS:g}) per coordinate and chain" if ok else
                                     f"U(−{START_RADIUS:g}, {START_RADIUS:g}) around 0 (the mode search failed)"),
               "mode_search_iterations": int(res.nit), "log_density_gain_nats": float(f0 - res.fun) if ok else 0.0,
@@ -583,7 +584,7 @@ def conditional_mode(inputs: dict, sigma: float, ls) -> tuple[dict, dict]:
         f, log_prior_u, log_z, _ = kernels.evaluate(u, sig, lsj, pre, exposure, obs, area)
         return -(log_prior_u + integrated_loglik(f, log_z, pre, obs, counts, a, b))
 
-    x, report = mode_search(negative, kernels.n_latent if truncated else kernels.n_torus)
+    x, report = mode_search(negative, kernels.n_latent if truncated else kernels.n_torus, "σ, ℓ at the pilot")
     sites = {"u_modes": x} if truncated else {"u_soft": np.asarray(x[0]), "u_rest": x[1:]}
     return sites, report
 

@@ -296,7 +296,7 @@ def conditional_mode(inputs: dict, held: dict) -> tuple[dict, dict]:
     def negative(x):
         return -log_density(lgcp_sites_model, (), inputs, {**fixed, **split(x)})[0]
 
-    x, report = lgcp.mode_search(negative, (S + 1) * n)
+    x, report = lgcp.mode_search(negative, (S + 1) * n, "σ, σ_d, ℓ, the level and τ at their start values")
     return {k: np.asarray(v) for k, v in split(x).items()}, report
 
 
