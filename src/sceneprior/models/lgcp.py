@@ -545,10 +545,9 @@ def init_near(site=None, values=None, centred=(), radius=START_RADIUS):
 def mode_search(negative, n: int, held: str) -> tuple[np.ndarray, dict]:
     """Minimise ``negative`` (a jax function of a length-n vector: minus a model's log
     density in its white coordinates, the rest held; ``held`` says what is held, for the
-    report) by L-BFGS-B (scipy.optimize, Byrd, Lu,
-    Nocedal & Zhu 1995) from 0 with at most START_MAXITER iterations, one compiled value and
-    gradient. Returns (x, report); x = 0 if the search fails. Only a chains' starting point:
-    the posterior does not depend on it."""
+    report) by L-BFGS-B (scipy.optimize, Byrd, Lu, Nocedal & Zhu 1995) from 0 with at most
+    START_MAXITER iterations, one compiled value and gradient. Returns (x, report); x = 0 if
+    the search fails. Only a chains' starting point: the posterior does not depend on it."""
     import scipy.optimize
 
     value_grad = jax.jit(jax.value_and_grad(negative))
