@@ -8,6 +8,7 @@ convergence gate, 1 unexpected error (traceback).
 from __future__ import annotations
 
 import argparse
+import json
 import sys
 from pathlib import Path
 
@@ -141,10 +142,9 @@ def cmd_fit(args) -> int:
     spec = load_spec(args.spec)
     result = fit(spec, progress=not args.quiet, log=_log)
     path = write_run(result, Path(args.out) if args.out else None)
-    print(human_summary(result, path))
-    import json
-
-    gate = json.loads((path / "summary.json").read_text(encoding="utf-8"))["gate"]
+    summary = json.loads((path / "summary.json").read_text(encoding="utf-8"))
+    print(human_summary(summary, path))
+    gate = summary["gate"]
     if not gate["converged"]:  # the run is kept, marked unconverged (exit 3)
         raise ConvergenceGateError(
             f"run written to {path} but marked unconverged in summary.json: "
@@ -256,8 +256,6 @@ def _add_criticism_parsers(sub, simulate_parser) -> None:
 
 
 def cmd_check(args) -> int:
-    import json
-
     from .checks import check_run, format_check
 
     rep = check_run(args.run, prior_side=not args.no_prior, sensitivity=not args.no_sensitivity,
@@ -267,8 +265,6 @@ def cmd_check(args) -> int:
 
 
 def cmd_rank(args) -> int:
-    import json
-
     from .loo import format_rank, rank_runs
 
     res = rank_runs(args.runs, blocks=args.blocks)

@@ -35,8 +35,8 @@ def run_demo(runs: Path, seed: int, *, quiet: bool, with_map: bool, log) -> None
         })
     result = fit(spec, progress=not quiet, log=log)
     path = write_run(result)
-    print(human_summary(result, path))
-    summary = json.loads((path / "summary.json").read_text())
+    summary = json.loads((path / "summary.json").read_text(encoding="utf-8"))
+    print(human_summary(summary, path))
     true_rate = info["true_rate_per_scan"]
     z = (summary["rate"]["mean"] - true_rate) / summary["rate"]["sd"]
     print(f"  simulated truth: {true_rate:.3f} clutter detections/scan over the window "
@@ -47,7 +47,7 @@ def run_demo(runs: Path, seed: int, *, quiet: bool, with_map: bool, log) -> None
     print(f"  demo finished in {time.perf_counter() - t0:.0f} s")
 
 
-def demo_map(runs: Path, data_dir: Path, quiet: bool = False, log=print) -> str:
+def demo_map(runs: Path, data_dir: Path, *, quiet: bool, log) -> str:
     """Fit the packaged LGCP spec (gated like the uniform demo) into RUNS/demo-map and
     describe it: rate and zone rates against the simulator's quadrature truth, the gate."""
     from .fitting import fit

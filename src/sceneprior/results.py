@@ -416,10 +416,10 @@ def summary_dict(result) -> dict:
     return out
 
 
-def human_summary(result, path: Path) -> str:
-    """The lines ``sceneprior fit`` and the demo print for a written run: data, window, rate,
-    mean intensity, gates, diagnostics, the gate and the caution (from :func:`summary_dict`)."""
-    s = summary_dict(result)
+def human_summary(s: dict, path: Path) -> str:
+    """The lines ``sceneprior fit`` and the demo print for the run written to ``path``: data,
+    window, rate, mean intensity, gates, diagnostics, the gate and the caution, from its
+    summary ``s`` (summary.json as :func:`write_run` wrote it, so nothing is computed twice)."""
     d, r, mi, dg = s["data"], s["rate"], s["mean_intensity"], s["diagnostics"]
     lines = [
         f"run {s['run']} ({s['model']['kind']}, {s['space']['frame']} frame) written to {path}",
