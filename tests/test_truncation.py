@@ -123,12 +123,14 @@ def _stats(n, side, counts, K):
                        np.zeros(K, np.int64), sp.csr_matrix((K, g.n_cells)))
 
 
-@pytest.mark.parametrize("band,row_share,entries", [(1.5, 1.0, None), (4.0, 1.0, None), (1.5, 0.9, None),
-                                                    (1.5, 0.9, 600)])
-def test_model_prior_on_the_field_is_the_truncated_field(monkeypatch, band, row_share, entries):
+@pytest.mark.parametrize("band,row_share,entries,dense_all", [(1.5, 1.0, None, False), (4.0, 1.0, None, False),
+                                                              (1.5, 0.9, None, False), (1.5, 0.9, 600, False),
+                                                              (1.5, 0.9, 600, True)])
+def test_model_prior_on_the_field_is_the_truncated_field(monkeypatch, band, row_share, entries, dense_all):
     """At hyperparameters away from the pilot, with the data-built map y = L z in place
     (dense, and low rank with band 4 or a cap of 600 entries; on every coefficient, and on
-    the rows that carry 90 % of the correction), the model's prior density of its coordinates
+    the rows that carry 90 % of the correction; and the dense H^{-1/2} on every coefficient
+    that replaces a cap too small for the far directions), the model's prior density of its coordinates
     implies exactly the truncated field's covariance on the grid (change of variables;
     Wood & Chan 1994), and its normaliser is right as σ, ℓ move: for a Gaussian density
     log p(0) − ½ log det P is the same constant at every θ."""
@@ -139,6 +141,8 @@ def test_model_prior_on_the_field_is_the_truncated_field(monkeypatch, band, row_
     if entries is not None:
         monkeypatch.setattr(tr, "MAP_ENTRIES", entries)
         monkeypatch.setattr(tr, "NEAR_ENTRIES", entries)
+        # the cap leaves far directions out; the dense map on every row replaces it only when allowed
+        monkeypatch.setattr(tr, "DENSE_MAP_ENTRIES", tr.MAP_MAX_COEFFICIENTS**2 if dense_all else entries)
     kind = get_model("lgcp")
     n = 8
     prior = resolve_prior(kind, {"rate_median": 40.0 * n * n / 20, "length_scale_min": 150.0,
@@ -159,10 +163,13 @@ def test_model_prior_on_the_field_is_the_truncated_field(monkeypatch, band, row_
     assert setup.extra["vectorize_chain_groups"] is True
     np.testing.assert_array_equal(setup.extra["initial_inverse_mass"][("sigma", "ls_unit")],
                                   lgcp.INITIAL_HYPER_VARIANCE * np.eye(1 + setup.inputs["ls_lo"].size))
-    low_rank = band == 4.0 or entries is not None
+    low_rank = band == 4.0 or (entries is not None and not dense_all)
     assert ("low_rank_vectors" in pre) == low_rank and ("dense" in pre) == (not low_rank), rep
-    # a share below 1 leaves some coefficients alone: the map acts on a subset of rows
-    assert ("map_rows" in pre) == (row_share < 1.0) and (rep["rows"] < kern.n_latent) == (row_share < 1.0), rep
+    # a share below 1 leaves some coefficients alone: the map acts on a subset of rows, except
+    # the dense map that replaces a cap too small, which acts on every one
+    subset = row_share < 1.0 and not dense_all
+    assert ("map_rows" in pre) == subset and (rep["rows"] < kern.n_latent) == subset, rep
+    assert rep["beyond_far_band"] > 0 and ("reason" in rep) == dense_all, rep
     inp = setup.inputs
     basis = setup.extra["modes"]
     # the stored map is float32 (truncation.MAP_DTYPE, memory traffic); the exact checks below

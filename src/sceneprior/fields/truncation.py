@@ -255,6 +255,25 @@ NEAR_ENTRIES = 250_000
 #: steps per draw against 262 on every row — hence FAR_BAND: there this rule keeps rank 282
 #: on 3 536 rows (255 steps per draw).
 MAP_ENTRIES = 1_000_000
+#: most entries of the dense H^{-1/2} on every coefficient, the map used instead of the
+#: low-rank form when the directions beyond FAR_BAND outnumber MAP_ENTRIES // rows — as with
+#: strong data, where the torus padding (three quarters of the torus, no data) leaves most
+#: coefficients' posterior scale far from 1. Measured on the 128² Matérn 3/2 strong bench
+#: data (q 0.98, 4 797 coefficients; at the pilot the precision eigenvalues span 2·10⁻⁵ … 34,
+#: 2 417 of them beyond FAR_BAND on the 3 536 rows of the low-rank form, which keeps rank
+#: 282). Scratch script driving the production kernel, 1 × (300 + 300), seed 1: with the
+#: low-rank map and σ, ℓ held at their true values, 255 leapfrog steps per draw at step size
+#: 0.021 — as many as in the full fit, so the hyperparameters' coupling is not the cause; the
+#: dense map, σ and ℓ sampled, 31 at 0.17 (min cell ESS 148; about 10 ms per leapfrog step
+#: against 1.6 ms); the dense form on those 3 536 rows only: 31 steps but min cell ESS 32.7. Full length,
+#: ``bench/bench_lgcp.py --one 128 matern32 strong --variance-kept 0.98``, 4 × (1000 +
+#: 1000): 1 499.4 s, 31 steps, min cell ESS 5 568, 3.71 ESS/s, 2.82 GB, against 1 150.3 s,
+#: 255 steps, 2 932, 2.55 ESS/s, 1.62 GB with the low-rank map (the previous session): 1.46×
+#: the ESS per second, 1.3× the wall time (the product reads 92 MB per use). Two chain
+#: processes of two vectorised chains instead (forced by hand): 1 518.9 s, 4.85 GB — no
+#: gain. The weak-data bench cases and the 256² squared exponential keep the low-rank or
+#: row-restricted form (fewer far directions than the cap).
+DENSE_MAP_ENTRIES = MAP_MAX_COEFFICIENTS**2
 #: the map is applied in float32 (half the memory traffic): the coordinates are rounded to
 #: float32 before the product, so the log density carries float32 rounding (2–8 × 10⁻⁵ nats
 #: in tests/test_truncation.py's strong-data case, against the float64 map)
@@ -288,7 +307,9 @@ def dense_preconditioner(basis: ModeBasis, amp, d, weights, band: float | None =
     NEAR_ENTRIES: L_J = I + U_r diag(c_r^{1/2} − 1) U_rᵀ, within a factor √band of the dense
     square root in scale wherever r reaches every eigenvalue outside the band; the dense
     square root when those are half the rows or more and |J|² ≤ MAP_ENTRIES. Stored in
-    MAP_DTYPE. A constant, invertible linear map (block-diagonal: L_J on J, the identity
+    MAP_DTYPE. When the directions beyond FAR_BAND outnumber MAP_ENTRIES // |J| (strong
+    data) and K² ≤ DENSE_MAP_ENTRIES, the map is instead the dense H^{-1/2} on every
+    coefficient (report ``reason``). A constant, invertible linear map (block-diagonal: L_J on J, the identity
     elsewhere; log-Jacobian ½ Σ log c_r): the posterior is unchanged, only the sampler's
     geometry. Returns (arrays for the model: ``map_rows`` when J is not every row, and
     ``dense`` or ``low_rank_vectors``/``low_rank_scale``; report)."""
@@ -341,6 +362,12 @@ def dense_preconditioner(basis: ModeBasis, amp, d, weights, band: float | None =
     # the directions farthest from 1 first: every one beyond FAR_BAND as far as MAP_ENTRIES
     # allows, the rest of those outside the band within NEAR_ENTRIES
     beyond = int(np.sum(_beyond(c, FAR_BAND)))
+    report["beyond_far_band"] = beyond
+    if beyond > MAP_ENTRIES // J and K * K <= DENSE_MAP_ENTRIES:
+        # more far directions than the low-rank form may correct (strong data): H^{-1/2} itself
+        report.update(form="dense", rank=K, rows=K, row_share=1.0,
+                      reason=f"{beyond} directions beyond the far band, more than MAP_ENTRIES allows on {J} rows")
+        return {"dense": ((V / np.sqrt(ev)) @ V.T).astype(MAP_DTYPE)}, report
     r = min(out_j, max(NEAR_ENTRIES // J, min(beyond, MAP_ENTRIES // J)))
     far = np.argsort(-np.abs(np.log(c)), kind="stable")[:r]
     report.update(rank=r, rows=J, row_share=ROW_SHARE)
