@@ -253,7 +253,7 @@ NEAR_ENTRIES = 250_000
 #: rank 76, 44 steps per draw, 175.6 s). Strong data (--one 128 matern32 strong, 1 × (300 +
 #: 300)) needs the rank: 0.9 with 250 000 entries for every direction (rank 70) took 868
 #: steps per draw against 262 on every row — hence FAR_BAND: there this rule keeps rank 282
-#: on 3 536 rows (255 steps per draw).
+#: on 3 536 rows (255 steps per draw; since DENSE_MAP_ENTRIES that case takes the dense map).
 MAP_ENTRIES = 1_000_000
 #: most entries of the dense H^{-1/2} on every coefficient, the map used instead of the
 #: low-rank form when the directions beyond FAR_BAND outnumber MAP_ENTRIES // rows — as with
@@ -265,14 +265,14 @@ MAP_ENTRIES = 1_000_000
 #: low-rank map and σ, ℓ held at their true values, 255 leapfrog steps per draw at step size
 #: 0.021 — as many as in the full fit, so the hyperparameters' coupling is not the cause; the
 #: dense map, σ and ℓ sampled, 31 at 0.17 (min cell ESS 148; about 10 ms per leapfrog step
-#: against 1.6 ms); the dense form on those 3 536 rows only: 31 steps but min cell ESS 32.7. Full length,
-#: ``bench/bench_lgcp.py --one 128 matern32 strong --variance-kept 0.98``, 4 × (1000 +
-#: 1000): 1 499.4 s, 31 steps, min cell ESS 5 568, 3.71 ESS/s, 2.82 GB, against 1 150.3 s,
-#: 255 steps, 2 932, 2.55 ESS/s, 1.62 GB with the low-rank map (the previous session): 1.46×
-#: the ESS per second, 1.3× the wall time (the product reads 92 MB per use). Two chain
-#: processes of two vectorised chains instead (forced by hand): 1 518.9 s, 4.85 GB — no
-#: gain. The weak-data bench cases and the 256² squared exponential keep the low-rank or
-#: row-restricted form (fewer far directions than the cap).
+#: against 1.6 ms); the dense form on those 3 536 rows only: 31 steps but min cell ESS
+#: 32.7. Full length, ``bench/bench_lgcp.py --one 128 matern32 strong --variance-kept
+#: 0.98``, 4 × (1000 + 1000): 1 499.4 s, 31 steps, min cell ESS 5 568, 3.71 ESS/s, 2.82 GB,
+#: against 1 150.3 s, 255 steps, 2 932, 2.55 ESS/s, 1.62 GB with the low-rank map (the
+#: previous session): 1.46× the ESS per second, 1.3× the wall time (the product reads 92 MB
+#: per use). Two chain processes of two vectorised chains instead (forced by hand):
+#: 1 518.9 s, 4.85 GB — no gain. The weak-data bench cases and the 256² squared exponential
+#: keep the low-rank or row-restricted form (fewer far directions than the cap).
 DENSE_MAP_ENTRIES = MAP_MAX_COEFFICIENTS**2
 #: the map is applied in float32 (half the memory traffic): the coordinates are rounded to
 #: float32 before the product, so the log density carries float32 rounding (2–8 × 10⁻⁵ nats
@@ -309,10 +309,10 @@ def dense_preconditioner(basis: ModeBasis, amp, d, weights, band: float | None =
     square root when those are half the rows or more and |J|² ≤ MAP_ENTRIES. Stored in
     MAP_DTYPE. When the directions beyond FAR_BAND outnumber MAP_ENTRIES // |J| (strong
     data) and K² ≤ DENSE_MAP_ENTRIES, the map is instead the dense H^{-1/2} on every
-    coefficient (report ``reason``). A constant, invertible linear map (block-diagonal: L_J on J, the identity
-    elsewhere; log-Jacobian ½ Σ log c_r): the posterior is unchanged, only the sampler's
-    geometry. Returns (arrays for the model: ``map_rows`` when J is not every row, and
-    ``dense`` or ``low_rank_vectors``/``low_rank_scale``; report)."""
+    coefficient (report ``reason``). A constant, invertible linear map (block-diagonal: L_J
+    on J, the identity elsewhere; log-Jacobian ½ Σ log c_r): the posterior is unchanged,
+    only the sampler's geometry. Returns (arrays for the model: ``map_rows`` when J is not
+    every row, and ``dense`` or ``low_rank_vectors``/``low_rank_scale``; report)."""
     import jax
 
     band = LOW_RANK_BAND if band is None else band
