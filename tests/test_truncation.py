@@ -130,10 +130,10 @@ def test_model_prior_on_the_field_is_the_truncated_field(monkeypatch, band, row_
     """At hyperparameters away from the pilot, with the data-built map y = L z in place
     (dense, and low rank with band 4 or a cap of 600 entries; on every coefficient, and on
     the rows that carry 90 % of the correction; and the dense H^{-1/2} on every coefficient
-    that replaces a cap too small for the far directions), the model's prior density of its coordinates
-    implies exactly the truncated field's covariance on the grid (change of variables;
-    Wood & Chan 1994), and its normaliser is right as σ, ℓ move: for a Gaussian density
-    log p(0) − ½ log det P is the same constant at every θ."""
+    that replaces a cap too small for the far directions), the model's prior density of its
+    coordinates implies exactly the truncated field's covariance on the grid (change of
+    variables; Wood & Chan 1994), and its normaliser is right as σ, ℓ move: for a Gaussian
+    density log p(0) − ½ log det P is the same constant at every θ."""
     import sceneprior.fields.truncation as tr
 
     monkeypatch.setattr(tr, "LOW_RANK_BAND", band)
