@@ -44,7 +44,9 @@ documentation, irfft). Cost per evaluation: n0·|K0|·|K1| + n0·n1·|K1| comple
 from __future__ import annotations
 
 from dataclasses import dataclass
+from functools import partial
 
+import jax
 import jax.numpy as jnp
 import numpy as np
 
@@ -285,6 +287,27 @@ def _beyond(e, band: float):
     return (e < 1.0 / band) | (e > band)
 
 
+@partial(jax.jit, static_argnames=("box", "grid", "batch"))
+def _data_precision(amp, w, arr: dict, box, grid, batch: int):
+    """Gᵀ (W − w wᵀ/Σw) G (n_latent × n_latent), G the map from coefficients to the grid
+    field at amplitudes ``amp``: built column by column with G's transpose
+    (jax.linear_transpose), ``batch`` columns at a time. Module-level and jitted with the
+    data as arguments, so one compiled program serves every data set of the same shapes."""
+    K = arr["coef_rep"].shape[0]
+    total = jnp.maximum(jnp.sum(w), 1e-300)
+
+    def fwd(y):
+        return field_from_coefficients(y, amp, arr, box, grid)
+
+    fwd_t = jax.linear_transpose(fwd, jnp.zeros(K))
+
+    def column(e):
+        f = fwd(e)
+        return fwd_t(w * f - w * (jnp.dot(w, f) / total))[0]
+
+    return jax.lax.map(column, jnp.eye(K), batch_size=batch)
+
+
 def dense_preconditioner(basis: ModeBasis, amp, d, weights, band: float | None = None, batch: int = 64):
     """Fixed symmetric map L = H^{-1/2} with y = L z, so that the coefficients y are
     ≈ N(0, H⁻¹) when z ~ N(0, I) at the pilot hyperparameters.
@@ -313,25 +336,11 @@ def dense_preconditioner(basis: ModeBasis, amp, d, weights, band: float | None =
     on J, the identity elsewhere; log-Jacobian ½ Σ log c_r): the posterior is unchanged,
     only the sampler's geometry. Returns (arrays for the model: ``map_rows`` when J is not
     every row, and ``dense`` or ``low_rank_vectors``/``low_rank_scale``; report)."""
-    import jax
-
     band = LOW_RANK_BAND if band is None else band
     arr = basis.arrays()
-    box, grid, K = basis.box_shape, basis.geom.grid_shape, basis.n_latent
-    amp = jnp.asarray(amp)
-    w = jnp.asarray(weights, float)
-    total = jnp.maximum(jnp.sum(w), 1e-300)
-
-    def fwd(y):
-        return field_from_coefficients(y, amp, arr, box, grid)
-
-    fwd_t = jax.linear_transpose(fwd, jnp.zeros(K))
-
-    def column(e):
-        f = fwd(e)
-        return fwd_t(w * f - w * (jnp.dot(w, f) / total))[0]
-
-    M = jax.jit(lambda eye: jax.lax.map(column, eye, batch_size=batch))(jnp.eye(K))
+    K = basis.n_latent
+    M = _data_precision(jnp.asarray(amp), jnp.asarray(weights, float), arr, basis.box_shape,
+                        basis.geom.grid_shape, batch)
     dj = np.asarray(d)[np.asarray(arr["coef_rep"])]
     H = 0.5 * (np.asarray(M) + np.asarray(M).T) + np.diag(1.0 / dj)
     ev, V = np.linalg.eigh(H)
