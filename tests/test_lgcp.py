@@ -422,7 +422,7 @@ def test_smooth_kernel_gradient_stays_finite_where_eigenvalues_underflow():
                         sp.csr_matrix((K, n * n)))
     kind = get_model("lgcp")
     prior = resolve_prior(kind, {"length_scale_min": 50.0, "length_scale_max": 250.0}, "test")
-    setup = kind.setup(stats, prior, ModelSpec("lgcp", {}, {"kernel": "squared_exponential"}))
+    setup = kind.setup(stats, prior, ModelSpec("lgcp", {}, {"kernel": "squared_exponential", "variance_kept": 1.0}))
     n_t = setup.extra["geom"].geom.n_torus
     lam = np.asarray(setup.extra["geom"].eigenvalues(np.array([50.0, 50.0]), 1.0))
     assert (lam == 0).any()  # the case under test: eigenvalues that underflow

@@ -326,6 +326,29 @@ def _check_variance_kept(variance_kept) -> None:
                          f"carry, a number in [0.5, 1] (1: every mode), got {variance_kept!r}")
 
 
+#: model.variance_kept when the spec leaves it out, per kernel (others: 1, every torus mode).
+#: The squared exponential keeps the modes that carry 99.9 % of its prior variance at the
+#: shortest length scale: at 32² cells, 4 × (1000 + 1000) (``bench/bench_lgcp.py --one 32
+#: squared_exponential strong|weak --variance-kept 0.999``) strong data fit in 50.3 s, 63
+#: leapfrog steps per draw, min cell ESS 3711, against 163.9–203.3 s, 127 steps, 1047–1189
+#: with every mode; weak data 28.5 s against 58.6 s; at 128² and 256² every mode would take
+#: 50 min to hours (README, Performance, part (d)). Calibration at 0.999:
+#: tests/test_truncation.py's SBC. Matérn kernels keep every mode by default: their spectra
+#: decay slowly, so a gain needs q ≈ 0.98, which drops 2 % of the variance — the user's
+#: choice, not a silent default.
+DEFAULT_VARIANCE_KEPT = {"squared_exponential": 0.999}
+
+
+def variance_kept_option(model_spec, kernel: str) -> tuple[float, str]:
+    """(variance_kept, where it comes from): the spec's ``model.variance_kept``, else the
+    kernel's default (DEFAULT_VARIANCE_KEPT, 1 for kernels not listed), checked."""
+    given = model_spec.options.get("variance_kept")
+    if given is None:
+        return DEFAULT_VARIANCE_KEPT.get(kernel, 1.0), f"default for kernel {kernel}"
+    _check_variance_kept(given)
+    return given, "model.variance_kept"
+
+
 def truncated_plan(stats, kernel, prior, variance_kept):
     """Spectral truncation (``fields.truncation``), data-independent part: the periodised
     spectrum on the 2×-padded torus and the modes kept for ``variance_kept`` of the prior
@@ -597,9 +620,8 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None, start_sea
     from .registry import ModelSetup
 
     kernel = model_spec.options.get("kernel", "matern32")
-    variance_kept = model_spec.options.get("variance_kept", 1.0)
+    variance_kept, kept_source = variance_kept_option(model_spec, kernel)
     with_map = False  # a truncated field with the pilot map: warmup depth and chain groups below
-    _check_variance_kept(variance_kept)
     obs = np.flatnonzero(stats.exposure > 0)
     a, b = gamma_prior(prior["rate_median"], prior["rate_log_sd"], stats.window_total)
     counts_all = np.zeros(stats.grid.n_cells)
@@ -607,6 +629,7 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None, start_sea
     exposure_all = np.where(stats.exposure > 0, stats.exposure, 0.0)
     if variance_kept != 1.0:
         spectrum, report, lo, hi, basis = truncated_plan(stats, kernel, prior, variance_kept)
+        report["truncation"]["variance_kept_source"] = kept_source
         pre, precond, report["truncation"]["mode_preconditioner"] = truncated_preconditioner(
             basis, counts_all, exposure_all, lo, hi, prior["sigma_scale"])
         kernels = TruncatedFieldKernels(basis)
