@@ -456,7 +456,9 @@ def main():
                     help="with --one: the sampler's progress bar on stderr (step size, leapfrog steps per "
                          "iteration) — for long runs such as the dense baseline at 32²")
     ap.add_argument("--variance-kept", type=float, default=1.0,
-                    help="spectral truncation: fraction of the field's prior variance kept (1: every torus mode)")
+                    help="spectral truncation: fraction of the field's prior variance kept (1: every torus mode; "
+                         "1 for every kernel here, whereas a spec without model.variance_kept gives the squared "
+                         "exponential 0.999)")
     ap.add_argument("--gradient", action="store_true", help="with --one: part (d) for that configuration")
     ap.add_argument("--warmup-steps", action="store_true",
                     help="with --one: leapfrog steps per 100 warmup iterations, one chain per --seeds seed, "

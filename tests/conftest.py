@@ -30,14 +30,12 @@ SHARED_FIXTURE_FILES = {"test_demo": "demo_run", "test_export": "demo_run", "tes
 
 #: seconds each scheduling unit (a test file, or a SHARED_FIXTURE_FILES group) took on one
 #: worker: one local run of `pytest -v --durations=0` (setup + call + teardown summed per
-#: file), 2026-12-04, warm compile cache; truncation estimated after its SBC gained the
-#: squared-exponential case (+38 s) and lost 75 s of recompiles. Only the order matters:
-#: the longest units start first, so the two workers end close together. Files not listed
-#: run last.
-SCOPE_SECONDS = {"test_lgcp": 146, "test_truncation": 135, "test_lgcp_sites": 134, "rain_runs": 107,
-                 "test_chains": 74, "demo_run": 69, "test_mixture": 66, "test_detection": 39,
-                 "test_gates": 25, "test_birth": 25, "test_compare": 17, "test_nuts_tree": 15,
-                 "test_objects": 13, "test_fields": 9, "test_uniform": 9, "test_loglinear": 7}
+#: file), 2026-12-04, warm compile cache. Only the order matters: the longest units start
+#: first, so the two workers end close together. Files not listed run last.
+SCOPE_SECONDS = {"test_lgcp_sites": 142, "test_lgcp": 138, "test_truncation": 120, "rain_runs": 84,
+                 "test_chains": 70, "demo_run": 70, "test_mixture": 52, "test_detection": 34,
+                 "test_birth": 28, "test_compare": 19, "test_gates": 14, "test_nuts_tree": 14,
+                 "test_objects": 10, "test_fields": 10, "test_uniform": 10, "test_loglinear": 7}
 
 
 @pytest.hookimpl(optionalhook=True)  # a pytest-xdist hook: run without xdist, it is not called
@@ -46,10 +44,11 @@ def pytest_xdist_make_scheduler(config, log):
     worker, so its module fixtures are built once, and the files of SHARED_FIXTURE_FILES
     together, so their session fixture is built once. (xdist's own ``--dist loadgroup``
     marks do not group under pytest 9.2, which no longer reads the node ids xdist edits.)
-    A worker that runs out of work takes the longest unit left (SCOPE_SECONDS): longest
-    first is the classic list-scheduling rule (LPT; Graham 1969, cited from memory), which
-    keeps one long file from starting last. Another ``--dist`` on the command line keeps
-    xdist's own scheduler."""
+    Whenever xdist hands a worker its next unit (at the start, and when the worker has two
+    tests or fewer left), it is the longest unit left (SCOPE_SECONDS): longest first is the
+    classic list-scheduling rule (LPT; Graham 1969, cited from memory), which keeps one long
+    file from starting last. Another ``--dist`` on the command line keeps xdist's own
+    scheduler."""
     if config.getvalue("dist") != "loadfile":
         return None
     from xdist.scheduler import LoadScopeScheduling

@@ -338,6 +338,8 @@ def test_lgcp_run_outputs_on_a_polar_masked_grid(tmp_path, variance_kept):
     assert "halves of every merged subtree" in s["sampler"]["nuts_trees"]
     assert s["sampler"]["step_size_after_warmup"] == "the adapted step size, fixed"
     assert s["sampler"]["step_size_adaptation_target"]["mean_acceptance_probability"] == 0.8  # numpyro's default
+    assert s["lgcp"]["field_parameters"]["variance_kept"] == variance_kept
+    assert s["lgcp"]["field_parameters"]["variance_kept_source"] == "model.variance_kept"
     if variance_kept == 1.0:
         assert s["lgcp"]["field_parameters"]["truncation"].startswith("none")
     else:

@@ -230,18 +230,20 @@ def test_variance_kept_outside_its_range_is_refused(tmp_path, capsys, bad):
 
 @pytest.mark.parametrize("kernel,given,expected,source", [
     ("squared_exponential", None, 0.999, "default for kernel squared_exponential"),
-    ("squared_exponential", 1.0, None, None),
-    ("matern32", None, None, None),
+    ("squared_exponential", 1, None, "model.variance_kept"),
+    ("matern32", None, None, "default for kernel matern32"),
+    ("matern52", None, None, "default for kernel matern52"),
     ("matern32", 0.95, 0.95, "model.variance_kept")])
 def test_variance_kept_default_depends_on_the_kernel(kernel, given, expected, source):
     """Left out of the spec, variance_kept is 0.999 for the squared exponential (the setting
     the SBC below calibrates) and 1 (every torus mode) for the Matérn kernels; a value in
-    the spec wins, and summary's truncation report says where the value came from."""
+    the spec wins, and the set-up (summary.json's field parameters) says where it came from."""
     kind = get_model("lgcp")
     prior = resolve_prior(kind, {"length_scale_min": 150.0, "length_scale_max": 400.0}, "test")
     opts = {"kernel": kernel} | ({} if given is None else {"variance_kept": given})
     setup = kind.setup(_stats(N, SIDE, np.full(N * N, 3), K_SCANS), prior, ModelSpec("lgcp", {}, opts),
                        start_search=False)
+    assert setup.extra["variance_kept_source"] == source
     if expected is None:
         assert setup.extra["modes"] is None  # every torus mode
         return

@@ -288,11 +288,13 @@ def _beyond(e, band: float):
 
 
 @partial(jax.jit, static_argnames=("box", "grid", "batch"))
-def _data_precision(amp, w, arr: dict, box, grid, batch: int):
+def _data_precision(amp, w, arr: dict, eye, box, grid, batch: int):
     """Gᵀ (W − w wᵀ/Σw) G (n_latent × n_latent), G the map from coefficients to the grid
     field at amplitudes ``amp``: built column by column with G's transpose
-    (jax.linear_transpose), ``batch`` columns at a time. Module-level and jitted with the
-    data as arguments, so one compiled program serves every data set of the same shapes."""
+    (jax.linear_transpose), ``batch`` columns at a time, ``eye`` the identity (n_latent ×
+    n_latent; an argument, so the compiler cannot fold up to 6 000² entries into a
+    constant). Module-level and jitted with the data as arguments, so one compiled program
+    serves every data set of the same shapes."""
     K = arr["coef_rep"].shape[0]
     total = jnp.maximum(jnp.sum(w), 1e-300)
 
@@ -305,7 +307,7 @@ def _data_precision(amp, w, arr: dict, box, grid, batch: int):
         f = fwd(e)
         return fwd_t(w * f - w * (jnp.dot(w, f) / total))[0]
 
-    return jax.lax.map(column, jnp.eye(K), batch_size=batch)
+    return jax.lax.map(column, eye, batch_size=batch)
 
 
 def dense_preconditioner(basis: ModeBasis, amp, d, weights, band: float | None = None, batch: int = 64):
@@ -339,7 +341,7 @@ def dense_preconditioner(basis: ModeBasis, amp, d, weights, band: float | None =
     band = LOW_RANK_BAND if band is None else band
     arr = basis.arrays()
     K = basis.n_latent
-    M = _data_precision(jnp.asarray(amp), jnp.asarray(weights, float), arr, basis.box_shape,
+    M = _data_precision(jnp.asarray(amp), jnp.asarray(weights, float), arr, jnp.eye(K), basis.box_shape,
                         basis.geom.grid_shape, batch)
     dj = np.asarray(d)[np.asarray(arr["coef_rep"])]
     H = 0.5 * (np.asarray(M) + np.asarray(M).T) + np.diag(1.0 / dj)

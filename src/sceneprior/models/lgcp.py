@@ -656,6 +656,7 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None, start_sea
 
     extra = {
         "kernel": kernel, "geom": spectrum, "embedding": report, "preconditioner": pre,
+        "variance_kept_source": kept_source,
         "ls_bounds": {"min": lo.tolist(), "max": hi.tolist()},
         "gamma_prior": (a, b),
         "n_latent": n_latent, "modes": basis,
@@ -783,8 +784,9 @@ def describe_prior(prior: dict, stats) -> dict:
         "sigma": f"HalfNormal({prior['sigma_scale']:g}) on the field sd (log scale)",
         "length_scale": length_scale_lines(prior, stats),
         "field": "zero-mean stationary Gaussian field, circulant embedding on a padded torus: every "
-                 "torus mode, or with model.variance_kept < 1 the Fourier modes that carry that fraction "
-                 "of the prior variance at the shortest length scales (summary: field_parameters)",
+                 "torus mode, or with model.variance_kept < 1 (default 0.999 for the squared exponential, "
+                 "1 for the Matérn kernels) the Fourier modes that carry that fraction of the prior "
+                 "variance at the shortest length scales (summary: field_parameters)",
         "parameters": dict(prior),
         "defaults": {**DEFAULT_PRIOR, **LENGTH_SCALE_DEFAULTS},
     }
@@ -823,9 +825,12 @@ def summary(result) -> dict:
         "length_scale_bounds": ex["ls_bounds"],
         "posterior": _hyper_summary(result),
         "embedding": ex["embedding"],
-        "field_parameters": ({"torus_cells": int(ex["geom"].geom.n_torus), "truncation": "none (every torus mode kept)"}
+        "field_parameters": ({"torus_cells": int(ex["geom"].geom.n_torus), "truncation": "none (every torus mode kept)",
+                              "variance_kept": 1.0, "variance_kept_source": ex["variance_kept_source"]}
                              if ex.get("modes") is None else
-                             {"torus_cells": int(ex["geom"].geom.n_torus), "truncation": ex["embedding"]["truncation"]}),
+                             {"torus_cells": int(ex["geom"].geom.n_torus), "truncation": ex["embedding"]["truncation"],
+                              "variance_kept": ex["embedding"]["truncation"]["variance_kept_target"],
+                              "variance_kept_source": ex["variance_kept_source"]}),
         "parametrisation": {
             "description": ("white noise on the torus; per-mode partial centring d_k = 1 + w̄Λ_k, padding "
                             "correction at pilot hyperparameters, one soft direction (fields/preconditioning.py); "
