@@ -281,8 +281,7 @@ def test_simulation_based_calibration_with_truncation(kernel, kept):
     """SBC of the truncated model with data from the full torus field: μ, σ, ℓ and three
     cells' log intensity, 100 replications, on an 8 × 8 Cartesian grid (no mask, no
     per-scan terms). Matérn 3/2 keeps 95 % of the prior variance at ℓ_min (145 of 256 torus
-    modes); the squared exponential 99.9 %, the README's advice for that kernel (129 of
-    256). Its power against the dropped variance (at most 5 % and 0.1 %) is not
+    modes); the squared exponential 99.9 %, that kernel's default (129 of 256). Its power against the dropped variance (at most 5 % and 0.1 %) is not
     established: it shows that these truncations do not break calibration detectably at 100
     replications, not that any would be caught."""
     from sceneprior.inference import exact_idata
