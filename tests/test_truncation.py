@@ -244,12 +244,27 @@ def test_variance_kept_default_depends_on_the_kernel(kernel, given, expected, so
     setup = kind.setup(_stats(N, SIDE, np.full(N * N, 3), K_SCANS), prior, ModelSpec("lgcp", {}, opts),
                        start_search=False)
     assert setup.extra["variance_kept_source"] == source
+    assert setup.extra["advice"] == []  # a small torus: no long-run note
     if expected is None:
         assert setup.extra["modes"] is None  # every torus mode
         return
     trunc = setup.extra["embedding"]["truncation"]
     assert trunc["variance_kept_target"] == expected and trunc["variance_kept_source"] == source
     assert trunc["modes_kept"] < trunc["torus_modes"]
+
+
+@pytest.mark.parametrize("kernel,hint", [("matern32", "variance_kept = 0.98"), ("matern12", "coarser grid")])
+def test_large_full_torus_fit_is_told_what_shortens_it(kernel, hint):
+    """Beyond LONG_RUN_TORUS_CELLS on every mode the set-up hands the fit a note (printed
+    before sampling) that names the cost and what shortens it, per kernel."""
+    kind = get_model("lgcp")
+    prior = resolve_prior(kind, {}, "test")
+    n = 72  # a torus of at least 144² cells
+    stats = _stats(n, 1000.0, np.random.default_rng(1).poisson(0.3, n * n), K_SCANS)
+    setup = kind.setup(stats, prior, ModelSpec("lgcp", {}, {"kernel": kernel}), start_search=False)
+    assert setup.extra["n_latent"] > lgcp.LONG_RUN_TORUS_CELLS
+    (note,) = setup.extra["advice"]
+    assert f"{setup.extra['n_latent']} torus modes" in note and hint in note
 
 
 # --------------------------------------------------------------------------- calibration

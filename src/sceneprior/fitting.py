@@ -253,6 +253,8 @@ def fit(spec: FitSpec, progress: bool = True, log=print) -> FitResult:
     else:
         from .inference import run_nuts
 
+        for line in setup.extra.get("advice", ()):
+            log(f"note: {line}")
         log(f"sampling {kind.name} with NUTS: {smp.chains} chains × ({smp.warmup} warmup + "
             f"{smp.draws} draws), seed {smp.seed}")
         idata = run_nuts(kind.fn, setup.inputs, smp, progress=progress, dims=setup.extra.get("dims"),

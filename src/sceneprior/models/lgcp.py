@@ -339,6 +339,12 @@ def _check_variance_kept(variance_kept) -> None:
 DEFAULT_VARIANCE_KEPT = {"squared_exponential": 0.999}
 
 
+#: above this many torus cells on every mode a fit is told to expect a long run and what
+#: shortens it: 64² cells (a 128² torus) fit 4 × (1000 + 1000) in 3–6.5 min; at 128² cells
+#: even a perfectly preconditioned sampler would take about 50 min (README, Performance (d))
+LONG_RUN_TORUS_CELLS = 128 * 128
+
+
 def variance_kept_option(model_spec, kernel: str) -> tuple[float, str]:
     """(variance_kept, where it comes from): the spec's ``model.variance_kept``, else the
     kernel's default (DEFAULT_VARIANCE_KEPT, 1 for kernels not listed), checked."""
@@ -621,6 +627,7 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None, start_sea
 
     kernel = model_spec.options.get("kernel", "matern32")
     variance_kept, kept_source = variance_kept_option(model_spec, kernel)
+    advice = []  # lines the fit prints before sampling
     with_map = False  # a truncated field with the pilot map: warmup depth and chain groups below
     obs = np.flatnonzero(stats.exposure > 0)
     a, b = gamma_prior(prior["rate_median"], prior["rate_log_sd"], stats.window_total)
@@ -641,6 +648,16 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None, start_sea
                                    kernel, lo, hi, prior["sigma_scale"], use_pad=use_pad)
         kernels, precond, basis = FieldKernels(spectrum, pre.use_pad), pre.arrays(), None
         n_latent, dense_mass, exclude = spectrum.geom.n_torus, [("sigma", "ls_unit", "u_soft")], ["u_rest"]
+        if n_latent > LONG_RUN_TORUS_CELLS:
+            q = DEFAULT_VARIANCE_KEPT.get(kernel, 0.98)
+            shorter = ("Matérn 1/2 keeps nearly every mode under truncation, so a coarser grid (64² cells or "
+                       "fewer) is what shortens it" if kernel == "matern12" else
+                       f"model.variance_kept = {q:g} keeps the modes with {100 * q:g} % of the prior variance "
+                       f"(Matérn 3/2 at 128² cells and the squared exponential at 256² fit in about 2 min with "
+                       f"weak data)")
+            advice.append(f"every one of the {n_latent} torus modes is sampled: expect a long run at this size "
+                          f"(128² cells: about 50 min or more for 4 × (1000 + 1000)); {shorter} — README, "
+                          f"Performance")
     precond = {**precond, **grid_data(stats.counts[obs].astype(float), stats.exposure[obs], obs, stats.grid.n_cells)}
     inputs = dict(
         counts=stats.counts[obs].astype(float), exposure=stats.exposure[obs],
@@ -656,7 +673,7 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None, start_sea
 
     extra = {
         "kernel": kernel, "geom": spectrum, "embedding": report, "preconditioner": pre,
-        "variance_kept_source": kept_source,
+        "variance_kept_source": kept_source, "advice": advice,
         "ls_bounds": {"min": lo.tolist(), "max": hi.tolist()},
         "gamma_prior": (a, b),
         "n_latent": n_latent, "modes": basis,
