@@ -291,14 +291,16 @@ def _as_dense(pre):
 
 
 @pytest.mark.slow
-@pytest.mark.parametrize("kernel,kept", [("matern32", KEPT), ("squared_exponential", 0.999)])
+@pytest.mark.parametrize("kernel,kept", [("matern32", KEPT),
+                                         ("squared_exponential", lgcp.DEFAULT_VARIANCE_KEPT["squared_exponential"])])
 def test_simulation_based_calibration_with_truncation(kernel, kept):
     """SBC of the truncated model with data from the full torus field: μ, σ, ℓ and three
     cells' log intensity, 100 replications, on an 8 × 8 Cartesian grid (no mask, no
     per-scan terms). Matérn 3/2 keeps 95 % of the prior variance at ℓ_min (145 of 256 torus
-    modes); the squared exponential 99.9 %, that kernel's default (129 of 256). Its power against the dropped variance (at most 5 % and 0.1 %) is not
-    established: it shows that these truncations do not break calibration detectably at 100
-    replications, not that any would be caught."""
+    modes); the squared exponential its default, 99.9 % (129 of 256). Its power against
+    the dropped variance (at most 5 % and 0.1 %) is not established: it shows that these
+    truncations do not break calibration detectably at 100 replications, not that any would
+    be caught."""
     from sceneprior.inference import exact_idata
 
     kind = get_model("lgcp")

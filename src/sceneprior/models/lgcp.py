@@ -801,7 +801,8 @@ def describe_prior(prior: dict, stats) -> dict:
         "sigma": f"HalfNormal({prior['sigma_scale']:g}) on the field sd (log scale)",
         "length_scale": length_scale_lines(prior, stats),
         "field": "zero-mean stationary Gaussian field, circulant embedding on a padded torus: every "
-                 "torus mode, or with model.variance_kept < 1 (default 0.999 for the squared exponential, "
+                 "torus mode, or with model.variance_kept < 1 (default "
+                 f"{DEFAULT_VARIANCE_KEPT['squared_exponential']:g} for the squared exponential, "
                  "1 for the Matérn kernels) the Fourier modes that carry that fraction of the prior "
                  "variance at the shortest length scales (summary: field_parameters)",
         "parameters": dict(prior),
@@ -834,6 +835,7 @@ def summary(result) -> dict:
     ex = result.setup.extra
     g = result.stats.grid
     pre = ex["preconditioner"]
+    trunc = None if ex.get("modes") is None else ex["embedding"]["truncation"]
     return {
         "kernel": ex["kernel"],
         "stationarity": ("isotropic in metres (Cartesian grid)" if g.frame == "cartesian" else
@@ -842,12 +844,10 @@ def summary(result) -> dict:
         "length_scale_bounds": ex["ls_bounds"],
         "posterior": _hyper_summary(result),
         "embedding": ex["embedding"],
-        "field_parameters": ({"torus_cells": int(ex["geom"].geom.n_torus), "truncation": "none (every torus mode kept)",
-                              "variance_kept": 1.0, "variance_kept_source": ex["variance_kept_source"]}
-                             if ex.get("modes") is None else
-                             {"torus_cells": int(ex["geom"].geom.n_torus), "truncation": ex["embedding"]["truncation"],
-                              "variance_kept": ex["embedding"]["truncation"]["variance_kept_target"],
-                              "variance_kept_source": ex["variance_kept_source"]}),
+        "field_parameters": {"torus_cells": int(ex["geom"].geom.n_torus),
+                             "truncation": "none (every torus mode kept)" if trunc is None else trunc,
+                             "variance_kept": 1.0 if trunc is None else trunc["variance_kept_target"],
+                             "variance_kept_source": ex["variance_kept_source"]},
         "parametrisation": {
             "description": ("white noise on the torus; per-mode partial centring d_k = 1 + w̄Λ_k, padding "
                             "correction at pilot hyperparameters, one soft direction (fields/preconditioning.py); "
