@@ -365,9 +365,9 @@ def dense_preconditioner(basis: ModeBasis, amp, d, weights, band: float | None =
     # pilot (all rows: H^{-1/2} itself); elsewhere y = z
     if rows.size == K:
         c, U = 1.0 / ev, V
-    else:
-        c, U = np.linalg.eigh((V[rows] / ev) @ V[rows].T)
-        c = np.maximum(c, 1e-300)
+    else:  # eigenvalues first: the dense switch below needs no eigenvectors of this matrix
+        cov_j = (V[rows] / ev) @ V[rows].T
+        c, U = np.maximum(np.linalg.eigvalsh(cov_j), 1e-300), None
     J = rows.size
     out_j = int(np.sum(_beyond(c, band)))
     # the directions farthest from 1 first: every one beyond FAR_BAND as far as MAP_ENTRIES
@@ -379,6 +379,9 @@ def dense_preconditioner(basis: ModeBasis, amp, d, weights, band: float | None =
         report.update(form="dense", rank=K, rows=K, row_share=1.0,
                       reason=f"{beyond} directions beyond the far band, more than MAP_ENTRIES allows on {J} rows")
         return {"dense": ((V / np.sqrt(ev)) @ V.T).astype(MAP_DTYPE)}, report
+    if U is None:
+        c, U = np.linalg.eigh(cov_j)
+        c = np.maximum(c, 1e-300)
     r = min(out_j, max(NEAR_ENTRIES // J, min(beyond, MAP_ENTRIES // J)))
     far = np.argsort(-np.abs(np.log(c)), kind="stable")[:r]
     report.update(rank=r, rows=J, row_share=ROW_SHARE)
