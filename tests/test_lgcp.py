@@ -347,6 +347,12 @@ def test_lgcp_run_outputs_on_a_polar_masked_grid(tmp_path, variance_kept):
         assert tr["modes_kept"] < tr["torus_modes"]
         assert variance_kept <= tr["variance_fraction_kept_at_shortest_length_scale"] <= 1.0
         assert s["lgcp"]["embedding"]["method"] == "periodised"
+        # weak data (150 scans over 70 cells): the dropped modes are far below what the data
+        # leave uncertain, so no warning (tests/test_truncation.py checks the check itself)
+        dm = s["lgcp"]["field_parameters"]["dropped_modes"]
+        assert 0.0 < dm["dropped_variance_per_cell"] < dm["median_posterior_variance"]
+        assert dm["predicted_coverage_of_true_log_intensity"]["90"] > 0.85 and not dm["warning"]
+    assert s["lgcp"]["notes"] == []
     assert ("padding_correction" if variance_kept == 1.0 else "mode_map") in s["lgcp"]["parametrisation"]
     # warmup started σ and both length scales (range, bearing) — on the full torus also the
     # soft direction — at their own mass block, which numpyro took (a wrong size would not run)

@@ -88,6 +88,57 @@ def test_truncated_field_has_the_kept_modes_covariance(kernel, grid, torus):
     assert kept >= 0.9
 
 
+@pytest.mark.parametrize("kernel,grid,torus", CASES)
+def test_dropped_variance_is_what_the_truncation_removes_at_each_cell(kernel, grid, torus):
+    """The dropped modes' prior variance per cell is the full torus field's variance at a
+    point (the circulant covariance's first entry, numpy FFT of the eigenvalues: Wood & Chan
+    1994) less the truncated field's variance at each cell (the diagonal of G Gᵀ through the
+    sampler's own map); a basis that keeps every mode drops nothing."""
+    geom = TorusGeometry(kernel, grid, (1.0, 1.5), torus)
+    basis = mode_basis(geom, np.array([1.0, 1.5]), np.array([3.0, 3.0]), 0.8)
+    ls = np.array([1.7, 2.2])
+    G = _design(basis, basis.eigenvalues(ls, 1.3))
+    full = implied_first_row(np.asarray(aliased_eigenvalues(geom, ls, 1.3)), torus)[0, 0]
+    v = basis.dropped_variance(ls, 1.3)
+    assert v > 0.01 * full
+    np.testing.assert_allclose(full - np.diag(G @ G.T), v, rtol=1e-10, atol=1e-12)
+    every = mode_basis(geom, np.array([1.0, 1.5]), np.array([3.0, 3.0]), 1.0)
+    assert every.dropped_variance(ls, 1.3) == 0.0
+
+
+def test_dropped_mode_check_predicts_the_coverage_of_the_full_truth():
+    """``dropped_mode_check``'s coverage against a direct simulation of its own premise:
+    per cell, posterior draws N(m_c, s_c²) and a truth m_c + e_c with e_c ~ N(0, s_c² + v)
+    (the kept part's posterior error plus the dropped part); the fraction of cells whose
+    central interval of the draws covers the truth (5 000 cells) against the predicted
+    pooled coverage. With nothing dropped the prediction is the nominal level exactly
+    (standard normal quantiles, scipy.stats.norm)."""
+    from sceneprior.fields.truncation import dropped_mode_check
+
+    geom = TorusGeometry("matern32", (8, 8), (1.0, 1.0), (16, 16))
+    basis = mode_basis(geom, np.array([1.0, 1.0]), np.array([3.0, 3.0]), 0.8)
+    ls, sig = np.array([1.5, 1.5]), 0.9
+    v = basis.dropped_variance(ls, sig**2)
+    rng = np.random.default_rng(2)
+    n_cells, n_draws = 5000, 2000
+    s = np.sqrt(v) * rng.uniform(0.3, 3.0, n_cells)  # from strong (s² < v) to weak data
+    m = rng.normal(0.0, 1.0, n_cells)
+    draws = m + s * rng.standard_normal((n_draws, n_cells))
+    truth = m + np.sqrt(s**2 + v) * rng.standard_normal(n_cells)
+    out = dropped_mode_check(basis, np.full(n_draws, sig), np.tile(ls, (n_draws, 1)), draws)
+    assert out["dropped_variance_per_cell"] == pytest.approx(v, rel=1e-12)
+    for p in (0.5, 0.9):
+        lo, hi = np.quantile(draws, [0.5 - p / 2, 0.5 + p / 2], axis=0)
+        seen = np.mean((truth >= lo) & (truth <= hi))
+        pred = out["predicted_coverage_of_true_log_intensity"][f"{int(100 * p)}"]
+        assert pred < p - 0.05  # the dropped part matters at these posterior widths
+        assert abs(seen - pred) < 4 * math.sqrt(pred * (1 - pred) / n_cells) + 0.01, (p, seen, pred)
+    every = mode_basis(geom, np.array([1.0, 1.0]), np.array([3.0, 3.0]), 1.0)
+    out = dropped_mode_check(every, np.full(n_draws, sig), np.tile(ls, (n_draws, 1)), draws)
+    assert out["predicted_coverage_of_true_log_intensity"] == pytest.approx({"50": 0.5, "90": 0.9}, abs=1e-12)
+    assert not out["warning"]
+
+
 @pytest.mark.parametrize("kernel", ["matern12", "matern32", "squared_exponential"])
 def test_reported_minimum_kept_fraction(kernel):
     """The reported minimum of the kept variance fraction over the prior's length scales is
@@ -356,3 +407,45 @@ def test_simulation_based_calibration_with_truncation(kernel, kept):
         per_rep.append(d)
     # L draws, about every 10th of 200; 5 groups of 4 ranks; with the negative control
     check_sbc(per_rep, truths, names, thin_to=L, bins=5)
+
+
+def test_strong_data_truncated_fit_warns_that_the_intervals_are_too_narrow(tmp_path):
+    """Through the pipeline: a truncated field (q 0.8) on strong data (≈ 300 detections per
+    cell, a field of sd ≈ 1) — the dropped modes' prior variance exceeds the cells'
+    posterior variance, so summary.json, the printed lines and report.html carry the note,
+    and the predicted coverage is far below the nominal 90 %."""
+    import json
+
+    from conftest import write_csv, write_spec
+    from sceneprior.fitting import fit
+    from sceneprior.report import write_report
+    from sceneprior.results import human_summary, load_run, write_run
+    from sceneprior.spec import load_spec
+
+    rng = np.random.default_rng(8)
+    n, side, K = 8, 1000.0, 50
+    centre = (np.arange(n) + 0.5) * side / n
+    x, y = np.meshgrid(centre, centre, indexing="ij")
+    mean = 300.0 * np.exp(np.sin(x / 150.0) + np.cos(y / 120.0) - 0.5)
+    xs, ys = [], []
+    for c, lam in enumerate(mean.reshape(-1)):
+        k = rng.poisson(lam)
+        i, j = divmod(c, n)
+        xs.append(rng.uniform(i, i + 1, k) * side / n)
+        ys.append(rng.uniform(j, j + 1, k) * side / n)
+    xs, ys = np.concatenate(xs), np.concatenate(ys)
+    write_csv(tmp_path / "det.csv", ["scan", "x", "y"], zip(rng.integers(0, K, xs.size), xs, ys))
+    spec = {"name": "strong-truncated", "data": {"detections": "det.csv", "n_scans": K},
+            "space": {"frame": "cartesian", "x": [0.0, side], "y": [0.0, side], "cells": [n, n]},
+            "model": {"kind": "lgcp", "kernel": "matern32", "variance_kept": 0.8},
+            "sampler": {"chains": 2, "warmup": 150, "draws": 150, "seed": 2, "progress": False},
+            "output": {"dir": "runs"}}
+    res = fit(load_spec(write_spec(tmp_path / "spec.toml", spec)), progress=False, log=lambda m: None)
+    path = write_run(res, tmp_path / "runs")
+    s = json.loads((path / "summary.json").read_text())
+    dm = s["lgcp"]["field_parameters"]["dropped_modes"]
+    assert dm["warning"] and dm["ratio_median"] > 1.0
+    assert dm["predicted_coverage_of_true_log_intensity"]["90"] < 0.85
+    assert len(s["lgcp"]["notes"]) == 1 and "raise model.variance_kept" in s["lgcp"]["notes"][0]
+    assert "  note: the truncated field (model.variance_kept = 0.8)" in human_summary(s, path)
+    assert "Note: the truncated field" in write_report(load_run(path)).read_text()

@@ -625,7 +625,9 @@ def build_report(run) -> str:
         f"<tr><th>sampler</th><td>{esc(str(s.get('sampler')))}</td></tr>"
         f"<tr><th>spec</th><td>{esc(str(d.get('spec')))} <code>{esc(str(d.get('spec_sha256')))}</code></td></tr>"
         "</table><h3>Priors</h3><table>" + prior_rows + "</table><h3>Inputs (SHA-256)</h3><table>"
-        + inputs + "</table></section>")
+        + inputs + "</table>"
+        + "".join(f'<p class="note">Note: {esc(n)}</p>' for n in s.get(s["model"]["kind"], {}).get("notes", []))
+        + "</section>")
     parts.append(f'<section><h2>Caution</h2><div class="caution">{esc(s.get("caution", CAUTION))}</div></section>')
 
     title = f"sceneprior report — run {s['run']}"

@@ -439,6 +439,7 @@ def human_summary(s: dict, path: Path) -> str:
     min_ess = min(v["ess_bulk"] for v in dg["variables"].values())
     lines.append(f"  diagnostics: max R-hat {worst_rhat:.4f}, min bulk ESS {min_ess:.0f}, "
                  f"divergences {dg['divergences']} ({dg['chains']} chains × {dg['draws']} draws)")
+    lines += [f"  note: {n}" for n in s.get(s["model"]["kind"], {}).get("notes", [])]  # the kind's own warnings
     g = s["gate"]
     lines.append("  convergence gate: " + ("passed" if g["converged"] else
                  f"FAILED ({len(g['failures'])} check(s)); run marked unconverged"))

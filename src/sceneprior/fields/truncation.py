@@ -83,6 +83,7 @@ class ModeBasis:
     A: np.ndarray
     B: np.ndarray
     report: dict
+    keep: np.ndarray | None = None  # (m0, m1//2+1) bool: the kept modes of the half spectrum
 
     @property
     def n_latent(self) -> int:
@@ -108,6 +109,17 @@ class ModeBasis:
             for j in range(q.size):
                 dens = dens + unit_spectral_density(self.geom.kernel, ls[0] ** 2 * s0[i] + ls[1] ** 2 * s1[j], xp)
         return variance * ls[0] * ls[1] * dens / (h0 * h1)
+
+    def dropped_variance(self, length_scales, variance) -> float:
+        """Prior variance per cell of the modes the truncation leaves out, at length scales
+        ``length_scales`` (one or two values) and field variance ``variance``: (1/N) Σ over
+        the dropped torus modes of Λ_k (a stationary torus field's variance at a point is
+        (1/N) Σ_k Λ_k over all N modes; each half-spectrum entry counted with its mirror,
+        ``half_multiplicity``). Numpy; for reports, not for the sampler."""
+        lam = np.maximum(np.asarray(aliased_eigenvalues(self.geom, np.resize(np.asarray(length_scales, float), 2),
+                                                        float(variance)), float), 0.0)
+        mult = half_multiplicity(self.geom.torus_shape)
+        return float(np.sum((mult * lam)[~self.keep]) / self.geom.n_torus)
 
     def arrays(self) -> dict:
         """Device arrays for the field map (model inputs)."""
@@ -224,7 +236,47 @@ def mode_basis(geom: TorusGeometry, lo2, hi2, variance_kept: float) -> ModeBasis
     return ModeBasis(geom, rk0.astype(float), rk1.astype(float), np.asarray(coef_rep, np.int64),
                      (int(box_k0.size), int(n_c)), np.asarray(re_pos, np.int64), np.asarray(re_src, np.int64),
                      np.asarray(re_w, float), np.asarray(im_pos, np.int64), np.asarray(im_src, np.int64),
-                     np.asarray(im_w, float), A, B, report)
+                     np.asarray(im_w, float), A, B, report, keep)
+
+
+#: a truncated fit warns when the predicted coverage of its 90 % intervals for the true
+#: cell log intensity (``dropped_mode_check``) falls below this
+COVERAGE_WARNING = 0.85
+
+
+def dropped_mode_check(basis: ModeBasis, sigma, length_scale, log_intensity, max_points: int = 40) -> dict:
+    """How much the modes a truncation leaves out matter, given the posterior.
+
+    The field is kept part + dropped part, independent under the prior. A truncated fit
+    infers the kept part; the dropped part stays in the truth but not in the fit, so the
+    error of a cell's posterior mean has variance ≈ s_c² + v, with s_c² the cell's posterior
+    variance of the log intensity and v the dropped modes' prior variance per cell
+    (:meth:`ModeBasis.dropped_variance`, averaged over up to ``max_points`` posterior draws of
+    σ and ℓ). If the truth is Gaussian about the mean with that variance, a central interval
+    of nominal level p covers it with probability 2Φ(z_p / √(1 + v/s_c²)) − 1, z_p the
+    standard normal quantile of (1 + p)/2. With weak data s_c² ≫ v and nothing is lost; with
+    strong data s_c² can fall below v and the intervals are too narrow.
+
+    sigma (draws,), length_scale (draws,) or (draws, 2), log_intensity (draws, cells): the
+    cells that carry data. Returns the mean dropped variance, the cells' median posterior
+    variance, their ratio, the predicted pooled coverage at 50 % and 90 % and ``warning``
+    (predicted 90 % coverage below COVERAGE_WARNING)."""
+    from scipy.stats import norm
+
+    sigma = np.asarray(sigma, float).reshape(-1)
+    ls = np.asarray(length_scale, float).reshape(sigma.size, -1)
+    pick = np.unique(np.linspace(0, sigma.size - 1, min(max_points, sigma.size)).round().astype(int))
+    v = float(np.mean([basis.dropped_variance(ls[i], sigma[i] ** 2) for i in pick]))
+    s2 = np.var(np.asarray(log_intensity, float), axis=0)
+    ratio = v / np.maximum(s2, 1e-300)
+    cover = {f"{int(100 * p)}": float(np.mean(2.0 * norm.cdf(norm.ppf(0.5 + p / 2) / np.sqrt(1.0 + ratio)) - 1.0))
+             for p in (0.5, 0.9)}
+    return {"dropped_variance_per_cell": v, "median_posterior_variance": float(np.median(s2)),
+            "ratio_median": float(v / max(np.median(s2), 1e-300)),
+            "predicted_coverage_of_true_log_intensity": cover,
+            "warning": bool(cover["90"] < COVERAGE_WARNING),
+            "rule": "interval error variance s² + v per cell, v the dropped modes' prior variance at the "
+                    "posterior σ, ℓ; coverage 2Φ(z/√(1 + v/s²)) − 1 pooled over the cells with data"}
 
 
 #: largest number of coefficients for which the pilot map is built (H is K × K float64: the
