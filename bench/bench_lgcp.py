@@ -3,7 +3,9 @@
   (a) the Fourier-domain LGCP against a dense-covariance formulation of the same model
       (same kernel, priors, float64, NUTS with the production sampler settings: start,
       mass-matrix block, target acceptance — ``dense_sampler_options``) at 16² and 32²
-      cells: wall time, minimum bulk ESS over cells, ESS per second, and the ratio;
+      cells: wall time, minimum bulk ESS over cells, ESS per second, and the ratio; and,
+      since the dense form cannot run the full length in hours, bounds on its wall time and
+      ESS per second at that length from its measured gradient cost (``dense_bound``);
   (b) scaling at 32², 64², 128², 256² cells for a squared-exponential and a Matérn 3/2
       field, with weak (≈ 0.3 detections per cell in total) and strong (≥ 50 per cell)
       data: wall time including compilation, leapfrog steps per draw, minimum bulk ESS,
@@ -374,6 +376,50 @@ def gradient_cost(args):
                       "draws": args.draws}))
 
 
+def dense_bound(args):
+    """Part (a) at the issue's length without running the dense form that long (one
+    process): the dense baseline's gradient cost (its Cholesky factor and derivative), NUTS's
+    floor for an iid target of the same dimension (:func:`nuts_floor`), and from them a
+    lower bound on the dense form's wall time for chains × (warmup + draws) — every
+    iteration at least the floor's leapfrog steps, each step of the chains at least the
+    cheaper of one chain per core and all chains vectorised (both measured), no set-up or
+    compilation counted — and an
+    upper bound on its ESS per second: the minimum bulk ESS over cells taken as at most the
+    number of draws kept. Both assume the dense posterior needs at least the floor's steps
+    (it took 47 per draw at 32² in part (a)'s short run; the floor there is printed)."""
+    import jax
+    from numpyro.infer.util import initialize_model
+
+    from sceneprior.inference import configure_jax, usable_cores
+
+    configure_jax()
+    size, kernel, regime = args.one
+    kind, setup, _ = _setup(int(size), kernel, REGIMES[regime], int(args.scans), variance_kept=args.variance_kept)
+    fn, inputs = dense_model_inputs(setup)
+    opts = dense_sampler_options(setup)
+    info = initialize_model(jax.random.PRNGKey(0), fn, model_kwargs=inputs, init_strategy=opts["init_strategy"])
+    z = info.param_info.z
+    import jax.numpy as jnp
+
+    grad = _timed(jax.jit(jax.value_and_grad(info.potential_fn)), z, reps=3, batches=3)
+    zs = jax.tree.map(lambda x: jnp.stack([x] * args.chains), z)
+    grad_vec = _timed(jax.jit(jax.vmap(jax.value_and_grad(info.potential_fn))), zs, reps=3, batches=3)
+    dim = int(sum(np.size(v) for v in jax.tree.leaves(z)))
+    floor, book1, book_vec = nuts_floor(dim, args.chains)
+    its = args.warmup + args.draws
+    # per leapfrog step of all chains: one chain per core at best, or the chains vectorised —
+    # whichever is cheaper, whatever the production layout, so the bound holds for both
+    cores = min(args.chains, usable_cores())
+    per_step = min(args.chains * (grad + book1) / cores, grad_vec + book_vec)
+    wall = its * floor * per_step
+    print(json.dumps({"cells": f"{size}²", "kernel": kernel, "regime": regime, "formulation": "dense",
+                      "dimension": dim, "grad_ms_1chain": 1e3 * grad, f"grad_ms_{args.chains}chains": 1e3 * grad_vec,
+                      "iid_floor_steps": floor, "nuts_ms_per_step_1chain": 1e3 * book1,
+                      "cores": cores, "chains": args.chains,
+                      "warmup": args.warmup, "draws": args.draws, "wall_lower_bound_s": wall,
+                      "ess_per_s_upper_bound": args.chains * args.draws / wall}))
+
+
 def warmup_steps(args):
     """Where warmup's leapfrog steps go, for one configuration (one process): for each seed,
     one chain through the production NUTS kernel (``inference.nuts_kernel`` with the model's
@@ -459,7 +505,9 @@ def main():
                     help="spectral truncation: fraction of the field's prior variance kept (1: every torus mode; "
                          "1 for every kernel here, whereas a spec without model.variance_kept gives the squared "
                          "exponential 0.999)")
-    ap.add_argument("--gradient", action="store_true", help="with --one: part (d) for that configuration")
+    ap.add_argument("--gradient", action="store_true",
+                    help="with --one: part (d) for that configuration; with --dense as well: the dense baseline's "
+                         "gradient cost and the bounds on its wall time and ESS/s at this length (part (a))")
     ap.add_argument("--warmup-steps", action="store_true",
                     help="with --one: leapfrog steps per 100 warmup iterations, one chain per --seeds seed, "
                          "chains one after another (where warmup's time goes)")
@@ -495,7 +543,9 @@ def main():
         for _, name, value in knobs:
             setattr(lgcp, name, value)
     if args.one:
-        return gradient_cost(args) if args.gradient else warmup_steps(args) if args.warmup_steps else one(args)
+        if args.gradient:
+            return dense_bound(args) if args.dense else gradient_cost(args)
+        return warmup_steps(args) if args.warmup_steps else one(args)
     if args.quick:
         args.chains, args.warmup, args.draws = 1, 200, 200
         sizes = args.sizes or [16, 32]
@@ -534,6 +584,13 @@ def main():
             rows += [f, d]
             if "ess_per_s" in f and "ess_per_s" in d:
                 print(f"  {n}²: ESS/s ratio fourier/dense = {f['ess_per_s'] / d['ess_per_s']:.3g}")
+            b = call("--one", str(n), "matern32", "weak", "--dense", "--gradient")
+            if "ess_per_s_upper_bound" in b:
+                print(f"  {n}² dense at this length, bound from its gradient ({b['grad_ms_1chain']:.4g} ms) and the "
+                      f"iid floor ({b['iid_floor_steps']:.3g} steps): wall ≥ {b['wall_lower_bound_s']:.4g} s, "
+                      f"ESS/s ≤ {b['ess_per_s_upper_bound']:.3g}"
+                      + (f"; ratio fourier/dense ≥ {f['ess_per_s'] / b['ess_per_s_upper_bound']:.3g}"
+                         if "ess_per_s" in f else ""))
         show(rows)
     if "b" in args.parts:
         print("\n(b) scaling")
