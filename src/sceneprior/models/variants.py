@@ -101,6 +101,8 @@ def variant_kind(name: str):
         out = scanterms.summary(result, tokens)
         if base.summary is not None:
             out[base_name] = base.summary(result)
+            if out[base_name].get("notes"):  # printed lines and the report read the kind's own section
+                out["notes"] = out[base_name]["notes"]
         return out
 
     fields = dict(name=name, fn=base.fn, default_prior=prior_defaults, setup=setup,
