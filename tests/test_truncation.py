@@ -459,3 +459,9 @@ def test_strong_data_truncated_fit_warns_that_the_intervals_are_too_narrow(tmp_p
     assert len(s["lgcp"]["notes"]) == 1 and "raise model.variance_kept" in s["lgcp"]["notes"][0]
     assert "  note: the truncated field (model.variance_kept = 0.8)" in human_summary(s, path)
     assert "Note: the truncated field" in write_report(load_run(path)).read_text()
+    # and the tracker configuration carries it (short chains: the gate is overridden here)
+    from sceneprior.export import build_config, describe
+
+    doc = build_config(load_run(path), override_gate=True)
+    assert doc["provenance"]["model_notes"] == s["lgcp"]["notes"]
+    assert "note from the fit: the truncated field" in describe(doc, [tmp_path / "tracker.json"])

@@ -409,6 +409,8 @@ def build_config(run, quantile: float | None = None, override_gate: bool = False
             "export_versions": _versions(),
             "summary_written_utc": s.get("written_utc"),
             "exported_utc": datetime.now(timezone.utc).isoformat(timespec="seconds"),
+            # the fit's own warnings (e.g. a truncated LGCP field whose intervals may be too narrow)
+            "model_notes": list((s.get(s["model"]["kind"]) or {}).get("notes", [])),
         },
     }
     if doc["gate"]["overridden"]:
@@ -470,6 +472,7 @@ def describe(doc: dict, paths) -> str:
     g = doc["gate"]
     lines.append("  convergence gate: " + ("passed" if g["passed"] else
                  "FAILED, overridden (recorded in the file): " + "; ".join(g["failures"])))
+    lines += [f"  note from the fit: {n}" for n in doc["provenance"].get("model_notes", [])]
     lines.append(f"  caution: {doc['caution']}")
     return "\n".join(lines)
 
