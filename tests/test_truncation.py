@@ -465,3 +465,24 @@ def test_strong_data_truncated_fit_warns_that_the_intervals_are_too_narrow(tmp_p
     doc = build_config(load_run(path), override_gate=True)
     assert doc["provenance"]["model_notes"] == s["lgcp"]["notes"]
     assert "note from the fit: the truncated field" in describe(doc, [tmp_path / "tracker.json"])
+
+
+def test_composite_kinds_carry_the_base_kinds_notes(monkeypatch, request):
+    """A composite kind (here lgcp+overdispersion) nests the base kind's summary under its
+    name; its notes are lifted to the composite's own section, which `sceneprior fit`'s
+    lines, report.html and the export read."""
+    import dataclasses
+
+    from sceneprior.models import registry, scanterms
+    from sceneprior.models.variants import variant_kind
+
+    variant_kind.cache_clear()  # composite kinds are cached: build them from the patched base, and forget them after
+    request.addfinalizer(variant_kind.cache_clear)
+    base = dataclasses.replace(registry.MODELS["lgcp"], summary=lambda result: {"notes": ["dropped too much"]})
+    monkeypatch.setitem(registry.MODELS, "lgcp", base)
+    monkeypatch.setattr(scanterms, "summary", lambda result, tokens: {"base_rate": {}})
+    out = variant_kind("lgcp+overdispersion").summary(None)
+    assert out["notes"] == ["dropped too much"] and out["lgcp"]["notes"] == ["dropped too much"]
+    monkeypatch.setitem(registry.MODELS, "lgcp", dataclasses.replace(base, summary=lambda result: {"notes": []}))
+    variant_kind.cache_clear()
+    assert "notes" not in variant_kind("lgcp+overdispersion").summary(None)
