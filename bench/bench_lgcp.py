@@ -394,6 +394,7 @@ def dense_bound(args):
     warmup's iterations take no fewer (a divergent or early-stopped tree could), and it
     covers the two layouts timed, not groups of vectorised chains per process."""
     import jax
+    import jax.numpy as jnp
     from numpyro.infer.util import initialize_model
 
     from sceneprior.inference import configure_jax, usable_cores
@@ -405,8 +406,6 @@ def dense_bound(args):
     opts = dense_sampler_options(setup)
     info = initialize_model(jax.random.PRNGKey(0), fn, model_kwargs=inputs, init_strategy=opts["init_strategy"])
     z = info.param_info.z
-    import jax.numpy as jnp
-
     grad = _timed(jax.jit(jax.value_and_grad(info.potential_fn)), z, reps=3, batches=3)
     zs = jax.tree.map(lambda x: jnp.stack([x] * args.chains), z)
     grad_vec = _timed(jax.jit(jax.vmap(jax.value_and_grad(info.potential_fn))), zs, reps=3, batches=3)

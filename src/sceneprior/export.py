@@ -48,7 +48,7 @@ import numpy as np
 
 from . import __version__
 from .errors import InputError
-from .results import CAUTION, DETECTION_SCHEMA, SUMMARY_SCHEMA, load_run
+from .results import CAUTION, DETECTION_SCHEMA, SUMMARY_SCHEMA, load_run, model_notes
 
 TRACKER_SCHEMA = "sceneprior.tracker/1"
 SCHEMA_FILE = "tracker-1.schema.json"
@@ -410,7 +410,7 @@ def build_config(run, quantile: float | None = None, override_gate: bool = False
             "summary_written_utc": s.get("written_utc"),
             "exported_utc": datetime.now(timezone.utc).isoformat(timespec="seconds"),
             # the fit's own warnings (e.g. a truncated LGCP field whose intervals may be too narrow)
-            "model_notes": list((s.get(s["model"]["kind"]) or {}).get("notes", [])),
+            "model_notes": model_notes(s),
         },
     }
     if doc["gate"]["overridden"]:

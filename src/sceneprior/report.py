@@ -35,7 +35,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .results import CAUTION, load_run
+from .results import CAUTION, load_run, model_notes
 
 REPORT_FILE = "report.html"
 
@@ -626,7 +626,7 @@ def build_report(run) -> str:
         f"<tr><th>spec</th><td>{esc(str(d.get('spec')))} <code>{esc(str(d.get('spec_sha256')))}</code></td></tr>"
         "</table><h3>Priors</h3><table>" + prior_rows + "</table><h3>Inputs (SHA-256)</h3><table>"
         + inputs + "</table>"
-        + "".join(f'<p class="note">Note: {esc(n)}</p>' for n in s.get(s["model"]["kind"], {}).get("notes", []))
+        + "".join(f'<p class="note">Note: {esc(n)}</p>' for n in model_notes(s))
         + "</section>")
     parts.append(f'<section><h2>Caution</h2><div class="caution">{esc(s.get("caution", CAUTION))}</div></section>')
 

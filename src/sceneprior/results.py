@@ -416,6 +416,13 @@ def summary_dict(result) -> dict:
     return out
 
 
+def model_notes(s: dict) -> list[str]:
+    """The model kind's own warnings in a run's summary ``s`` (its section's ``notes``; a
+    composite kind lifts its base kind's there): what the printed lines, report.html and the
+    tracker export repeat."""
+    return list((s.get(s["model"]["kind"]) or {}).get("notes", []))
+
+
 def human_summary(s: dict, path: Path) -> str:
     """The lines ``sceneprior fit`` and the demo print for the run written to ``path``: data,
     window, rate, mean intensity, gates, diagnostics, the gate and the caution, from its
@@ -439,7 +446,7 @@ def human_summary(s: dict, path: Path) -> str:
     min_ess = min(v["ess_bulk"] for v in dg["variables"].values())
     lines.append(f"  diagnostics: max R-hat {worst_rhat:.4f}, min bulk ESS {min_ess:.0f}, "
                  f"divergences {dg['divergences']} ({dg['chains']} chains × {dg['draws']} draws)")
-    lines += [f"  note: {n}" for n in s.get(s["model"]["kind"], {}).get("notes", [])]  # the kind's own warnings
+    lines += [f"  note: {n}" for n in model_notes(s)]
     g = s["gate"]
     lines.append("  convergence gate: " + ("passed" if g["converged"] else
                  f"FAILED ({len(g['failures'])} check(s)); run marked unconverged"))

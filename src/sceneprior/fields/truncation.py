@@ -83,7 +83,7 @@ class ModeBasis:
     A: np.ndarray
     B: np.ndarray
     report: dict
-    keep: np.ndarray | None = None  # (m0, m1//2+1) bool: the kept modes of the half spectrum
+    keep: np.ndarray  # (m0, m1//2+1) bool: the kept modes of the half spectrum
 
     @property
     def n_latent(self) -> int:
