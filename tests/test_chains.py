@@ -53,6 +53,9 @@ def test_layouts_by_size_cores_and_devices(monkeypatch):
     # few latent values on a large grid (spectral truncation): the grid decides
     assert inference.chain_layout(big, 4, n_cells=inference.PARALLEL_BELOW) == "processes"
     assert inference.chain_layout(big, 4, n_cells=64 * 64) == "parallel"
+    # a latent site with a value per grid cell (the LGCP's per-cell term): never parallel
+    assert inference.chain_layout(big, 4, n_cells=64 * 64, grid_latent=True) == "processes"
+    assert inference.chains_at_once(big, 4, n_cells=64 * 64, grid_latent=True) == 2
     # chain processes: one chain per core holds state at a time, or all when the processes
     # vectorise their groups (the model says its chains are alike)
     assert inference.chains_at_once(big, 4, n_cells=inference.PARALLEL_BELOW) == 2
@@ -105,7 +108,7 @@ def test_chains_in_processes_equal_sequential(monkeypatch, vectorise):
     tree depth, mass-matrix blocks and the mass matrix warmup starts from) as numpyro's
     one-after-another chains, so the same draws; the excluded site is dropped and the
     sample statistics kept."""
-    monkeypatch.setattr(inference, "chain_layout", lambda n, c=1, n_cells=0: inference.PROCESSES)
+    monkeypatch.setattr(inference, "chain_layout", lambda n, c=1, n_cells=0, grid_latent=False: inference.PROCESSES)
     monkeypatch.setattr(inference, "chain_cores", lambda: [None, None])  # two processes, unpinned
     y = jnp.asarray(np.random.default_rng(5).normal(-0.5, 1.0, 30))
     smp = _Sampler()
@@ -168,7 +171,7 @@ def test_warmup_tree_depth_reaches_the_sampler(monkeypatch):
 
 
 def test_chain_process_failure_is_reported(monkeypatch):
-    monkeypatch.setattr(inference, "chain_layout", lambda n, c=1, n_cells=0: inference.PROCESSES)
+    monkeypatch.setattr(inference, "chain_layout", lambda n, c=1, n_cells=0, grid_latent=False: inference.PROCESSES)
     monkeypatch.setattr(inference, "chain_cores", lambda: [None, None])  # two processes, unpinned
     smp = _Sampler()
     smp.chains, smp.warmup, smp.draws = 3, 5, 5  # groups: chains 1–2, chain 3
@@ -194,7 +197,7 @@ def test_memory_check_counts_only_running_chains(monkeypatch):
     setup = SimpleNamespace(extra={"n_latent": n_latent})
     stats = SimpleNamespace(grid=SimpleNamespace(n_cells=1))
     smp = SimpleNamespace(chains=4, draws=10)
-    monkeypatch.setattr(inference, "chain_layout", lambda n, c=1, n_cells=0: "sequential")
+    monkeypatch.setattr(inference, "chain_layout", lambda n, c=1, n_cells=0, grid_latent=False: "sequential")
     fitting._check_memory(setup, stats, smp, "spec")
     for layout in ("parallel", "vectorized"):
         monkeypatch.setattr(inference, "chain_layout", lambda n, c=1, n_cells=0, layout=layout: layout)
@@ -207,9 +210,9 @@ def test_memory_check_counts_only_running_chains(monkeypatch):
     # 4 chains × 10 kept draws × 4 B: 480 B per cell held three times (0.8 of the allowance),
     # 800 B per cell in processes (4/3 of it, besides 2 GB for the two processes)
     cells = SimpleNamespace(grid=SimpleNamespace(n_cells=int(0.6 * total / 600)))
-    monkeypatch.setattr(inference, "chain_layout", lambda n, c=1, n_cells=0: "sequential")
+    monkeypatch.setattr(inference, "chain_layout", lambda n, c=1, n_cells=0, grid_latent=False: "sequential")
     fitting._check_memory(small, cells, smp, "spec")
-    monkeypatch.setattr(inference, "chain_layout", lambda n, c=1, n_cells=0: inference.PROCESSES)
+    monkeypatch.setattr(inference, "chain_layout", lambda n, c=1, n_cells=0, grid_latent=False: inference.PROCESSES)
     with pytest.raises(InputError, match="more than this machine can hold"):
         fitting._check_memory(small, cells, smp, "spec")
 

@@ -76,8 +76,9 @@ class FitResult:
 
 def nuts_options(setup, n_cells: int) -> dict:
     """The ``inference.run_nuts`` options a model's set-up chooses (mass matrix blocks and
-    their start, initial point, sites not kept, latent size, warmup depth, vectorised chain
-    groups, step-size jitter, extra U-turn checks, target acceptance) for a grid of
+    their start, initial point, sites not kept, latent size and whether a site is grid-sized,
+    warmup depth, vectorised chain groups, step-size jitter, extra U-turn checks, target
+    acceptance) for a grid of
     ``n_cells`` cells: the one place ``fit`` and bench/bench_lgcp.py read them from
     ``setup.extra``."""
     from .inference import TARGET_ACCEPT
@@ -89,7 +90,8 @@ def nuts_options(setup, n_cells: int) -> dict:
                 vectorize_groups=bool(ex.get("vectorize_chain_groups")),
                 step_size_jitter=float(ex.get("step_size_jitter") or 0.0),
                 extra_uturn_checks=bool(ex.get("extra_uturn_checks")),
-                target_accept=float(ex.get("target_accept", TARGET_ACCEPT)))
+                target_accept=float(ex.get("target_accept", TARGET_ACCEPT)),
+                grid_latent=bool(ex.get("grid_latent")))
 
 
 def _check_memory(setup, stats, smp, source: str, thinning: int = 1) -> None:
@@ -109,9 +111,9 @@ def _check_memory(setup, stats, smp, source: str, thinning: int = 1) -> None:
     if not n_latent:
         return
     kept = -(-smp.draws // thinning)
-    running = chains_at_once(n_latent, smp.chains, stats.grid.n_cells, opts["vectorize_groups"])
+    running = chains_at_once(n_latent, smp.chains, stats.grid.n_cells, opts["vectorize_groups"], opts["grid_latent"])
     need = smp.chains * 3 * kept * stats.grid.n_cells * 4.0 + running * 12 * n_latent * 8.0
-    if chain_layout(n_latent, smp.chains, stats.grid.n_cells) == PROCESSES:
+    if chain_layout(n_latent, smp.chains, stats.grid.n_cells, opts["grid_latent"]) == PROCESSES:
         # each chain process (one per usable core): its own jax and compiled sampler, and
         # its chains' kept draws twice more (numpyro stacks a group's chains; the pickle on
         # the way back). One 256² chain process alone peaked at 1.38 GB, set-up included,

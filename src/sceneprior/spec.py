@@ -43,6 +43,7 @@ _SCHEMA: dict[str, Any] = {
         "rasters": None,  # loglinear: [[model.rasters]] name, file
         "kernel": None,  # lgcp
         "variance_kept": None,  # lgcp: spectral truncation
+        "dropped_modes": None,  # lgcp: what a truncated field does with the dropped variance
         "components": None,  # mixture
         "diagonal": None,  # mixture
     },
@@ -61,7 +62,7 @@ _MASK_KEYS = {"name": None, "polygon": None, "range": None, "bearing": None}
 
 MODEL_KINDS = ("uniform", "loglinear", "lgcp", "mixture")
 # model-table keys each kind accepts besides kind and prior
-MODEL_OPTIONS = {"uniform": (), "loglinear": ("covariates", "rasters"), "lgcp": ("kernel", "variance_kept"),
+MODEL_OPTIONS = {"uniform": (), "loglinear": ("covariates", "rasters"), "lgcp": ("kernel", "variance_kept", "dropped_modes"),
                  "mixture": ("components", "diagonal")}
 #: default memory budget of the kept per-cell draws [MB] (output.draws_budget_mb)
 DRAWS_BUDGET_MB = 1024

@@ -51,10 +51,15 @@ import jax.numpy as jnp
 import numpy as np
 
 from sceneprior.fields.embedding import TorusGeometry, half_multiplicity
-from sceneprior.fields.kernels import unit_spectral_density
+from sceneprior.fields.kernels import anisotropic_kernel, unit_spectral_density
 from sceneprior.fields.spectral import N_ALIAS, aliased_eigenvalues
 
 __all__ = ["ModeBasis", "mode_basis"]
+
+#: wraps per axis in the periodised kernel's value at lag 0 (ModeBasis.point_variance): the
+#: torus is at least twice the largest length scale beyond the grid, so the next wraps, 3 torus
+#: sides away, are ≥ 6 length scales off (Matérn 1/2: e^{-6} of σ² each)
+WRAPS = 2
 
 
 @dataclass(frozen=True, eq=False)
@@ -120,6 +125,32 @@ class ModeBasis:
                                                         float(variance)), float), 0.0)
         mult = half_multiplicity(self.geom.torus_shape)
         return float(np.sum((mult * lam)[~self.keep]) / self.geom.n_torus)
+
+    def point_variance(self, variance, length_scales):
+        """The torus field's variance at a point: its covariance, the periodised kernel, at lag
+        0 — Σ_j k(j₀·m₀h₀, j₁·m₁h₁) over the wraps j ∈ {−WRAPS … WRAPS}² (the kernel at its own
+        lag 0 is σ² = ``variance``; Rasmussen & Williams 2006, eq. 4.14), ℓ per axis. jax or
+        numpy."""
+        (m0, m1), (h0, h1) = self.geom.torus_shape, self.geom.spacing
+        j = np.arange(-WRAPS, WRAPS + 1, dtype=float)
+        lags = (np.repeat(j, j.size) * m0 * h0, np.tile(j, j.size) * m1 * h1)
+        ls = length_scales if isinstance(length_scales, np.ndarray) else jnp.asarray(length_scales)
+        xp = np if isinstance(ls, np.ndarray) else jnp
+        return xp.sum(anisotropic_kernel(self.geom.kernel, lags, variance, ls))
+
+    def residual_variance(self, lam, variance, length_scales):
+        """The variance per cell that the kept modes miss: max(c₀ − (1/N) Σ_kept Λ_k, 0), c₀ the
+        field's variance at a point (:meth:`point_variance`) at σ² = ``variance`` and ℓ
+        (two values), Λ (n_rep,) the eigenvalues at the representatives at the same σ², ℓ
+        (:meth:`eigenvalues`). Each real coefficient counts its representative once, so a
+        conjugate pair (two coefficients) counts the mode and its mirror. The variance of the
+        ideal torus field, so it also restores what the eigenvalues' finite aliasing
+        (``spectral.N_ALIAS``) leaves out — a little more than :meth:`dropped_variance` for a
+        rough kernel. jax or numpy; the per-cell term's variance (``lgcp`` model option
+        dropped_modes)."""
+        xp = np if isinstance(lam, np.ndarray) else jnp
+        return xp.maximum(self.point_variance(variance, length_scales) - xp.sum(lam[self.coef_rep]) / self.geom.n_torus,
+                          0.0)
 
     def arrays(self) -> dict:
         """Device arrays for the field map (model inputs)."""
@@ -239,6 +270,38 @@ def mode_basis(geom: TorusGeometry, lo2, hi2, variance_kept: float) -> ModeBasis
                      np.asarray(im_w, float), A, B, report, keep)
 
 
+def predicted_coverage(v, s2) -> dict:
+    """Pooled coverage of central intervals at 50 % and 90 % when each cell's error has
+    variance s² + v but the interval is sized for s²: mean over cells of 2Φ(z_p/√(1 + v/s²))
+    − 1, z_p = Φ⁻¹((1 + p)/2) (scipy.stats.norm)."""
+    from scipy.stats import norm
+
+    ratio = float(v) / np.maximum(np.asarray(s2, float).reshape(-1), 1e-300)
+    return {f"{int(100 * p)}": float(np.mean(2.0 * norm.cdf(norm.ppf(0.5 + p / 2) / np.sqrt(1.0 + ratio)) - 1.0))
+            for p in (0.5, 0.9)}
+
+
+def cell_term_screen(basis: ModeBasis, sigma: float, length_scale, w_cell: float) -> dict:
+    """Before sampling: would the dropped modes narrow the intervals at pilot hyperparameters
+    σ, ℓ and ``w_cell`` detections per exposed cell? The kept field's posterior variance per
+    cell is approximated as if every cell carried w_cell detections, mode by mode
+    (s² = (1/N) Σ_kept Λ_k/(1 + w_cell Λ_k), the Poisson curvature w per cell; the zero mode
+    left out, its level being the baseline's), the dropped variance is
+    :meth:`ModeBasis.residual_variance`, and the coverage follows :func:`predicted_coverage`.
+    ``needed`` when the predicted 90 % coverage is below COVERAGE_WARNING. A rough rule for a
+    set-up choice: it sees neither the padding nor uneven exposure."""
+    ls2 = np.resize(np.asarray(length_scale, float), 2)
+    lam = np.maximum(np.asarray(basis.eigenvalues(ls2, float(sigma) ** 2), float), 0.0)
+    lam_c, nz = lam[basis.coef_rep], basis.nonzero[basis.coef_rep]
+    s2 = float(np.sum(nz * lam_c / (1.0 + w_cell * lam_c)) / basis.geom.n_torus)
+    v = float(basis.residual_variance(lam, float(sigma) ** 2, ls2))
+    cover = predicted_coverage(v, [s2])
+    return {"pilot_sigma": float(sigma), "pilot_length_scale": [float(x) for x in np.atleast_1d(length_scale)],
+            "detections_per_exposed_cell": float(w_cell), "dropped_variance_per_cell": v,
+            "approximate_posterior_variance_per_cell": s2, "predicted_coverage_without_term": cover,
+            "needed": bool(cover["90"] < COVERAGE_WARNING)}
+
+
 #: a truncated fit warns when the predicted coverage of its 90 % intervals for the true
 #: cell log intensity (``dropped_mode_check``) falls below this
 COVERAGE_WARNING = 0.85
@@ -267,16 +330,12 @@ def dropped_mode_check(basis: ModeBasis, sigma, length_scale, posterior_variance
     the cells that carry data. Returns the mean dropped variance, the cells' median posterior
     variance, their ratio, the predicted pooled coverage at 50 % and 90 % and ``warning``
     (predicted 90 % coverage below COVERAGE_WARNING)."""
-    from scipy.stats import norm
-
     sigma = np.asarray(sigma, float).reshape(-1)
     ls = np.asarray(length_scale, float).reshape(sigma.size, -1)
     pick = np.unique(np.linspace(0, sigma.size - 1, min(max_points, sigma.size)).round().astype(int))
     v = float(np.mean([basis.dropped_variance(ls[i], sigma[i] ** 2) for i in pick]))
     s2 = np.asarray(posterior_variance, float).reshape(-1)
-    ratio = v / np.maximum(s2, 1e-300)
-    cover = {f"{int(100 * p)}": float(np.mean(2.0 * norm.cdf(norm.ppf(0.5 + p / 2) / np.sqrt(1.0 + ratio)) - 1.0))
-             for p in (0.5, 0.9)}
+    cover = predicted_coverage(v, s2)
     return {"dropped_variance_per_cell": v, "median_posterior_variance": float(np.median(s2)),
             "ratio_median": float(v / max(np.median(s2), 1e-300)),
             "predicted_coverage_of_true_log_intensity": cover,
