@@ -58,7 +58,7 @@ import numpy as np
 REGIMES = {"weak": 0.3, "weak10": 3.0, "strong": 60.0}
 
 
-def _setup(n, kernel, per_cell, K, seed=0, variance_kept=1.0):
+def _setup(n, kernel, per_cell, K, seed=0, variance_kept=1.0, dropped_modes="auto"):
     import scipy.sparse as sp
 
     from sceneprior.binning import BinnedStats
@@ -84,7 +84,8 @@ def _setup(n, kernel, per_cell, K, seed=0, variance_kept=1.0):
     f = lgcp.simulate_field(spectrum, 150.0, 1.0, rng)
     counts = rng.poisson(np.exp(np.log(per_cell / (K * area[0])) + f) * K * area)
     t = time.perf_counter()
-    setup = kind.setup(stats_for(counts), prior, ModelSpec("lgcp", {}, {"kernel": kernel, "variance_kept": variance_kept}))
+    setup = kind.setup(stats_for(counts), prior, ModelSpec("lgcp", {}, {"kernel": kernel, "variance_kept": variance_kept,
+                                                                        "dropped_modes": dropped_modes}))
     setup.extra["bench_setup_s"] = time.perf_counter() - t  # plan, pilot, preconditioner
     return kind, setup, counts
 
@@ -346,7 +347,8 @@ def gradient_cost(args):
     configure_jax()
     size, kernel, regime = args.one
     per_cell = REGIMES[regime]
-    kind, setup, _ = _setup(int(size), kernel, per_cell, int(args.scans), variance_kept=args.variance_kept)
+    kind, setup, _ = _setup(int(size), kernel, per_cell, int(args.scans), variance_kept=args.variance_kept,
+                            dropped_modes=args.dropped_modes)
     info = initialize_model(jax.random.PRNGKey(0), kind.fn, model_kwargs=setup.inputs,
                             init_strategy=setup.extra["init_strategy"])
     pe, z = info.potential_fn, info.param_info.z
@@ -361,7 +363,7 @@ def gradient_cost(args):
     dim = int(sum(np.size(v) for v in jax.tree.leaves(z)))
     floor, book1, book_vec = nuts_floor(dim, args.chains)
     its = args.warmup + args.draws
-    layout = chain_layout(dim, args.chains, len(setup.inputs["window_area"]))
+    layout = chain_layout(dim, args.chains, len(setup.inputs["window_area"]), bool(setup.extra.get("grid_latent")))
     if layout == "vectorized" and args.chains > 1:
         per_step = vectorised + book_vec
     else:  # parallel: one chain per core at a time (one chain keeps about one core busy)
@@ -401,7 +403,8 @@ def dense_bound(args):
 
     configure_jax()
     size, kernel, regime = args.one
-    kind, setup, _ = _setup(int(size), kernel, REGIMES[regime], int(args.scans), variance_kept=args.variance_kept)
+    kind, setup, _ = _setup(int(size), kernel, REGIMES[regime], int(args.scans), variance_kept=args.variance_kept,
+                            dropped_modes=args.dropped_modes)
     fn, inputs = dense_model_inputs(setup)
     opts = dense_sampler_options(setup)
     info = initialize_model(jax.random.PRNGKey(0), fn, model_kwargs=inputs, init_strategy=opts["init_strategy"])
@@ -444,7 +447,8 @@ def warmup_steps(args):
 
     configure_jax()
     size, kernel, regime = args.one
-    kind, setup, _ = _setup(int(size), kernel, REGIMES[regime], int(args.scans), variance_kept=args.variance_kept)
+    kind, setup, _ = _setup(int(size), kernel, REGIMES[regime], int(args.scans), variance_kept=args.variance_kept,
+                            dropped_modes=args.dropped_modes)
     opts = nuts_options(setup, len(setup.inputs["window_area"]))
     bundle = nuts_kernel_options(**{k: opts[k] for k in inspect.signature(nuts_kernel_options).parameters})
     for seed in args.seeds:
@@ -475,7 +479,8 @@ def one(args):
     size = int(size)
     per_cell = REGIMES[regime]
     K = int(args.scans)
-    kind, setup, counts = _setup(size, kernel, per_cell, K, variance_kept=args.variance_kept)
+    kind, setup, counts = _setup(size, kernel, per_cell, K, variance_kept=args.variance_kept,
+                                 dropped_modes=args.dropped_modes)
     res = _run(kind, setup, args.chains, args.warmup, args.draws, dense_baseline=args.dense,
                setup_s=0.0 if args.dense else setup.extra["bench_setup_s"], progress=args.progress,
                matched=not args.dense_numpyro_defaults)
@@ -484,7 +489,9 @@ def one(args):
                 "torus": setup.extra["embedding"]["torus_shape"],
                 "formulation": "dense" if args.dense else "fourier", "latent": setup.extra["n_latent"],
                 "variance_kept": (setup.extra["modes"].report["variance_fraction_kept_at_shortest_length_scale"]
-                                  if setup.extra.get("modes") is not None else 1.0)})
+                                  if setup.extra.get("modes") is not None else 1.0),
+                "cell_term": (setup.extra["embedding"]["truncation"]["cell_term"]["on"]
+                              if setup.extra.get("modes") is not None else False)})
     print(json.dumps(res))
 
 
@@ -510,6 +517,9 @@ def main():
                     help="spectral truncation: fraction of the field's prior variance kept (1: every torus mode; "
                          "1 for every kernel here, whereas a spec without model.variance_kept gives the squared "
                          "exponential 0.999)")
+    ap.add_argument("--dropped-modes", default="auto", choices=("auto", "per_cell", "leave_out"),
+                    help="with --variance-kept below 1: model option dropped_modes (auto: the per-cell term where "
+                         "the set-up's screen says the dropped modes would narrow the intervals)")
     ap.add_argument("--gradient", action="store_true",
                     help="with --one: part (d) for that configuration; with --dense as well: the dense baseline's "
                          "gradient cost and the bounds on its wall time and ESS/s at this length (part (a))")
@@ -557,7 +567,8 @@ def main():
     else:
         sizes = args.sizes or [32, 64, 128, 256]
     base = [sys.executable, __file__, "--chains", str(args.chains), "--warmup", str(args.warmup),
-            "--draws", str(args.draws), "--variance-kept", str(args.variance_kept)]
+            "--draws", str(args.draws), "--variance-kept", str(args.variance_kept),
+            "--dropped-modes", args.dropped_modes]
     for flag, _, value in knobs:
         base += [flag, str(value)]
 
@@ -569,7 +580,7 @@ def main():
             return {"error": (out.stderr.strip().splitlines() or ["failed"])[-1]}
         return json.loads(line[-1])
 
-    cols = ("cells", "kernel", "regime", "formulation", "latent", "variance_kept", "chains", "warmup", "draws", "pad",
+    cols = ("cells", "kernel", "regime", "formulation", "latent", "variance_kept", "cell_term", "chains", "warmup", "draws", "pad",
             "wall_s", "steps_per_draw", "min_ess_bulk",
             "max_rhat", "divergences", "ess_per_s", "peak_rss_mb")
 
