@@ -265,8 +265,9 @@ def dense_sampler_options(setup):
     kern, pre = inp["kernels"], inp["precond"]
     u = (values["u_modes"] if "u_modes" in values
          else kern.rotate(jnp.asarray(values["u_soft"]), jnp.asarray(values["u_rest"]), pre["householder"]))
+    cells = (jnp.asarray(values["u_cells"]),) if "u_cells" in values else ()  # the per-cell term, if on
     f0 = kern.evaluate(jnp.asarray(u), jnp.asarray(values["sigma"]), jnp.asarray(ls), pre, jnp.asarray(inp["exposure"]),
-                       jnp.asarray(inp["obs"]), jnp.asarray(inp["window_area"]))[0]
+                       jnp.asarray(inp["obs"]), jnp.asarray(inp["window_area"]), *cells)[0]
     d0, d1 = _cell_distances(setup)
     C = anisotropic_kernel(setup.extra["geom"].geom.kernel, (jnp.asarray(d0), jnp.asarray(d1)),
                            values["sigma"] ** 2, jnp.resize(jnp.asarray(ls), 2))

@@ -200,7 +200,7 @@ def test_memory_check_counts_only_running_chains(monkeypatch):
     monkeypatch.setattr(inference, "chain_layout", lambda n, c=1, n_cells=0, grid_latent=False: "sequential")
     fitting._check_memory(setup, stats, smp, "spec")
     for layout in ("parallel", "vectorized"):
-        monkeypatch.setattr(inference, "chain_layout", lambda n, c=1, n_cells=0, layout=layout: layout)
+        monkeypatch.setattr(inference, "chain_layout", lambda n, c=1, n_cells=0, grid_latent=False, layout=layout: layout)
         with pytest.raises(InputError, match="more than this machine can hold"):
             fitting._check_memory(setup, stats, smp, "spec")
     # chain processes also hold their chains' kept draws twice more: draws that fit three

@@ -482,9 +482,11 @@ def test_setup_inputs_pickle_for_chain_processes(tmp_path):
     cases.append((kind, kind.setup(stats, prior, mspec)))
     single = get_model("lgcp")
     prior1 = resolve_prior(single, {"length_scale_min": 150.0, "length_scale_max": 300.0}, "test")
-    for kept in (1.0, 0.99):  # torus field and spectrally truncated field
-        cases.append((single, single.setup(stats, prior1, ModelSpec("lgcp", {}, {"kernel": "matern32",
-                                                                                "variance_kept": kept}))))
+    for kept, dropped in ((1.0, "auto"), (0.99, "leave_out"), (0.99, "per_cell")):  # torus field, truncated
+        # field, truncated field with the per-cell term
+        cases.append((single, single.setup(stats, prior1, ModelSpec("lgcp", {}, {
+            "kernel": "matern32", "variance_kept": kept, "dropped_modes": dropped}))))
+    assert cases[-1][1].inputs["kernels"].cell_term and not cases[-2][1].inputs["kernels"].cell_term
     for kind_, setup in cases:
         inputs = setup.inputs
         back = pickle.loads(pickle.dumps(inputs))

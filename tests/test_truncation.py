@@ -276,8 +276,10 @@ def test_per_cell_term_restores_the_kernels_variance_at_every_cell(kernel):
     of the kept eigenvalues) and on it the periodised kernel at lag 0 — σ² (Rasmussen &
     Williams 2006, eq. 4.14: k(0) = σ²) plus the kernel at the torus's wraps, kept + dropped
     variance — at hyperparameters away from the
-    pilot, with a normaliser that is right as σ, ℓ move. Fails if the term's variance, its
-    per-cell partial centring or its log-density terms are wrong."""
+    pilot, with a normaliser that is right as σ, ℓ move. Fails if the term's variance or its
+    log-density terms are wrong, or its per-cell centring is applied to the scale and the
+    density inconsistently (the reference for the diagonal re-computes the same wrapped
+    sum from the closed-form kernels, so it checks the plumbing, not that definition)."""
     kind = get_model("lgcp")
     n = 8
     prior = resolve_prior(kind, {"rate_median": 40.0 * n * n / 20, "length_scale_min": 150.0,
@@ -334,7 +336,7 @@ def test_variance_kept_outside_its_range_is_refused(tmp_path, capsys, bad):
     assert code == 2 and "variance_kept" in err[-1] and "[0.5, 1]" in err[-1]
 
 
-@pytest.mark.parametrize("bad", ["cells", 1, True])
+@pytest.mark.parametrize("bad", ["cells", 1, True, ["per_cell"]])
 def test_unknown_dropped_modes_is_refused(tmp_path, capsys, bad):
     from conftest import box_case
     from sceneprior.cli import main

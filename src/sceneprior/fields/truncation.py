@@ -57,8 +57,9 @@ from sceneprior.fields.spectral import N_ALIAS, aliased_eigenvalues
 __all__ = ["ModeBasis", "mode_basis"]
 
 #: wraps per axis in the periodised kernel's value at lag 0 (ModeBasis.point_variance): the
-#: torus is at least twice the largest length scale beyond the grid, so the next wraps, 3 torus
-#: sides away, are ≥ 6 length scales off (Matérn 1/2: e^{-6} of σ² each)
+#: truncated field's torus is at least twice the grid, so the next wraps, 3 torus sides away,
+#: are ≥ 6 grid extents off — ≥ 24 length scales at the default longest length scale (a
+#: quarter of the extent), ≥ 6 as long as a spec keeps ℓ_max within the grid's extent
 WRAPS = 2
 
 
@@ -129,8 +130,10 @@ class ModeBasis:
     def point_variance(self, variance, length_scales):
         """The torus field's variance at a point: its covariance, the periodised kernel, at lag
         0 — Σ_j k(j₀·m₀h₀, j₁·m₁h₁) over the wraps j ∈ {−WRAPS … WRAPS}² (the kernel at its own
-        lag 0 is σ² = ``variance``; Rasmussen & Williams 2006, eq. 4.14), ℓ per axis. jax or
-        numpy."""
+        lag 0 is σ² = ``variance``; Rasmussen & Williams 2006, eq. 4.9 and 4.14), ℓ per axis.
+        Summed from the kernel, not the model's aliased eigenvalues (``spectral.N_ALIAS``), so
+        for a rough kernel it is a little more than their mean (Matérn 1/2, 128², ℓ 50 m:
+        the eigenvalues give 0.985 σ²). jax or numpy."""
         (m0, m1), (h0, h1) = self.geom.torus_shape, self.geom.spacing
         j = np.arange(-WRAPS, WRAPS + 1, dtype=float)
         lags = (np.repeat(j, j.size) * m0 * h0, np.tile(j, j.size) * m1 * h1)

@@ -395,7 +395,7 @@ def dropped_modes_option(model_spec) -> tuple[str, str]:
     given = model_spec.options.get("dropped_modes")
     if given is None:
         return "auto", "default"
-    if given not in DROPPED_MODES:
+    if not isinstance(given, str) or given not in DROPPED_MODES:
         raise InputError(f"model.dropped_modes: one of {', '.join(repr(k) for k in DROPPED_MODES)} (what a "
                          f"truncated field, model.variance_kept < 1, does with the variance of the modes it "
                          f"drops), got {given!r}")
@@ -727,6 +727,9 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None, start_sea
                                             f"cover about {100 * cell_term['screen']['predicted_coverage_without_term']['90']:.0f} % "
                                             "of the true cells"))
     else:
+        if dropped_source == "model.dropped_modes" and dropped != "leave_out":
+            advice.append(f"model.dropped_modes = {dropped!r} has no effect here: every torus mode is kept "
+                          "(model.variance_kept = 1)")
         spectrum, report, lo, hi = plan(stats, kernel, prior)
         pre = build_preconditioner(spectrum, stats.grid.shape, counts_all, exposure_all,
                                    kernel, lo, hi, prior["sigma_scale"], use_pad=use_pad)
@@ -941,7 +944,7 @@ def dropped_modes(result, chunk: int = 4096) -> dict:
         v = [float(basis.residual_variance(np.maximum(np.asarray(basis.eigenvalues(np.resize(ls[i], 2),
                                                                                    sigma[i] ** 2), float), 0.0),
                                            sigma[i] ** 2, np.resize(ls[i], 2))) for i in pick]
-        return {"treatment": "per-cell term (model.dropped_modes)", "dropped_variance_per_cell": float(np.mean(v)),
+        return {"treatment": "per-cell term (model.dropped_modes)", "term_variance_per_cell": float(np.mean(v)),
                 "warning": False,
                 "rule": "the dropped modes' variance c₀ − (1/N) Σ_kept Λ_k at the posterior σ, ℓ (mean over draws; c₀ "
                         "the torus field's variance at a point), carried by an independent term per cell: each "
