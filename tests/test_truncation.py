@@ -561,6 +561,53 @@ def test_strong_data_truncated_fit_warns_that_the_intervals_are_too_narrow(tmp_p
     assert "note from the fit: the truncated field" in describe(doc, [tmp_path / "tracker.json"])
 
 
+def test_per_cell_term_through_the_pipeline(tmp_path):
+    """The per-cell term end to end on a small strong-data recording (8 × 8 cells, ≈ 200
+    detections per cell, q 0.9, short chains): `auto` switches it on, the fit writes its
+    run, summary.json says how the dropped variance is carried (no dropped-mode note), the
+    printed lines and report.html carry no such note, and the prior draws the `check`
+    command uses include the term. Plumbing only: calibration is the SBC's strong-data case."""
+    import json
+
+    from conftest import write_csv, write_spec
+    from sceneprior.fitting import fit
+    from sceneprior.report import write_report
+    from sceneprior.results import human_summary, load_run, write_run
+    from sceneprior.spec import load_spec
+
+    rng = np.random.default_rng(11)
+    n, side, K = 8, 800.0, 20
+    bounds = {"length_scale_min": 150.0, "length_scale_max": 400.0}
+    stats = _stats(n, side, np.zeros(n * n), K)
+    f = lgcp.simulate_field(lgcp.plan(stats, "matern32", resolve_prior(get_model("lgcp"), bounds, "test"))[0],
+                            200.0, 1.0, rng)
+    counts = rng.poisson(200.0 * np.exp(f - 0.5))
+    cell = np.repeat(np.arange(n * n), counts)
+    i, j = np.divmod(cell, n)
+    xs, ys = (i + rng.uniform(size=cell.size)) * side / n, (j + rng.uniform(size=cell.size)) * side / n
+    write_csv(tmp_path / "det.csv", ["scan", "x", "y"], zip(rng.integers(0, K, cell.size), xs, ys))
+    spec = {"name": "per-cell", "data": {"detections": "det.csv", "n_scans": K},
+            "space": {"frame": "cartesian", "x": [0.0, side], "y": [0.0, side], "cells": [n, n]},
+            "model": {"kind": "lgcp", "kernel": "matern32", "variance_kept": 0.9, "prior": bounds},
+            "sampler": {"chains": 2, "warmup": 60, "draws": 60, "seed": 1, "progress": False},
+            "output": {"dir": "runs"}}
+    lines = []
+    res = fit(load_spec(write_spec(tmp_path / "spec.toml", spec)), progress=False, log=lines.append)
+    assert res.setup.inputs["kernels"].cell_term
+    assert any("term per cell" in line for line in lines)
+    path = write_run(res, tmp_path / "runs")
+    s = json.loads((path / "summary.json").read_text())
+    term = s["lgcp"]["embedding"]["truncation"]["cell_term"]
+    assert term["on"] and term["option"] == "auto" and term["screen"]["needed"]
+    dm = s["lgcp"]["field_parameters"]["dropped_modes"]
+    assert dm["treatment"].startswith("per-cell term") and dm["term_variance_per_cell"] > 0 and not dm["warning"]
+    assert s["lgcp"]["notes"] == [] and "per cell, partially centred" in s["lgcp"]["parametrisation"]["description"]
+    assert "note: the truncated field" not in human_summary(s, path)
+    assert "Note: the truncated field" not in write_report(load_run(path)).read_text()
+    draws = lgcp.prior_draws(res.prior, res.stats, res.setup, np.random.default_rng(2), 50)
+    assert np.all(np.isfinite(draws["rate"])) and np.all(draws["rate"] > 0)
+
+
 def test_composite_kinds_carry_the_base_kinds_notes(monkeypatch, request):
     """A composite kind (here lgcp+overdispersion) nests the base kind's summary under its
     name; its notes are lifted to the composite's own section, which `sceneprior fit`'s
