@@ -324,28 +324,17 @@ def test_per_cell_term_restores_the_kernels_variance_at_every_cell(kernel):
     np.testing.assert_allclose(consts, consts[0], atol=1e-8 * abs(consts[0]) + 1e-8)
 
 
-@pytest.mark.parametrize("bad", [0.2, 1.5, True, "most"])
-def test_variance_kept_outside_its_range_is_refused(tmp_path, capsys, bad):
+@pytest.mark.parametrize("key,bad,says", [("variance_kept", v, "[0.5, 1]") for v in (0.2, 1.5, True, "most")]
+                         + [("dropped_modes", v, "'per_cell'") for v in ("cells", 1, True, ["per_cell"])])
+def test_bad_truncation_options_are_refused(tmp_path, capsys, key, bad, says):
+    """model.variance_kept outside [0.5, 1] and an unknown model.dropped_modes: one line, exit 2."""
     from conftest import box_case
     from sceneprior.cli import main
 
-    spec = box_case(tmp_path, [0, 1], [10.0, 20.0], [10.0, 20.0], n_scans_table=3,
-                    model={"kind": "lgcp", "variance_kept": bad})
+    spec = box_case(tmp_path, [0, 1], [10.0, 20.0], [10.0, 20.0], n_scans_table=3, model={"kind": "lgcp", key: bad})
     code = main(["fit", str(spec), "--out", str(tmp_path / "runs"), "--quiet"])
     err = capsys.readouterr().err.strip().splitlines()
-    assert code == 2 and "variance_kept" in err[-1] and "[0.5, 1]" in err[-1]
-
-
-@pytest.mark.parametrize("bad", ["cells", 1, True, ["per_cell"]])
-def test_unknown_dropped_modes_is_refused(tmp_path, capsys, bad):
-    from conftest import box_case
-    from sceneprior.cli import main
-
-    spec = box_case(tmp_path, [0, 1], [10.0, 20.0], [10.0, 20.0], n_scans_table=3,
-                    model={"kind": "lgcp", "dropped_modes": bad})
-    code = main(["fit", str(spec), "--out", str(tmp_path / "runs"), "--quiet"])
-    err = capsys.readouterr().err.strip().splitlines()
-    assert code == 2 and "model.dropped_modes" in err[-1] and "'per_cell'" in err[-1]
+    assert code == 2 and f"model.{key}" in err[-1] and says in err[-1]
 
 
 @pytest.mark.parametrize("kernel,given,expected,source", [

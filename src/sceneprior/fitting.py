@@ -78,9 +78,8 @@ def nuts_options(setup, n_cells: int) -> dict:
     """The ``inference.run_nuts`` options a model's set-up chooses (mass matrix blocks and
     their start, initial point, sites not kept, latent size and whether a site is grid-sized,
     warmup depth, vectorised chain groups, step-size jitter, extra U-turn checks, target
-    acceptance) for a grid of
-    ``n_cells`` cells: the one place ``fit`` and bench/bench_lgcp.py read them from
-    ``setup.extra``."""
+    acceptance) for a grid of ``n_cells`` cells: the one place ``fit`` and
+    bench/bench_lgcp.py read them from ``setup.extra``."""
     from .inference import TARGET_ACCEPT
 
     ex = setup.extra

@@ -62,8 +62,8 @@ _MASK_KEYS = {"name": None, "polygon": None, "range": None, "bearing": None}
 
 MODEL_KINDS = ("uniform", "loglinear", "lgcp", "mixture")
 # model-table keys each kind accepts besides kind and prior
-MODEL_OPTIONS = {"uniform": (), "loglinear": ("covariates", "rasters"), "lgcp": ("kernel", "variance_kept", "dropped_modes"),
-                 "mixture": ("components", "diagonal")}
+MODEL_OPTIONS = {"uniform": (), "loglinear": ("covariates", "rasters"),
+                 "lgcp": ("kernel", "variance_kept", "dropped_modes"), "mixture": ("components", "diagonal")}
 #: default memory budget of the kept per-cell draws [MB] (output.draws_budget_mb)
 DRAWS_BUDGET_MB = 1024
 FRAMES = ("cartesian", "polar")

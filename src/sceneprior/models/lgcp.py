@@ -715,17 +715,17 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None, start_sea
         report["truncation"]["cell_term"] = {**cell_term, "source": dropped_source}
         cell_term_on = bool(cell_term["on"])
         kernels = TruncatedFieldKernels(basis, cell_term_on)
-        n_latent = basis.n_latent + (stats.grid.n_cells if cell_term["on"] else 0)
-        dense_mass, exclude = [("sigma", "ls_unit")], ["u_modes"] + (["u_cells"] if cell_term["on"] else [])
+        n_latent = basis.n_latent + (stats.grid.n_cells if cell_term_on else 0)
+        dense_mass, exclude = [("sigma", "ls_unit")], ["u_modes"] + (["u_cells"] if cell_term_on else [])
         with_map = report["truncation"]["mode_preconditioner"]["form"] != "identity"
-        if cell_term["on"]:
+        if cell_term_on:
+            without = 100 * cell_term["screen"]["predicted_coverage_without_term"]["90"]
             advice.append(f"the truncated field carries its dropped modes' variance in a term per cell "
                           f"(model.dropped_modes = {dropped!r}; {stats.grid.n_cells} more sampled values, so each "
                           "leapfrog step costs more: at 128² cells about 11 min for 4 × (1000 + 1000) — README, "
                           "Performance)" + ("" if dropped != "auto" else
                                             f": without it the set-up's screen predicts that 90 % intervals would "
-                                            f"cover about {100 * cell_term['screen']['predicted_coverage_without_term']['90']:.0f} % "
-                                            "of the true cells"))
+                                            f"cover about {without:.0f} % of the true cells"))
     else:
         if dropped_source == "model.dropped_modes" and dropped != "leave_out":
             advice.append(f"model.dropped_modes = {dropped!r} has no effect here: every torus mode is kept "
