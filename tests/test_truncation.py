@@ -175,6 +175,17 @@ def _stats(n, side, counts, K):
                        np.zeros(K, np.int64), sp.csr_matrix((K, g.n_cells)))
 
 
+def _strong_8x8(seed):
+    """The strong-data covariance tests' set-up: the lgcp kind, n = 8 cells per side, a prior
+    for ≈ 40 detections per cell over 20 scans with ℓ in [150, 400] m, a generator and the
+    empty 800 m grid's stats."""
+    kind = get_model("lgcp")
+    n = 8
+    prior = resolve_prior(kind, {"rate_median": 40.0 * n * n / 20, "length_scale_min": 150.0,
+                                 "length_scale_max": 400.0}, "test")
+    return kind, n, prior, np.random.default_rng(seed), _stats(n, 800.0, np.zeros(n * n), 20)
+
+
 @pytest.mark.parametrize("band,row_share,entries,dense_all", [(1.5, 1.0, None, False), (4.0, 1.0, None, False),
                                                               (1.5, 0.9, None, False), (1.5, 0.9, 600, False),
                                                               (1.5, 0.9, 600, True)])
@@ -195,12 +206,7 @@ def test_model_prior_on_the_field_is_the_truncated_field(monkeypatch, band, row_
         monkeypatch.setattr(tr, "NEAR_ENTRIES", entries)
         # the cap leaves far directions out; the dense map on every row replaces it only when allowed
         monkeypatch.setattr(tr, "DENSE_MAP_ENTRIES", tr.MAP_MAX_COEFFICIENTS**2 if dense_all else entries)
-    kind = get_model("lgcp")
-    n = 8
-    prior = resolve_prior(kind, {"rate_median": 40.0 * n * n / 20, "length_scale_min": 150.0,
-                                 "length_scale_max": 400.0}, "test")
-    rng = np.random.default_rng(4)
-    stats0 = _stats(n, 800.0, np.zeros(n * n), 20)
+    kind, n, prior, rng, stats0 = _strong_8x8(4)
     spectrum = lgcp.truncated_plan(stats0, "matern52", prior, 0.99)[0]
     f = lgcp.simulate_field(spectrum, 250.0, 1.0, rng)
     counts = rng.poisson(40.0 * np.exp(f))  # strong data: the map L is far from the identity
@@ -280,12 +286,7 @@ def test_per_cell_term_restores_the_kernels_variance_at_every_cell(kernel):
     log-density terms are wrong, or its per-cell centring is applied to the scale and the
     density inconsistently (the reference for the diagonal re-computes the same wrapped
     sum from the closed-form kernels, so it checks the plumbing, not that definition)."""
-    kind = get_model("lgcp")
-    n = 8
-    prior = resolve_prior(kind, {"rate_median": 40.0 * n * n / 20, "length_scale_min": 150.0,
-                                 "length_scale_max": 400.0}, "test")
-    rng = np.random.default_rng(5)
-    stats0 = _stats(n, 800.0, np.zeros(n * n), 20)
+    kind, n, prior, rng, stats0 = _strong_8x8(5)
     spectrum = lgcp.truncated_plan(stats0, kernel, prior, 0.9)[0]
     counts = rng.poisson(40.0 * np.exp(lgcp.simulate_field(spectrum, 250.0, 1.0, rng)))
     setup = kind.setup(_stats(n, 800.0, counts, 20), prior, ModelSpec("lgcp", {}, {
