@@ -292,7 +292,11 @@ def test_per_cell_term_restores_the_kernels_variance_at_every_cell(kernel):
     setup = kind.setup(_stats(n, 800.0, counts, 20), prior, ModelSpec("lgcp", {}, {
         "kernel": kernel, "variance_kept": 0.9, "dropped_modes": "per_cell"}))
     kern, inp, basis = setup.inputs["kernels"], setup.inputs, setup.extra["modes"]
-    assert kern.cell_term and setup.extra["n_latent"] == basis.n_latent + n * n
+    # sampled: the level (the term integrated out); with per-scan terms the term's n² values
+    assert kern.cell_term and setup.extra["n_latent"] == basis.n_latent + 1
+    assert setup.extra["with_scan_terms"] == {"grid_latent": True, "vectorize_chain_groups": False,
+                                              "exclude_sites": ["u_modes", "u_cells"],
+                                              "n_latent": basis.n_latent + n * n}
     term = setup.extra["embedding"]["truncation"]["cell_term"]
     assert term["on"] and term["source"] == "model.dropped_modes" and term["variance_at_pilot"] > 0
     assert any("term per cell" in line and "per_cell" in line for line in setup.extra["advice"])  # printed
@@ -323,6 +327,66 @@ def test_per_cell_term_restores_the_kernels_variance_at_every_cell(kernel):
         assert s_**2 <= c0 < 1.2 * s_**2 and np.all(np.diag(kept) < 0.995 * c0)  # dropped, and now back
         consts.append(float(parts(x0)[1]) - 0.5 * np.linalg.slogdet(P)[1])
     np.testing.assert_allclose(consts, consts[0], atol=1e-8 * abs(consts[0]) + 1e-8)
+
+
+def test_integrated_per_cell_term_density_against_its_parts():
+    """The model's log density with the per-cell term integrated out (no per-scan terms; 8 × 8,
+    strong data, three cells without exposure) against its parts computed independently: σ ~
+    HalfNormal and the length scale's Beta(2, 2) by scipy.stats, ρ₀ = e^μ ~ Gamma(a, b) by
+    scipy.stats.gamma plus μ (the log Jacobian of ρ₀ → μ), each exposed cell's
+    Poisson–lognormal likelihood by scipy.integrate.quad_vec over scipy.stats.poisson and norm,
+    and the kept modes' prior density (the sampled form's, checked above) — as differences
+    between three parameter points, so that the constants cancel. Fails if the level's
+    Jacobian or the baseline's prior is wrong, or cells without exposure contribute."""
+    import scipy.integrate
+    import scipy.stats
+    from numpyro.infer.util import log_density
+
+    kind, n, prior, rng, stats0 = _strong_8x8(3)
+    spectrum = lgcp.truncated_plan(stats0, "matern32", prior, 0.9)[0]
+    counts = rng.poisson(40.0 * np.exp(lgcp.simulate_field(spectrum, 250.0, 1.0, rng)))
+    area = stats0.window_area
+    exposure = 20 * area
+    exposure[[0, 9, 63]] = 0.0
+    counts[[0, 9, 63]] = 0
+    stats = BinnedStats(stats0.region, stats0.grid, np.asarray(counts, np.int64), exposure, area, area, 20,
+                        np.arange(20), np.zeros(20, np.int64), sp.csr_matrix((20, n * n)))
+    setup = kind.setup(stats, prior, ModelSpec("lgcp", {}, {"kernel": "matern32", "variance_kept": 0.9,
+                                                            "dropped_modes": "per_cell"}))
+    inp, kern, basis = setup.inputs, setup.inputs["kernels"], setup.extra["modes"]
+    assert kern.cell_term and not any("u_cells" in k for k in setup.extra["init_strategy"].keywords["values"])
+    pre = inp["precond"]
+    a, b = inp["gamma_a"], inp["gamma_b"]
+    lo, hi = np.asarray(inp["ls_lo"]), np.asarray(inp["ls_hi"])
+    exposed = exposure > 0
+
+    def reference(sigma, u01, u, level):
+        ls = lo * (hi / lo) ** u01
+        f, log_prior_u = (np.asarray(x, float) for x in kern.evaluate(jnp.asarray(u), sigma, jnp.asarray(ls), pre,
+                                                                       inp["exposure"], inp["obs"],
+                                                                       inp["window_area"])[:2])
+        lam = np.maximum(np.asarray(basis.eigenvalues(np.resize(ls, 2), sigma**2), float), 0.0)
+        v = float(basis.residual_variance(lam, sigma**2, np.resize(ls, 2)))
+        mu = float(pre["level_centre"] + pre["level_scale"] * level - np.dot(np.asarray(pre["level_weights"]), f))
+        rate = exposure[exposed] * np.exp(mu + f[exposed])
+        per_cell = scipy.integrate.quad_vec(  # every exposed cell at once (the same ε range)
+            lambda e: np.exp(scipy.stats.poisson.logpmf(counts[exposed], rate * math.exp(e))
+                             + scipy.stats.norm.logpdf(e, 0.0, math.sqrt(v))),
+            -12 * math.sqrt(v), 12 * math.sqrt(v), epsabs=0.0, epsrel=1e-11, limit=400)[0]
+        cells = float(np.sum(np.log(per_cell)))
+        return (scipy.stats.halfnorm(scale=inp["sigma_scale"]).logpdf(sigma)
+                + np.sum(scipy.stats.beta(2.0, 2.0).logpdf(u01)) + log_prior_u
+                + scipy.stats.gamma(a, scale=1.0 / b).logpdf(math.exp(mu)) + mu + cells)
+
+    model = partial(lgcp.lgcp_model, **inp)
+    got, ref = [], []
+    for sigma, u01, scale, level in ((0.8, 0.4, 0.3, 0.2), (0.5, 0.7, 0.6, -1.5), (1.2, 0.2, 0.1, 0.9)):
+        u = scale * rng.standard_normal(kern.n_latent)
+        got.append(float(log_density(model, (), {}, {"sigma": sigma, "ls_unit": jnp.asarray([u01]),
+                                                       "u_modes": jnp.asarray(u), "level": level})[0]))
+        ref.append(reference(sigma, np.asarray([u01]), u, level))
+    np.testing.assert_allclose(np.diff(got), np.diff(ref), atol=1e-5)
+    assert np.ptp(got) > 1.0  # the points differ by more than the tolerance
 
 
 @pytest.mark.parametrize("key,bad,says", [("variance_kept", v, "[0.5, 1]") for v in (0.2, 1.5, True, "most")]
@@ -424,7 +488,8 @@ def _replicated_truncated_fits(kernel, kept, per_cell, dropped, reps, seed, n=N,
     inp = dict(setup.inputs)
     kernels = inp.pop("kernels")
     inp["precond"] = _as_dense(inp["precond"])
-    keep = ("sigma", "length_scale", "field", "log_z", "log_window_integral")
+    keep = ("sigma", "length_scale", "field") + (("mu", "term_variance") if kernels.cell_term  # integrated out
+                                                 else ("log_z", "log_window_integral"))
     run = batched_nuts(partial(lgcp.lgcp_model, kernels=kernels), inp, setup.extra["dense_mass"], keep, warmup, draws,
                        extra_uturn_checks=setup.extra["extra_uturn_checks"],
                        inverse_mass_matrix=setup.extra["initial_inverse_mass"],
@@ -551,12 +616,16 @@ def test_strong_data_truncated_fit_warns_that_the_intervals_are_too_narrow(tmp_p
     assert "note from the fit: the truncated field" in describe(doc, [tmp_path / "tracker.json"])
 
 
-def test_per_cell_term_through_the_pipeline(tmp_path):
+@pytest.mark.parametrize("overdispersion", [False, True])
+def test_per_cell_term_through_the_pipeline(tmp_path, overdispersion):
     """The per-cell term end to end on a small strong-data recording (8 × 8 cells, ≈ 200
     detections per cell, q 0.9, short chains): `auto` switches it on, the fit writes its
     run, summary.json says how the dropped variance is carried (no dropped-mode note), the
     printed lines and report.html carry no such note, and the prior draws the `check`
-    command uses include the term. Plumbing only: calibration is the SBC's strong-data case."""
+    command uses include the term. Without per-scan terms the term is integrated out (the
+    level sampled, no per-cell site) and drawn afterwards, the written field and the rate
+    agreeing; with over-dispersion it is sampled. Plumbing only: calibration is the SBC's
+    strong-data case (and the draws of ε: tests/test_cell_term.py)."""
     import json
 
     from conftest import write_csv, write_spec
@@ -578,7 +647,8 @@ def test_per_cell_term_through_the_pipeline(tmp_path):
     write_csv(tmp_path / "det.csv", ["scan", "x", "y"], zip(rng.integers(0, K, cell.size), xs, ys))
     spec = {"name": "per-cell", "data": {"detections": "det.csv", "n_scans": K},
             "space": {"frame": "cartesian", "x": [0.0, side], "y": [0.0, side], "cells": [n, n]},
-            "model": {"kind": "lgcp", "kernel": "matern32", "variance_kept": 0.9, "prior": bounds},
+            "model": {"kind": "lgcp", "kernel": "matern32", "variance_kept": 0.9, "prior": bounds}
+            | ({"overdispersion": True} if overdispersion else {}),
             "sampler": {"chains": 2, "warmup": 60, "draws": 60, "seed": 1, "progress": False},
             "output": {"dir": "runs"}}
     lines = []
@@ -591,7 +661,24 @@ def test_per_cell_term_through_the_pipeline(tmp_path):
     assert term["on"] and term["option"] == "auto" and term["screen"]["needed"]
     dm = s["lgcp"]["field_parameters"]["dropped_modes"]
     assert dm["treatment"].startswith("per-cell term") and dm["term_variance_per_cell"] > 0 and not dm["warning"]
-    assert s["lgcp"]["notes"] == [] and "per cell, partially centred" in s["lgcp"]["parametrisation"]["description"]
+    described = s["lgcp"]["parametrisation"]["description"]
+    assert s["lgcp"]["notes"] == [] and ("per cell, partially centred" if overdispersion
+                                         else "integrated out cell by cell") in described
+    post = res.idata.posterior
+    assert res.setup.extra["grid_latent"]  # chain processes either way
+    if overdispersion:
+        assert "term_variance" not in post and dm["form"].startswith("sampled")
+    else:  # the written field is the kept field plus exact draws of ε: μ + f + ε, with the rate from it
+        assert "level" in post and "u_cells" not in post and dm["form"].startswith("integrated out")
+        assert dm["term_variance_max"] <= dm["nodes_trusted_up_to_variance"]
+        assert post["field"].attrs["includes_cell_term"]
+        before = np.asarray(post["field"]).copy()
+        lgcp.complete_posterior(res.idata, res.stats, res.setup, 3)  # a second call adds nothing
+        np.testing.assert_array_equal(np.asarray(res.idata.posterior["field"]), before)
+        rate = np.exp(np.asarray(post["mu"]) + np.asarray(post["log_window_integral"]))
+        np.testing.assert_allclose(np.asarray(post["rate"]), rate, rtol=1e-10)
+        lam = np.exp(np.asarray(post["field"], float) + np.asarray(post["mu"])[..., None])
+        np.testing.assert_allclose(np.asarray(post["rate"]), np.sum(lam * res.stats.window_area, axis=-1), rtol=1e-5)
     assert "note: the truncated field" not in human_summary(s, path)
     assert "Note: the truncated field" not in write_report(load_run(path)).read_text()
     draws = lgcp.prior_draws(res.prior, res.stats, res.setup, np.random.default_rng(2), 50)

@@ -119,10 +119,13 @@ def chain_layout(n_latent: int, chains: int = 1, n_cells: int = 0, grid_latent: 
     capped at depth 5 (bench ``--warmup-depth 5``), took 179.2 s in parallel and 190.8 s in
     two processes of two vectorised chains (forced; each process starts jax and compiles).
     One core, or one chain: one after another. ``grid_latent``: a sampled site holds one value
-    per grid cell (the LGCP's per-cell term, ``models.lgcp`` option dropped_modes) — never
-    parallel, whatever its size: 128² Matérn 3/2 strong, q 0.9, 1 397 + 16 384 latent values
-    (below PARALLEL_BELOW), grew by about 25 MB/s in parallel (1.98 GB after 1 min of
-    sampling, 5.73 GB after 5; measured, RSS of a scratch coverage run driving ``run_nuts``).
+    per grid cell, or the gradient does per-cell work beyond the field's (the LGCP's per-cell
+    term, ``models.lgcp`` option dropped_modes, sampled or integrated out) — never parallel,
+    whatever its size: 128² Matérn 3/2 strong, q 0.9, 1 397 + 16 384 latent values (below
+    PARALLEL_BELOW), grew by about 25 MB/s in parallel (1.98 GB after 1 min of sampling, 5.73
+    GB after 5; measured, RSS of a scratch coverage run driving ``run_nuts``); q 0.95 with the
+    term integrated out (2 434 latent values) by about 4.6 MB/s (1.70 GB after 30 s, 4.49 GB at
+    the end, 586 s; ``bench/bench_lgcp.py --one 128 matern32 strong --variance-kept 0.95``).
 
     Vectorised chains (one jax.vmap over chains) turn NUTS's tree-building branches into
     selects over every chain's whole state, so the sampler's bookkeeping per leapfrog step

@@ -22,6 +22,8 @@ likelihood given f, so ρ₀ is integrated out in the sampler —
 Z = Σ_c E_c e^{f_c}, S = Σ_c N_c (the Gamma–Poisson mixture, Gelman et al., BDA3 §2.6) —
 and drawn exactly afterwards, ρ₀ | f ~ Gamma(a + S, b + Z), per draw. The field's level
 and μ trade off along a ridge the data cannot resolve; integrating ρ₀ out removes it.
+(Exception: a truncated field with the per-cell term integrated out, ``TruncatedFieldKernels``,
+samples μ through the field's data-weighted level, which removes the same ridge.)
 
 Sampler coordinates: white noise u on the torus mapped to f by the data-informed, exact
 linear reparametrisation of ``sceneprior.fields.preconditioning`` (per-mode partial
@@ -56,6 +58,7 @@ from ..fields.embedding import TorusGeometry, plan_torus, torus_shape_for
 from ..fields.kernels import KERNEL_NAMES
 from ..fields.spectral import Spectrum, periodised_report
 from ..fields.preconditioning import build_preconditioner, field_and_prior, safe_sqrt
+from .cell_term import GH_NODES, marginal_loglik, nodes_for, variance_limit
 from ..fields.truncation import (MAP_MAX_COEFFICIENTS, ModeBasis, dense_preconditioner, dropped_mode_check,
                                  field_from_coefficients, mode_basis)
 
@@ -93,19 +96,38 @@ def lgcp_model(counts, exposure, window_area, obs, gamma_a, gamma_b, sigma_scale
     ``scan_terms``: per-scan terms (``models.scanterms``: over-dispersion, scan covariates,
     time bins) or None.
     Truncated field (:class:`TruncatedFieldKernels`): white coordinates ``u_modes`` of the
-    kept modes, and with the per-cell term ``u_cells`` (one per grid cell).
+    kept modes; with the per-cell term and no per-scan terms the term is integrated out and
+    ``level`` (the field's data-weighted level, μ's coordinate) is sampled, with deterministic
+    sites ``mu`` and ``term_variance`` and ``field`` the kept field (``complete_posterior``
+    adds the term's exact draws, the window integral and the rate); with per-scan terms the
+    term is sampled as ``u_cells`` (one per grid cell).
     Full torus: white coordinates ``u_soft`` (along the soft direction g) and ``u_rest``, rotated onto
     the torus by the Householder reflection that maps the first axis to g (orthogonal, unit
     Jacobian), so that u_soft can share a dense mass-matrix block with σ and ℓ.
     Without per-scan terms ρ₀ is integrated out (module docstring) and drawn afterwards
-    (:func:`complete_posterior`); with them the per-scan likelihood is not conjugate in ρ₀,
-    which is then sampled (site ``rho0``).
+    (:func:`complete_posterior`) — except with the integrated per-cell term (above); with
+    them the per-scan likelihood is not conjugate in ρ₀, which is then sampled (site ``rho0``).
     Deterministic sites: ``field`` (n_cells,) float32 f_c = log λ_c − μ; ``log_z`` =
-    log Σ_c E_c e^{f_c}; ``log_window_integral`` = log Σ_c |c ∩ W| e^{f_c}.
+    log Σ_c E_c e^{f_c}; ``log_window_integral`` = log Σ_c |c ∩ W| e^{f_c} (the integrated
+    per-cell term records ``field``, ``mu`` and ``term_variance`` instead).
     """
     sigma = numpyro.sample("sigma", dist.HalfNormal(sigma_scale))
     u01 = numpyro.sample("ls_unit", dist.Beta(2.0, 2.0).expand([ls_lo.shape[0]]).to_event(1))
     ls = numpyro.deterministic("length_scale", ls_lo * (ls_hi / ls_lo) ** u01)
+    if isinstance(kernels, TruncatedFieldKernels) and kernels.cell_term and scan_terms is None:
+        # the per-cell term integrated out cell by cell; μ sampled through the field's level
+        u_modes = numpyro.sample("u_modes", dist.Normal(0.0, 1.0).expand([kernels.n_latent]).to_event(1))
+        level = numpyro.sample("level", dist.Normal(0.0, 1.0))
+        f, log_prior_u, mu, v, loglik = kernels.evaluate_marginal(u_modes, level, sigma, ls, precond)
+        numpyro.factor("field_prior", log_prior_u + 0.5 * jnp.sum(u_modes * u_modes))
+        # ρ₀ = e^μ ~ Gamma(a, b): log density of μ, a μ − b e^μ (+ const); μ = m̂ + τ·level − w̃ᵀf
+        # has unit Jacobian in (u, level) up to the constant τ, so level's N(0, 1) is replaced
+        numpyro.factor("baseline_prior", gamma_a * mu - gamma_b * jnp.exp(mu) + 0.5 * level**2)
+        numpyro.factor("loglik", loglik)
+        numpyro.deterministic("field", f.astype(jnp.float32))  # the kept field; ε added by complete_posterior
+        numpyro.deterministic("mu", mu)
+        numpyro.deterministic("term_variance", v)
+        return
     if isinstance(kernels, TruncatedFieldKernels):
         u_modes = numpyro.sample("u_modes", dist.Normal(0.0, 1.0).expand([kernels.n_latent]).to_event(1))
         u_cells = (numpyro.sample("u_cells", dist.Normal(0.0, 1.0).expand([window_area.shape[0]]).to_event(1))
@@ -233,26 +255,36 @@ class TruncatedFieldKernels:
     Gelfand 2009), where a low-rank field's lost variance is restored by an independent
     term of its own variance at each location. What it does not restore is the dropped
     part's correlation between neighbouring cells (short-ranged: the dropped modes are the
-    fine scales). Coordinates: ε_c = √(v/e_c) y_c with y_c ~ N(0, e_c), e_c = 1 + w_c v (w_c the
-    cell's detections, ``pre["cell_weights"]``): the same partial centring per cell."""
+    fine scales). Two forms of the same model. Without per-scan terms the term is integrated
+    out cell by cell (``evaluate_marginal``; ``models.cell_term``: adaptive Gauss–Hermite
+    quadrature of the Poisson–lognormal marginal), which needs the baseline μ sampled — as
+    μ = m̂ + τ·level − Σ_c w̃_c f_c (w̃ the data weights of the pilot map, normalised; m̂ and τ
+    the data's weighted mean log intensity and its scale at set-up), so that the sampled
+    ``level`` is the field's data-weighted level, nearly free of the field's shape — and the
+    draws of ε are made afterwards, exactly (``complete_posterior``). With per-scan terms the
+    likelihood is no product over cells, and the term is sampled (``evaluate`` with
+    ``u_cells``): ε_c = √(v/e_c) y_c with y_c ~ N(0, e_c), e_c = 1 + w_c v (w_c the cell's
+    detections, ``pre["cell_weights"]``): the same partial centring per cell."""
 
     basis: ModeBasis
     cell_term: bool = False
+    nodes: int = GH_NODES  # Gauss–Hermite nodes of the integrated term (cell_term.nodes_for)
 
     @property
     def n_latent(self):
         return self.basis.n_latent
 
     def __reduce__(self):  # pickled without the jitted closure, rebuilt on loading
-        return (type(self), (self.basis, self.cell_term))
+        return (type(self), (self.basis, self.cell_term, self.nodes))
 
     def __post_init__(self):
         basis = self.basis
         zero = jnp.asarray(basis.nonzero)
         box, grid = basis.box_shape, basis.geom.grid_shape
-        cell_term = self.cell_term
+        nodes = self.nodes
 
-        def evaluate(u, sigma, ls, pre, exposure, obs, window_area, u_cells=None):
+        def kept(u, sigma, ls, pre):
+            """(Λ, the kept field on the grid, the log prior density of u)."""
             lam = jnp.maximum(basis.eigenvalues(jnp.broadcast_to(ls, (2,)), sigma**2), 0.0)
             d = 1.0 + zero * pre["w_scale"] * lam
             amp = safe_sqrt(lam / d)
@@ -268,15 +300,34 @@ class TruncatedFieldKernels:
                 y = yz if rows is None else u.at[rows].set(yz)
             f = field_from_coefficients(y, amp, pre["modes"], box, grid)
             dj = d[pre["modes"]["coef_rep"]]
-            logp = -0.5 * jnp.sum(y * y / dj) - 0.5 * jnp.sum(jnp.log(dj))
-            if cell_term:  # the dropped modes' variance, back as an independent term per cell
+            return lam, f, -0.5 * jnp.sum(y * y / dj) - 0.5 * jnp.sum(jnp.log(dj))
+
+        def evaluate(u, sigma, ls, pre, exposure, obs, window_area, u_cells=None):
+            lam, f, logp = kept(u, sigma, ls, pre)
+            if u_cells is not None:  # the dropped modes' variance, back as a sampled term per cell
                 v = basis.residual_variance(lam, sigma**2, jnp.broadcast_to(ls, (2,)))
                 e = 1.0 + pre["cell_weights"] * v
                 f = f + safe_sqrt(v / e) * u_cells
                 logp = logp - 0.5 * jnp.sum(u_cells * u_cells / e) - 0.5 * jnp.sum(jnp.log(e))
             return (f, logp) + _integrals(f, pre, obs, exposure, window_area)
 
+        def evaluate_marginal(u, level, sigma, ls, pre):
+            lam, f, logp = kept(u, sigma, ls, pre)
+            v = jnp.maximum(basis.residual_variance(lam, sigma**2, jnp.broadcast_to(ls, (2,))), TERM_VARIANCE_FLOOR)
+            mu = pre["level_centre"] + pre["level_scale"] * level - jnp.dot(pre["level_weights"], f)
+            le = pre["log_exposure_grid"]
+            exposed = jnp.isfinite(le)
+            eta = jnp.where(exposed, le + mu + f, 0.0)
+            ll = jnp.sum(jnp.where(exposed, marginal_loglik(pre["counts_grid"], eta, v, nodes), 0.0))
+            return f, logp, mu, v, ll
+
         object.__setattr__(self, "evaluate", jax.jit(evaluate))
+        object.__setattr__(self, "evaluate_marginal", jax.jit(evaluate_marginal))
+
+
+#: the per-cell term's variance is floored here inside the integrated form (v → 0 would divide
+#: by zero in the integrand; at 1e-12 the term is nothing on the log scale)
+TERM_VARIANCE_FLOOR = 1e-12
 
 
 def _bounds(stats, prior: dict, source="model.prior"):
@@ -456,6 +507,7 @@ def truncated_preconditioner(basis, counts, exposure, lo, hi, sigma_scale, cell_
     arrays = {"w_scale": jnp.asarray(w_bar), "modes": basis.arrays()}
     if on:
         arrays["cell_weights"] = jnp.asarray(np.where(exposure > 0, counts, 0.0))
+        arrays.update({k: jnp.asarray(x) for k, x in level_coordinate(counts, exposure, weights).items()})
     rep = {"form": "identity", "reason": f"more than {MAP_MAX_COEFFICIENTS} coefficients"}
     if basis.n_latent <= MAP_MAX_COEFFICIENTS:
         lam = np.maximum(np.asarray(basis.eigenvalues(ls_pilot, pilot["sigma"] ** 2)), 0.0)
@@ -465,6 +517,21 @@ def truncated_preconditioner(basis, counts, exposure, lo, hi, sigma_scale, cell_
     rep = {**rep, "cell_term": {"on": bool(on), "option": cell_term, "rule": DROPPED_MODES[cell_term],
                                 "variance_at_pilot": v_hat, "screen": screen}}
     return pre, arrays, rep
+
+
+def level_coordinate(counts, exposure, weights) -> dict:
+    """The integrated per-cell term's baseline coordinate (:class:`TruncatedFieldKernels`):
+    μ = level_centre + level_scale · level − level_weightsᵀ f, with level_weights w̃/Σw̃ (the
+    pilot map's cell weights w̃ = w/(1 + w v̂), w = N_c + ½ on exposed cells), level_centre
+    their weighted mean of log((N_c + ½)/E_c) — the data's level, so the level's posterior sits
+    near 0 — and level_scale (Σ w̃)^{−1/2}, about its posterior sd. counts, exposure, weights
+    (n_cells,), 0 where a cell has no exposure."""
+    exposed = exposure > 0
+    w = np.where(exposed, weights, 0.0)
+    total = max(float(np.sum(w)), 1e-300)
+    log_rate = np.where(exposed, np.log((counts + 0.5) / np.where(exposed, exposure, 1.0)), 0.0)
+    return {"level_weights": w / total, "level_centre": float(np.sum(w * log_rate) / total),
+            "level_scale": 1.0 / math.sqrt(total)}
 
 
 def scipy_fast(n: int) -> int:
@@ -664,24 +731,28 @@ def mode_search(negative, n: int, held: str) -> tuple[np.ndarray, dict]:
 def conditional_mode(inputs: dict, sigma: float, ls) -> tuple[dict, dict]:
     """The field's white coordinates at the mode of their conditional posterior given σ and
     ℓ (the model's density with ρ₀ integrated out; per-scan terms left out), by
-    :func:`mode_search`. Returns ({site: value} for ``lgcp_model``'s white sites, report)."""
+    :func:`mode_search`; with the integrated per-cell term, the kept modes and the level
+    (μ sampled, the term integrated out). Returns ({site: value} for ``lgcp_model``'s white
+    sites, report)."""
     kernels, pre = inputs["kernels"], inputs["precond"]
     counts, exposure, obs, area = (jnp.asarray(inputs[k]) for k in ("counts", "exposure", "obs", "window_area"))
     a, b = inputs["gamma_a"], inputs["gamma_b"]
     sig, lsj = jnp.asarray(sigma, float), jnp.asarray(ls, float)
     truncated = isinstance(kernels, TruncatedFieldKernels)
 
-    cells = truncated and kernels.cell_term
+    cells = truncated and kernels.cell_term  # the per-cell term, integrated out (no per-scan terms here)
     K = kernels.n_latent if truncated else kernels.n_torus
 
     def negative(x):
+        if cells:  # the model's density with the term integrated out, μ through the level (lgcp_model)
+            f, log_prior_u, mu, _, loglik = kernels.evaluate_marginal(x[:K], x[K], sig, lsj, pre)
+            return -(log_prior_u + a * mu - b * jnp.exp(mu) + loglik)
         u = x[:K] if truncated else kernels.rotate(x[0], x[1:], pre["householder"])
-        more = (x[K:],) if cells else ()
-        f, log_prior_u, log_z, _ = kernels.evaluate(u, sig, lsj, pre, exposure, obs, area, *more)
+        f, log_prior_u, log_z, _ = kernels.evaluate(u, sig, lsj, pre, exposure, obs, area)
         return -(log_prior_u + integrated_loglik(f, log_z, pre, obs, counts, a, b))
 
-    x, report = mode_search(negative, K + (area.shape[0] if cells else 0), "σ, ℓ at the pilot")
-    sites = ({"u_modes": x[:K]} | ({"u_cells": x[K:]} if cells else {}) if truncated
+    x, report = mode_search(negative, K + (1 if cells else 0), "σ, ℓ at the pilot")
+    sites = ({"u_modes": x[:K]} | ({"level": np.asarray(x[K])} if cells else {}) if truncated
              else {"u_soft": np.asarray(x[0]), "u_rest": x[1:]})
     return sites, report
 
@@ -714,18 +785,19 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None, start_sea
         report["truncation"]["mode_preconditioner"] = mode_map
         report["truncation"]["cell_term"] = {**cell_term, "source": dropped_source}
         cell_term_on = bool(cell_term["on"])
-        kernels = TruncatedFieldKernels(basis, cell_term_on)
-        n_latent = basis.n_latent + (stats.grid.n_cells if cell_term_on else 0)
-        dense_mass, exclude = [("sigma", "ls_unit")], ["u_modes"] + (["u_cells"] if cell_term_on else [])
+        # the quadrature sized for 4× the term's variance at the pilot (σ, ℓ move in the posterior)
+        kernels = TruncatedFieldKernels(basis, cell_term_on, nodes_for(4.0 * cell_term["variance_at_pilot"]))
+        n_latent = basis.n_latent + (1 if cell_term_on else 0)  # the term integrated out; the level sampled
+        dense_mass, exclude = [("sigma", "ls_unit")], ["u_modes"]
         with_map = report["truncation"]["mode_preconditioner"]["form"] != "identity"
         if cell_term_on:
             without = 100 * cell_term["screen"]["predicted_coverage_without_term"]["90"]
             advice.append(f"the truncated field carries its dropped modes' variance in a term per cell "
-                          f"(model.dropped_modes = {dropped!r}; {stats.grid.n_cells} more sampled values, so each "
-                          "leapfrog step costs more: at 128² cells about 11 min for 4 × (1000 + 1000) — README, "
-                          "Performance)" + ("" if dropped != "auto" else
-                                            f": without it the set-up's screen predicts that 90 % intervals would "
-                                            f"cover about {without:.0f} % of the true cells"))
+                          f"(model.dropped_modes = {dropped!r}), integrated out cell by cell and drawn afterwards "
+                          f"(with per-scan terms: {stats.grid.n_cells} more sampled values)" + (
+                              "" if dropped != "auto" else
+                              f"; without it the set-up's screen predicts that 90 % intervals would cover about "
+                              f"{without:.0f} % of the true cells"))
     else:
         if dropped_source == "model.dropped_modes" and dropped != "leave_out":
             advice.append(f"model.dropped_modes = {dropped!r} has no effect here: every torus mode is kept "
@@ -774,12 +846,22 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None, start_sea
                                                         + [1.0] * ("u_soft" in dense_mass[0]))},
         # with the map every chain takes the same trees (31 steps per draw in the weak-data
         # bench cases), so chain processes may run theirs vectorised (see the comment after
-        # WARMUP_TREE_DEPTH) — except with the per-cell term, whose 16 384 extra values at 128²
-        # make vectorised NUTS bookkeeping dear: 767.7 s vectorised against 651.6 s one chain
-        # after another (``--one 128 matern32 strong --variance-kept 0.95``, one run each)
+        # WARMUP_TREE_DEPTH) — but not with the integrated per-cell term, whose per-cell work
+        # does not gain from it: 128² Matérn 3/2 strong, q 0.95 (``--one 128 matern32 strong
+        # --variance-kept 0.95``, one run each), two processes of two vectorised chains had not
+        # finished after 11 min (killed); each running its two chains one after another (the
+        # layout used) 638.5 s; the four chains at once (the parallel layout, which grid_latent
+        # below rules out for its memory growth) 586.3 s
         "vectorize_chain_groups": with_map and not cell_term_on,
-        # the per-cell term is a grid-sized latent site: chain processes, not the parallel layout
-        # (inference.chain_layout)
+        # with per-scan terms (``models.variants``) the per-cell term is sampled: a grid-sized
+        # latent site, so chain processes, not the parallel layout (inference.chain_layout), each
+        # running its chains one after another — its 16 384 values at 128² make vectorised NUTS
+        # bookkeeping dear: 767.7 s vectorised against 651.6 s (``--one 128 matern32 strong
+        # --variance-kept 0.95`` before the term was integrated out, one run each)
+        "with_scan_terms": ({"grid_latent": True, "vectorize_chain_groups": False, "exclude_sites": exclude + ["u_cells"],
+                             "n_latent": n_latent - 1 + stats.grid.n_cells} if cell_term_on else {}),
+        # the integrated per-cell term: per-cell work in every gradient, so chain processes too
+        # (measured in parallel at 128²: memory grew by about 4.6 MB/s)
         "grid_latent": cell_term_on,
         **sampler_constants(),
         # σ, ℓ at the pilot; the field's white coordinates around their conditional mode there
@@ -800,8 +882,14 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None, start_sea
 def complete_posterior(idata, stats, setup, seed: int):
     """Add the exactly drawn baseline to the posterior: ρ₀ | f ~ Gamma(a + S, b + Z(f)) per
     draw, μ = log ρ₀, and the rate Σ_c λ_c |c ∩ W| = ρ₀ · exp(log_window_integral).
-    Runs with per-scan terms sampled ρ₀ (and the rate) already: nothing to add."""
+    Runs with per-scan terms sampled ρ₀ (and the rate) already: nothing to add. A truncated
+    field with the per-cell term integrated out (site ``term_variance``) sampled μ; its term
+    is drawn here (:func:`complete_cell_term`)."""
     post = idata.posterior
+    if "term_variance" in post:
+        if post["field"].attrs.get("includes_cell_term"):  # drawn already
+            return idata
+        return complete_cell_term(idata, stats, setup, seed)
     if "mu" in post:
         return idata
     a, b = setup.extra["gamma_prior"]
@@ -815,6 +903,50 @@ def complete_posterior(idata, stats, setup, seed: int):
     post["rate"] = (("chain", "draw"), rate)
     post["mu"].attrs.update(units="log(m-2 scan-1)", long_name="baseline log intensity μ = log ρ₀, drawn from "
                             "its exact conditional Gamma(a + S, b + Z)")
+    post["rate"].attrs.update(units="detections per scan", long_name="expected detections per scan in the window")
+    return idata
+
+
+def complete_cell_term(idata, stats, setup, seed: int, chunk_values: int = 1 << 22):
+    """Draw the integrated-out per-cell term ε exactly, per kept draw and cell, from p(ε | N_c,
+    μ + f_c, v) (``cell_term.draw_terms``), and add it: ``field`` becomes f + ε (float32), the
+    window integral and ``rate`` = e^μ Σ_c |c ∩ W| e^{f_c + ε_c} follow. Cells without exposure
+    draw ε from its prior N(0, v). In chunks of draws of about ``chunk_values`` cell values."""
+    import scipy.special
+
+    from .cell_term import draw_terms
+
+    post = idata.posterior
+    field = post["field"].values  # (chain, draw, cell) float32
+    mu = np.asarray(post["mu"], float)
+    v = np.maximum(np.asarray(post["term_variance"], float), TERM_VARIANCE_FLOOR)
+    n_cells = field.shape[-1]
+    counts, log_e = np.zeros(n_cells), np.full(n_cells, -np.inf)
+    obs = np.asarray(setup.inputs["obs"])
+    counts[obs] = np.asarray(setup.inputs["counts"], float)
+    log_e[obs] = np.log(np.asarray(setup.inputs["exposure"], float))
+    area = np.asarray(setup.inputs["window_area"], float)  # stats.window_area
+    inside = area > 0
+    log_area = np.log(area[inside])
+    rng = np.random.default_rng([seed, 20261204])
+    flat_f, flat_mu, flat_v = field.reshape(-1, n_cells), mu.reshape(-1), v.reshape(-1)
+    out = np.empty_like(flat_f)
+    log_w = np.empty(flat_mu.size)
+    step = max(1, chunk_values // n_cells)
+    for i in range(0, flat_mu.size, step):
+        f = flat_f[i:i + step].astype(float)
+        eps = draw_terms(counts, log_e[None, :] + flat_mu[i:i + step, None] + f, flat_v[i:i + step], rng)
+        g = f + eps
+        out[i:i + step] = g
+        log_w[i:i + step] = scipy.special.logsumexp(g[:, inside] + log_area, axis=1)
+    post["field"] = (post["field"].dims, out.reshape(field.shape), dict(post["field"].attrs))
+    shape = mu.shape
+    post["log_window_integral"] = (("chain", "draw"), log_w.reshape(shape))
+    post["rate"] = (("chain", "draw"), np.exp(mu + log_w.reshape(shape)))
+    post["field"].attrs["long_name"] = ("log λ − μ per cell: the kept modes' field plus the per-cell term, "
+                                        "drawn exactly given the sampled draw")
+    post["field"].attrs["includes_cell_term"] = 1
+    post["mu"].attrs.update(units="log(m-2 scan-1)", long_name="baseline log intensity μ = log ρ₀ (sampled)")
     post["rate"].attrs.update(units="detections per scan", long_name="expected detections per scan in the window")
     return idata
 
@@ -894,7 +1026,8 @@ def describe_prior(prior: dict, stats) -> dict:
         "rho0": f"Gamma({a:.4g}, {b:.4g} m²·scan) on the baseline intensity ρ₀ = e^μ [m⁻² scan⁻¹]: median "
                 f"{prior['rate_median']:g}/|W| (|W| = {stats.window_total:.6g} m²), sd of μ = log ρ₀ "
                 f"{prior['rate_log_sd']:g}; without per-scan terms integrated out in the sampler and drawn "
-                "exactly afterwards, with them (not conjugate) sampled as the site rho0",
+                "exactly afterwards (sampled as μ through the field's level when a truncated field integrates "
+                "out its per-cell term), with them (not conjugate) sampled as the site rho0",
         "sigma": f"HalfNormal({prior['sigma_scale']:g}) on the field sd (log scale)",
         "length_scale": length_scale_lines(prior, stats),
         "field": "zero-mean stationary Gaussian field, circulant embedding on a padded torus: every "
@@ -940,11 +1073,21 @@ def dropped_modes(result, chunk: int = 4096) -> dict:
     ls = np.asarray(post["length_scale"]).reshape(sigma.size, -1)
     basis = result.setup.extra["modes"]
     if result.setup.inputs["kernels"].cell_term:
-        pick = np.unique(np.linspace(0, sigma.size - 1, min(40, sigma.size)).round().astype(int))
-        v = [float(basis.residual_variance(np.maximum(np.asarray(basis.eigenvalues(np.resize(ls[i], 2),
-                                                                                   sigma[i] ** 2), float), 0.0),
-                                           sigma[i] ** 2, np.resize(ls[i], 2))) for i in pick]
+        form = {"form": "sampled, one value per cell (per-scan terms)"}
+        if "term_variance" in post:  # integrated out: the model recorded v per draw
+            v = np.asarray(post["term_variance"], float).reshape(-1)
+            nodes = result.setup.inputs["kernels"].nodes
+            form = {"form": "integrated out cell by cell (models/cell_term.py) and drawn exactly afterwards",
+                    "gauss_hermite_nodes": nodes, "nodes_trusted_up_to_variance": variance_limit(nodes),
+                    "term_variance_max": float(np.max(v)),
+                    "nodes_rule": "sized at set-up for 4× the term's variance at the pilot (cell_term.nodes_for)"}
+        else:  # sampled (per-scan terms)
+            pick = np.unique(np.linspace(0, sigma.size - 1, min(40, sigma.size)).round().astype(int))
+            v = [float(basis.residual_variance(np.maximum(np.asarray(basis.eigenvalues(np.resize(ls[i], 2),
+                                                                                       sigma[i] ** 2), float), 0.0),
+                                               sigma[i] ** 2, np.resize(ls[i], 2))) for i in pick]
         return {"treatment": "per-cell term (model.dropped_modes)", "term_variance_per_cell": float(np.mean(v)),
+                **form,
                 "warning": False,
                 "rule": "the dropped modes' variance c₀ − (1/N) Σ_kept Λ_k at the posterior σ, ℓ (mean over draws; c₀ "
                         "the torus field's variance at a point), carried by an independent term per cell: each "
@@ -964,6 +1107,12 @@ def summary(result) -> dict:
     trunc = None if ex.get("modes") is None else ex["embedding"]["truncation"]
     dropped = None if trunc is None else dropped_modes(result)
     notes = []
+    if dropped is not None and dropped.get("term_variance_max", 0.0) > dropped.get("nodes_trusted_up_to_variance",
+                                                                                   math.inf):
+        notes.append(f"the per-cell term's variance reached {dropped['term_variance_max']:.3g} in the posterior, beyond "
+                     f"the {dropped['nodes_trusted_up_to_variance']:g} its {dropped['gauss_hermite_nodes']}-node "
+                     "quadrature was sized for: the likelihood carries a small quadrature error (up to about 1e-6 "
+                     "nats per cell at variance 1; models/cell_term.py)")
     if dropped is not None and dropped["warning"]:
         notes.append(f"the truncated field (model.variance_kept = {trunc['variance_kept_target']:g}) leaves out modes "
                      f"of prior variance {dropped['dropped_variance_per_cell']:.2g} per cell, "
@@ -992,10 +1141,16 @@ def summary(result) -> dict:
                             "coefficients of the kept Fourier modes; per-mode partial centring d_k = 1 + w̄Λ_k "
                             "(w̄ per torus cell), a fixed linear map from the data's Gaussian approximation at "
                             "pilot hyperparameters (fields/truncation.py); "
-                            + ("the dropped modes' variance as an independent term per cell, partially centred "
-                               "per cell (e_c = 1 + N_c v); " if result.setup.inputs["kernels"].cell_term else ""))
+                            + (("the dropped modes' variance as an independent term per cell, partially centred "
+                                "per cell (e_c = 1 + N_c v); " if "scan_terms" in result.setup.inputs else
+                                "the dropped modes' variance as an independent term per cell, integrated out cell by "
+                                "cell (Gauss–Hermite) and drawn exactly per draw afterwards (models/cell_term.py); ")
+                               if result.setup.inputs["kernels"].cell_term else ""))
                            + ("baseline ρ₀ sampled (per-scan terms make it non-conjugate)"
                               if "scan_terms" in result.setup.inputs else
+                              "baseline μ = log ρ₀ sampled through the field's data-weighted level (the integrated "
+                              "per-cell term is no longer conjugate to it)"
+                              if getattr(result.setup.inputs["kernels"], "cell_term", False) else
                               "baseline ρ₀ integrated out (conjugate Gamma) and drawn exactly per draw"),
             **(pre.report() if ex.get("modes") is None else
                {"w_bar_detections_per_torus_cell": pre.w_scale, "pilot": pre.pilot,

@@ -71,6 +71,7 @@ def variant_kind(name: str):
 
     def setup(stats, prior, model_spec):
         s = base.setup(stats, prior, model_spec)
+        s.extra.update(s.extra.pop("with_scan_terms", None) or {})  # the base's settings for a per-scan model
         needs_meta = "scan_covariates" in tokens or "time" in tokens
         meta = read_scan_meta(stats, model_spec) if needs_meta else {}
         design = scanterms.build_design(meta, stats.n_scans, model_spec.options, "model")

@@ -1,0 +1,124 @@
+"""The per-cell term integrated out (``models.cell_term``): the Poisson–lognormal marginal and
+the exact draws of the term, against numerical integration by scipy.integrate.quad."""
+
+from __future__ import annotations
+
+import math
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+import pytest
+import scipy.integrate
+import scipy.optimize
+import scipy.stats
+
+from sceneprior.models import cell_term
+
+
+# counts, η − log max(N, 0.3), v, Gauss–Hermite nodes: few and many counts, intensities below
+# and above the data's, term variances from negligible to large (v = σ² (1 − kept) at σ up to
+# 1.4 and q 0.75), each at the largest variance its rule is chosen for (cell_term.nodes_for)
+CASES = [(n, dt, v, cell_term.nodes_for(v)) for n in (0, 1, 4, 60, 2000) for dt in (-2.0, 0.0, 1.5)
+         for v in (1e-4, 0.05, 0.5) + tuple(limit for limit, _ in cell_term.NODES_BY_VARIANCE)]
+# far above the data (early warmup, empty cells in a busy region): where Newton on ε itself
+# crawls, about one unit per step
+CASES += [(n, dt, v, cell_term.nodes_for(v)) for n in (0, 300) for dt in (3.0, 6.0) for v in (0.1, 0.3)]
+
+
+def _integrals(n, eta, v):
+    """(log ∫ e^{h}, E[ε], E[e^{η+ε}]) under p(ε) ∝ e^{h(ε)}, h(ε) = n(η + ε) − e^{η+ε} −
+    ε²/(2v), by scipy.integrate.quad around the mode over ±60 of its curvature scales."""
+    m = float(cell_term.posterior_mode(n, eta, v)[0])
+    s = 1.0 / math.sqrt(math.exp(eta + m) + 1.0 / v)
+    hm = n * (eta + m) - math.exp(eta + m) - m * m / (2.0 * v)
+
+    def w(e):
+        return math.exp(n * (eta + e) - math.exp(min(eta + e, 700.0)) - e * e / (2.0 * v) - hm)
+
+    kw = dict(points=[m], limit=400, epsabs=0.0, epsrel=1e-12)
+    lo, hi = m - 60.0 * s, m + 60.0 * s
+    z = scipy.integrate.quad(w, lo, hi, **kw)[0]
+    mean = scipy.integrate.quad(lambda e: e * w(e), lo, hi, **(kw | {"epsabs": 1e-12 * z}))[0] / z  # E[ε] may be 0
+    rate = scipy.integrate.quad(lambda e: math.exp(eta + e) * w(e), lo, hi, **kw)[0] / z
+    return math.log(z) + hm, mean, rate
+
+
+def test_marginal_and_its_gradient_match_numerical_integration():
+    """log p(N | η) + log N! = log ∫ Pois(N | e^{η+ε}) N(ε; 0, v) dε + log N! by the module's
+    16-node adaptive Gauss–Hermite rule, against scipy.integrate.quad; and its gradient
+    (jax, the nodes held) against the exact derivatives d/dη = N − E[e^{η+ε}] and d/dv =
+    E[ε²]/(2v²) − 1/(2v) under the conditional of ε (the
+    derivative of a log integral: the integrand's log derivative averaged under the
+    normalised integrand; E[ε²] by quad as well)."""
+    grad = jax.jit(jax.grad(lambda eta, v, n, k: cell_term.marginal_loglik(n[None], eta[None], v, k)[0],
+                            argnums=(0, 1)), static_argnums=3)
+    assert {k for *_, k in CASES} == {8, 12, 16}
+    assert all(v <= cell_term.variance_limit(k) for _, _, v, k in CASES)
+    for n, dt, v, k in CASES:
+        eta = math.log(max(n, 0.3)) + dt
+        log_z, mean, rate = _integrals(n, eta, v)
+        ref = log_z - 0.5 * math.log(2.0 * math.pi * v)
+        got = float(cell_term.marginal_loglik(jnp.array([float(n)]), jnp.array([eta]), v, k)[0])
+        assert abs(got - ref) < 1e-7, (n, dt, v, k, got - ref)
+        g_eta, g_v = (float(x) for x in grad(jnp.asarray(eta), jnp.asarray(v), jnp.asarray(float(n)), k))
+        assert g_eta == pytest.approx(n - rate, rel=1e-6, abs=1e-6 * max(n, 1.0)), (n, dt, v)
+        m = float(cell_term.posterior_mode(n, eta, v)[0])
+        s = 1.0 / math.sqrt(math.exp(eta + m) + 1.0 / v)
+        hm = n * (eta + m) - math.exp(eta + m) - m * m / (2.0 * v)
+        second = scipy.integrate.quad(lambda e: e * e * math.exp(n * (eta + e) - math.exp(eta + e) - e * e / (2 * v)
+                                                                   - hm), m - 60 * s, m + 60 * s, points=[m],
+                                      limit=400, epsabs=0.0, epsrel=1e-12)[0] / math.exp(log_z - hm)
+        d_v = second / (2.0 * v * v) - 1.0 / (2.0 * v)
+        assert g_v == pytest.approx(d_v, rel=1e-5, abs=1e-6 / v), (n, dt, v)
+
+
+def test_term_draws_follow_their_exact_conditional():
+    """draw_terms's rejection sampler against p(ε | N, η) ∝ e^{h(ε)} tabulated by
+    scipy.integrate.quad: 20 000 draws per case binned at the conditional's deciles (found by
+    quad and scipy.optimize.brentq), scipy.stats.chisquare, Bonferroni over the cases at
+    α = 0.001; and cells without exposure (η = −∞) against N(0, v) by scipy.stats.kstest."""
+    import scipy.optimize
+
+    rng = np.random.default_rng(7)
+    cases = [(0, 0.5, 0.5), (3, -1.0, 0.2), (60, 0.0, 0.05), (60, 1.0, 0.05), (2000, 0.3, 0.5)]
+    draws = 20_000
+    for n, dt, v in cases:
+        eta = math.log(max(n, 0.3)) + dt
+        eps = cell_term.draw_terms(np.array([float(n)]), np.full((draws, 1), eta), np.full(draws, v), rng)[:, 0]
+        log_z, mean, _ = _integrals(n, eta, v)
+        m = float(cell_term.posterior_mode(n, eta, v)[0])
+        s = 1.0 / math.sqrt(math.exp(eta + m) + 1.0 / v)
+        hm = n * (eta + m) - math.exp(eta + m) - m * m / (2.0 * v)
+        z = math.exp(log_z - hm)
+
+        def cdf(x):
+            return scipy.integrate.quad(lambda e: math.exp(n * (eta + e) - math.exp(eta + e) - e * e / (2 * v) - hm),
+                                        m - 60 * s, x, limit=400, epsabs=0.0, epsrel=1e-10)[0] / z
+
+        cuts = [scipy.optimize.brentq(lambda x: cdf(x) - q, m - 60 * s, m + 60 * s, xtol=1e-12)
+                for q in np.arange(1, 10) / 10]
+        observed = np.bincount(np.searchsorted(cuts, eps), minlength=10)
+        p = scipy.stats.chisquare(observed, np.full(10, draws / 10)).pvalue
+        assert p > 0.001 / len(cases), (n, dt, v, observed)
+        assert abs(np.mean(eps) - mean) < 4.0 * np.std(eps) / math.sqrt(draws), (n, dt, v)
+    v = np.full(draws, 0.3)
+    prior = cell_term.draw_terms(np.array([0.0]), np.full((draws, 1), -np.inf), v, rng)[:, 0]
+    assert scipy.stats.kstest(prior, scipy.stats.norm(0.0, math.sqrt(0.3)).cdf).pvalue > 0.001
+
+
+def test_mode_is_the_lambert_w_solution():
+    """The integrand's mode in the sampler (NEWTON_STEPS Newton steps on w + log w = L) against
+    scipy.special.lambertw: W(e^L) for L from −50 to 10⁴, to float64 round-off, and the mode
+    m = vN − W(v e^{η+vN}) solves h'(m) = N − e^{η+m} − m/v = 0."""
+    import scipy.special
+
+    L = np.concatenate([np.linspace(-50.0, 5.0, 221), np.geomspace(5.0, 1e4, 60)])
+    w = np.asarray(cell_term._mode_w(jnp.zeros_like(L), jnp.asarray(L), 1.0, jnp, cell_term.NEWTON_STEPS))
+    ref = np.array([scipy.special.lambertw(np.exp(x)).real if x < 700 else np.nan for x in L])
+    big = ~np.isfinite(ref)  # e^L overflows: W from its defining equation instead
+    ref[big] = [scipy.optimize.brentq(lambda y, x=x: y + math.log(y) - x, 1.0, x) for x in L[big]]
+    np.testing.assert_allclose(w, ref, rtol=1e-13, atol=0.0)
+    for n, eta, v in [(0, 8.0, 0.3), (300, math.log(300) + 6, 1.0), (5, -3.0, 0.05), (3000, 7.0, 2.0)]:
+        m, w = cell_term.posterior_mode(n, eta, v)
+        assert abs(n - math.exp(eta + m) - m / v) < 1e-9 * max(n, math.exp(eta + m), 1.0)
