@@ -813,7 +813,7 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None, start_sea
                        "fewer) is what shortens it" if kernel == "matern12" else
                        f"model.variance_kept = {q:g} keeps the modes with {100 * q:g} % of the prior variance "
                        f"(Matérn 3/2 at 128² cells and the squared exponential at 256² fit in about 2 min with "
-                       f"weak data; Matérn 3/2 with strong data at 128² in about 11 min, with the per-cell term "
+                       f"weak data; Matérn 3/2 with strong data at 128² in 10–12 min, with the per-cell term "
                        f"that model.dropped_modes = \"auto\" adds there)")
             advice.append(f"every one of the {n_latent} torus modes is sampled: expect a long run at this size "
                           f"(128² cells: about 50 min or more for 4 × (1000 + 1000)); {shorter} — README, "
@@ -1111,8 +1111,8 @@ def summary(result) -> dict:
                                                                                    math.inf):
         notes.append(f"the per-cell term's variance reached {dropped['term_variance_max']:.3g} in the posterior, beyond "
                      f"the {dropped['nodes_trusted_up_to_variance']:g} its {dropped['gauss_hermite_nodes']}-node "
-                     "quadrature was sized for: the likelihood carries a small quadrature error (up to about 1e-6 "
-                     "nats per cell at variance 1; models/cell_term.py)")
+                     "quadrature was sized for: the likelihood carries a small quadrature error (its size by "
+                     "variance: models/cell_term.py, NODES_BY_VARIANCE)")
     if dropped is not None and dropped["warning"]:
         notes.append(f"the truncated field (model.variance_kept = {trunc['variance_kept_target']:g}) leaves out modes "
                      f"of prior variance {dropped['dropped_variance_per_cell']:.2g} per cell, "
