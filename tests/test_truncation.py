@@ -617,7 +617,7 @@ def test_strong_data_truncated_fit_warns_that_the_intervals_are_too_narrow(tmp_p
 
 
 @pytest.mark.parametrize("overdispersion", [False, True])
-def test_per_cell_term_through_the_pipeline(tmp_path, overdispersion):
+def test_per_cell_term_through_the_pipeline(tmp_path, monkeypatch, overdispersion):
     """The per-cell term end to end on a small strong-data recording (8 × 8 cells, ≈ 200
     detections per cell, q 0.9, short chains): `auto` switches it on, the fit writes its
     run, summary.json says how the dropped variance is carried (no dropped-mode note), the
@@ -676,6 +676,9 @@ def test_per_cell_term_through_the_pipeline(tmp_path, overdispersion):
         before = np.asarray(post["field"]).copy()
         lgcp.complete_posterior(res.idata, res.stats, res.setup, 3)  # a second call adds nothing
         np.testing.assert_array_equal(np.asarray(res.idata.posterior["field"]), before)
+        monkeypatch.setattr(lgcp, "variance_limit", lambda nodes: 0.5 * dm["term_variance_max"])
+        (note,) = lgcp.summary(res)["notes"]  # a posterior beyond what its quadrature was sized for
+        assert "per-cell term's variance reached" in note and f"{dm['gauss_hermite_nodes']}-node" in note
         rate = np.exp(np.asarray(post["mu"]) + np.asarray(post["log_window_integral"]))
         np.testing.assert_allclose(np.asarray(post["rate"]), rate, rtol=1e-10)
         lam = np.exp(np.asarray(post["field"], float) + np.asarray(post["mu"])[..., None])

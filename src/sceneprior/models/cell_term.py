@@ -120,7 +120,8 @@ def marginal_loglik(counts, eta, v, nodes: int = GH_NODES):
 
 def posterior_mode(counts, eta, v, tol: float = 1e-13, max_steps: int = 60):
     """(m, w): the mode m = vN − w of p(ε | N, η) and w = v e^{η+m} (``_mode_w``), numpy,
-    broadcasting; η may be −∞ for cells without exposure (then w = 0 and m = vN). Newton to
+    broadcasting; η may be −∞ for cells without exposure (then w = 0 and m = vN = 0: such
+    cells have no counts). Newton to
     a relative step below ``tol``; raises if it has not converged in ``max_steps``."""
     counts, eta, v = np.asarray(counts, float), np.asarray(eta, float), np.asarray(v, float)
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
@@ -165,10 +166,10 @@ def draw_terms(counts, eta, v, rng: np.random.Generator, max_rounds: int = 100_0
         mt = m[todo]
         with np.errstate(over="ignore", invalid="ignore"):
             gain = counts[todo] * d - top[todo] * np.expm1(d) - d * (2.0 * mt + d) / (2.0 * v[todo])
-        ratio = gain + 0.5 * z * z  # log(target / envelope) ≤ 0 (module docstring)
-        if np.any(ratio > 1e-9):
+        ratio = gain + 0.5 * z * z  # log(target / envelope) ≤ 0 (module docstring), up to round-off
+        if np.any(ratio > 1e-6):
             raise RuntimeError(f"per-cell term draws: the envelope fails to dominate (log ratio {np.max(ratio):.3g})")
-        ok = np.log(rng.random(todo.size)) < ratio
+        ok = np.log(rng.random(todo.size)) < np.minimum(ratio, 0.0)
         out[todo[ok]] = mt[ok] + d[ok]
         todo = todo[~ok]
     raise RuntimeError(f"per-cell term draws: {todo.size} still rejected after {max_rounds} rounds")

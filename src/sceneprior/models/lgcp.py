@@ -858,8 +858,9 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None, start_sea
         # running its chains one after another — its 16 384 values at 128² make vectorised NUTS
         # bookkeeping dear: 767.7 s vectorised against 651.6 s (``--one 128 matern32 strong
         # --variance-kept 0.95`` before the term was integrated out, one run each)
-        "with_scan_terms": ({"grid_latent": True, "vectorize_chain_groups": False, "exclude_sites": exclude + ["u_cells"],
-                             "n_latent": n_latent - 1 + stats.grid.n_cells} if cell_term_on else {}),
+        "with_scan_terms": ({"grid_latent": True, "vectorize_chain_groups": False,
+                             "exclude_sites": exclude + ["u_cells"], "n_latent": n_latent - 1 + stats.grid.n_cells}
+                            if cell_term_on else {}),
         # the integrated per-cell term: per-cell work in every gradient, so chain processes too
         # (measured in parallel at 128²: memory grew by about 4.6 MB/s)
         "grid_latent": cell_term_on,
@@ -1109,8 +1110,8 @@ def summary(result) -> dict:
     notes = []
     if dropped is not None and dropped.get("term_variance_max", 0.0) > dropped.get("nodes_trusted_up_to_variance",
                                                                                    math.inf):
-        notes.append(f"the per-cell term's variance reached {dropped['term_variance_max']:.3g} in the posterior, beyond "
-                     f"the {dropped['nodes_trusted_up_to_variance']:g} its {dropped['gauss_hermite_nodes']}-node "
+        notes.append(f"the per-cell term's variance reached {dropped['term_variance_max']:.3g} in the posterior, "
+                     f"beyond the {dropped['nodes_trusted_up_to_variance']:g} its {dropped['gauss_hermite_nodes']}-node "
                      "quadrature was sized for: the likelihood carries a small quadrature error (its size by "
                      "variance: models/cell_term.py, NODES_BY_VARIANCE)")
     if dropped is not None and dropped["warning"]:
