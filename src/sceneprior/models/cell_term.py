@@ -87,10 +87,15 @@ def _mode_w(counts, eta, v, xp, steps):
     z = xp.exp(xp.minimum(L, 1.0))
     w = xp.where(L > 1.0, L - xp.log(xp.maximum(L, 1.0)), z / (1.0 + z))
     for _ in range(steps):
-        pos = w > 0.0
-        safe = xp.where(pos, w, 1.0)
-        w = xp.where(pos, safe * (1.0 + L - xp.log(safe)) / (1.0 + safe), 0.0)
+        w = _mode_w_step(w, L, xp)
     return w
+
+
+def _mode_w_step(w, L, xp):
+    """One Newton step on w + log w = L (w = 0 stays 0)."""
+    pos = w > 0.0
+    safe = xp.where(pos, w, 1.0)
+    return xp.where(pos, safe * (1.0 + L - xp.log(safe)) / (1.0 + safe), 0.0)
 
 
 def marginal_loglik(counts, eta, v, nodes: int = GH_NODES):
@@ -128,18 +133,12 @@ def posterior_mode(counts, eta, v, tol: float = 1e-13, max_steps: int = 60):
         w = _mode_w(counts, eta, v, np, 0)
         L = np.log(v) + eta + v * counts
         for _ in range(max_steps):
-            new = _mode_w_step(w, L)
+            new = _mode_w_step(w, L, np)
             done = np.all(np.abs(new - w) <= tol * np.maximum(new, 1e-300))
             w = new
             if done:
                 return v * counts - w, w
     raise RuntimeError("per-cell term: the mode search did not converge")
-
-
-def _mode_w_step(w, L):
-    pos = w > 0.0
-    safe = np.where(pos, w, 1.0)
-    return np.where(pos, safe * (1.0 + L - np.log(safe)) / (1.0 + safe), 0.0)
 
 
 def draw_terms(counts, eta, v, rng: np.random.Generator, max_rounds: int = 100_000):

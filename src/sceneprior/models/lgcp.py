@@ -58,9 +58,9 @@ from ..fields.embedding import TorusGeometry, plan_torus, torus_shape_for
 from ..fields.kernels import KERNEL_NAMES
 from ..fields.spectral import Spectrum, periodised_report
 from ..fields.preconditioning import build_preconditioner, field_and_prior, safe_sqrt
-from .cell_term import GH_NODES, marginal_loglik, nodes_for, variance_limit
 from ..fields.truncation import (MAP_MAX_COEFFICIENTS, ModeBasis, dense_preconditioner, dropped_mode_check,
                                  field_from_coefficients, mode_basis)
+from .cell_term import GH_NODES, marginal_loglik, nodes_for, variance_limit
 
 DEFAULT_PRIOR = {
     "rate_median": 10.0,
@@ -495,8 +495,7 @@ def truncated_preconditioner(basis, counts, exposure, lo, hi, sigma_scale, cell_
     weights = np.where(exposure > 0, counts + 0.5, 0.0)
     v_hat = 0.0
     if on:
-        v_hat = float(basis.residual_variance(np.maximum(np.asarray(basis.eigenvalues(ls_pilot, pilot["sigma"] ** 2),
-                                                                    float), 0.0), pilot["sigma"] ** 2, ls_pilot))
+        v_hat = screen["dropped_variance_per_cell"]  # the term's variance at the pilot σ, ℓ
         weights = weights / (1.0 + weights * v_hat)
     w_bar = float(np.sum(counts / (1.0 + counts * v_hat)) / geom.n_torus)
     m0, m1 = geom.torus_shape
@@ -922,10 +921,8 @@ def complete_cell_term(idata, stats, setup, seed: int, chunk_values: int = 1 << 
     mu = np.asarray(post["mu"], float)
     v = np.maximum(np.asarray(post["term_variance"], float), TERM_VARIANCE_FLOOR)
     n_cells = field.shape[-1]
-    counts, log_e = np.zeros(n_cells), np.full(n_cells, -np.inf)
-    obs = np.asarray(setup.inputs["obs"])
-    counts[obs] = np.asarray(setup.inputs["counts"], float)
-    log_e[obs] = np.log(np.asarray(setup.inputs["exposure"], float))
+    pre = setup.inputs["precond"]  # N_c and log E_c on every grid cell (grid_data)
+    counts, log_e = np.asarray(pre["counts_grid"], float), np.asarray(pre["log_exposure_grid"], float)
     area = np.asarray(setup.inputs["window_area"], float)  # stats.window_area
     inside = area > 0
     log_area = np.log(area[inside])
