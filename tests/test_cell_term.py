@@ -108,7 +108,7 @@ def test_term_draws_follow_their_exact_conditional():
 
 
 def test_mode_is_the_lambert_w_solution():
-    """The integrand's mode in the sampler (NEWTON_STEPS Newton steps on w + log w = L) against
+    """The integrand's mode (NEWTON_STEPS Newton steps on w + log w = L) against
     scipy.special.lambertw: W(e^L) for L from −50 to 10⁴, to float64 round-off, and the mode
     m = vN − W(v e^{η+vN}) solves h'(m) = N − e^{η+m} − m/v = 0."""
     import scipy.special
@@ -119,6 +119,11 @@ def test_mode_is_the_lambert_w_solution():
     big = ~np.isfinite(ref)  # e^L overflows: W from its defining equation instead
     ref[big] = [scipy.optimize.brentq(lambda y, x=x: y + math.log(y) - x, 1.0, x) for x in L[big]]
     np.testing.assert_allclose(w, ref, rtol=1e-13, atol=0.0)
+    # the sampler's node placement (PLACEMENT_STEPS): the mode's error in units of the rule's
+    # scale s = √(v/(1 + w)) at v = 1 stays below 2e-4 (the value and gradient tests above run
+    # with this placement)
+    placed = np.asarray(cell_term._mode_w(jnp.zeros_like(L), jnp.asarray(L), 1.0, jnp, cell_term.PLACEMENT_STEPS))
+    assert np.max(np.abs(placed - ref) * np.sqrt(1.0 + ref)) < 2e-4
     for n, eta, v in [(0, 8.0, 0.3), (300, math.log(300) + 6, 1.0), (5, -3.0, 0.05), (3000, 7.0, 2.0)]:
         m, w = cell_term.posterior_mode(n, eta, v)
         assert abs(n - math.exp(eta + m) - m / v) < 1e-9 * max(n, math.exp(eta + m), 1.0)

@@ -907,13 +907,19 @@ def complete_posterior(idata, stats, setup, seed: int):
     return idata
 
 
-def complete_cell_term(idata, stats, setup, seed: int, chunk_values: int = 1 << 22):
+def complete_cell_term(idata, stats, setup, seed: int, chunk_values: int = 1 << 21, workers: int | None = None):
     """Draw the integrated-out per-cell term ε exactly, per kept draw and cell, from p(ε | N_c,
     μ + f_c, v) (``cell_term.draw_terms``), and add it: ``field`` becomes f + ε (float32), the
     window integral and ``rate`` = e^μ Σ_c |c ∩ W| e^{f_c + ε_c} follow. Cells without exposure
-    draw ε from its prior N(0, v). In chunks of draws of about ``chunk_values`` cell values."""
+    draw ε from its prior N(0, v). In chunks of draws of about ``chunk_values`` cell values,
+    ``workers`` chunks at a time (default: the usable cores) in threads — numpy's array
+    operations release the GIL — each chunk with its own random stream (seed, chunk), so the
+    draws do not depend on the number of workers."""
+    from concurrent.futures import ThreadPoolExecutor
+
     import scipy.special
 
+    from ..inference import usable_cores
     from .cell_term import draw_terms
 
     post = idata.posterior
@@ -926,17 +932,20 @@ def complete_cell_term(idata, stats, setup, seed: int, chunk_values: int = 1 << 
     area = np.asarray(setup.inputs["window_area"], float)  # stats.window_area
     inside = area > 0
     log_area = np.log(area[inside])
-    rng = np.random.default_rng([seed, 20261204])
     flat_f, flat_mu, flat_v = field.reshape(-1, n_cells), mu.reshape(-1), v.reshape(-1)
     out = np.empty_like(flat_f)
     log_w = np.empty(flat_mu.size)
     step = max(1, chunk_values // n_cells)
-    for i in range(0, flat_mu.size, step):
+
+    def chunk(i):
+        rng = np.random.default_rng([seed, 20261204, i])
         f = flat_f[i:i + step].astype(float)
-        eps = draw_terms(counts, log_e[None, :] + flat_mu[i:i + step, None] + f, flat_v[i:i + step], rng)
-        g = f + eps
+        g = f + draw_terms(counts, log_e[None, :] + flat_mu[i:i + step, None] + f, flat_v[i:i + step], rng)
         out[i:i + step] = g
         log_w[i:i + step] = scipy.special.logsumexp(g[:, inside] + log_area, axis=1)
+
+    with ThreadPoolExecutor(max_workers=workers or usable_cores()) as pool:
+        list(pool.map(chunk, range(0, flat_mu.size, step)))  # list(): a chunk's error is raised here
     post["field"] = (post["field"].dims, out.reshape(field.shape), dict(post["field"].attrs))
     shape = mu.shape
     post["log_window_integral"] = (("chain", "draw"), log_w.reshape(shape))
