@@ -56,6 +56,10 @@ def test_layouts_by_size_cores_and_devices(monkeypatch):
     # a latent site with a value per grid cell (the LGCP's per-cell term): never parallel
     assert inference.chain_layout(big, 4, n_cells=64 * 64, grid_latent=True) == "processes"
     assert inference.chains_at_once(big, 4, n_cells=64 * 64, grid_latent=True) == 2
+    # ... and not vectorised either, however few its latent values, once the grid is large
+    assert inference.chain_layout(10, 4, n_cells=64 * 64, grid_latent=True) == "processes"
+    assert inference.chain_layout(10, 4, n_cells=16 * 16, grid_latent=True) == "vectorized"
+    assert inference.chain_layout(10, 1, n_cells=64 * 64, grid_latent=True) == "sequential"
     # chain processes: one chain per core holds state at a time, or all when the processes
     # vectorise their groups (the model says its chains are alike)
     assert inference.chains_at_once(big, 4, n_cells=inference.PARALLEL_BELOW) == 2

@@ -47,14 +47,17 @@ __all__ = ["GH_NODES", "NEWTON_STEPS", "PLACEMENT_STEPS", "nodes_for", "variance
            "draw_terms"]
 
 #: Gauss–Hermite nodes of the per-cell integral, by the largest term variance v expected
-#: (``nodes_for``), and the variance up to which each rule is trusted (``variance_limit``).
-#: Worst error per cell against scipy.integrate.quad (scratch run over N 0–3 000 and η within
-#: ±1 of log N), in nats: 8 nodes 1e-9 at v ≤ 0.03, 4e-8 at 0.1, 1e-6 at 0.3, 5e-5 at 1; 12
-#: nodes 3e-10 at 0.1, 2e-8 at 0.3, 2e-6 at 1; 16 nodes 4e-10 at 0.3, 2e-7 at 1 — the largest
-#: with few counts and a large v, where the integrand is skewed (tests/test_cell_term.py
-#: checks value and gradient). Each node costs exponentials per cell and leapfrog step.
-NODES_BY_VARIANCE = ((0.1, 8), (0.3, 12), (0.6, 16))
-GH_NODES = 16  # beyond the table's variances too (its error grows with v)
+#: (``nodes_for``), and the variance up to which each rule is trusted (``variance_limit``):
+#: the fewest nodes whose worst error per cell stays within 1e-7 nats. Worst error against
+#: scipy.integrate.quad (scratch run with the sampler's node placement over N 0–3 000 and η
+#: from 2 below to 3 above log N), in nats: 5 nodes 8e-8 at v = 0.012, 5e-7 at 0.03; 7 nodes
+#: 4e-8 at 0.06, 2e-7 at 0.1; 8 nodes 4e-8 at 0.1, 1e-6 at 0.3; 11 nodes 4e-8 at 0.3, 8e-7 at
+#: 0.6; 15 nodes 2e-8 at 0.6 (6 nodes are no better than 5, nor 12 than 11: an odd rule has a
+#: node at the mode) — the largest with few counts and a large v, where the integrand is
+#: skewed (tests/test_cell_term.py checks value and gradient at each limit). Each node costs
+#: two exponentials per cell and gradient.
+NODES_BY_VARIANCE = ((0.012, 5), (0.06, 7), (0.1, 8), (0.3, 11), (0.6, 15))
+GH_NODES = 16  # beyond the table's variances (its error grows with v: 2e-7 at v = 1)
 #: Newton steps for the Lambert W of the integrand's mode inside the sampler (``_mode_w``;
 #: from its start, 4 steps reach float64 round-off over L from −50 to 10⁴: tests)
 NEWTON_STEPS = 4
