@@ -142,7 +142,7 @@ def chain_layout(n_latent: int, chains: int = 1, n_cells: int = 0, grid_latent: 
     Matérn 3/2 strong, q 0.85 with the per-cell term integrated out (974 latent values, 16 384
     cells), had not finished 4 × (1000 + 1000) vectorised after 11 min (killed; ``bench/bench_lgcp.py
     --one 128 matern32 strong --variance-kept 0.85``), where q 0.9 (1 398 latent values, chain
-    processes) took 204 s. Asks jax for its device count, which starts jax's
+    processes) took 166.4–179.3 s. Asks jax for its device count, which starts jax's
     backend: call ``configure_jax`` first."""
     if (max(n_latent, n_cells) if grid_latent else n_latent) < SEQUENTIAL_FROM:
         return "vectorized"

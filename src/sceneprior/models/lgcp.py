@@ -812,7 +812,7 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None, start_sea
                        "fewer) is what shortens it" if kernel == "matern12" else
                        f"model.variance_kept = {q:g} keeps the modes with {100 * q:g} % of the prior variance "
                        f"(Matérn 3/2 at 128² cells and the squared exponential at 256² fit in about 2 min with "
-                       f"weak data; Matérn 3/2 with strong data at 128² in about 6 min at variance_kept = 0.9, "
+                       f"weak data; Matérn 3/2 with strong data at 128² in about 3–4 min at variance_kept = 0.9, "
                        f"with the per-cell term that model.dropped_modes = \"auto\" adds there)")
             advice.append(f"every one of the {n_latent} torus modes is sampled: expect a long run at this size "
                           f"(128² cells: about 50 min or more for 4 × (1000 + 1000)); {shorter} — README, "
