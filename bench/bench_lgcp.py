@@ -535,7 +535,7 @@ def one(args):
     res = _run(kind, setup, args.chains, args.warmup, args.draws, dense_baseline=args.dense,
                setup_s=0.0 if args.dense else setup.extra["bench_setup_s"], progress=args.progress,
                matched=not args.dense_numpyro_defaults)
-    res.update({"cells": f"{size}²", "kernel": kernel, "regime": regime, "scans": K,
+    res.update({"cells": f"{size}²", "kernel": kernel, "regime": regime, "scans": K, "field_seed": args.field_seed,
                 "detections": int(counts.sum()), "pad": setup.extra["preconditioner"].use_pad,
                 "torus": setup.extra["embedding"]["torus_shape"],
                 "formulation": "dense" if args.dense else "fourier", "latent": setup.extra["n_latent"],

@@ -671,13 +671,13 @@ def test_per_cell_term_through_the_pipeline(tmp_path, monkeypatch, overdispersio
         assert "term_variance" not in post and dm["form"].startswith("sampled")
     else:  # the written field is the kept field plus exact draws of ε: μ + f + ε, with the rate from it
         assert "level" in post and "u_cells" not in post and dm["form"].startswith("integrated out")
-        assert dm["term_variance_max"] <= dm["nodes_trusted_up_to_variance"]
+        assert 0.0 <= dm["quadrature_error_nats"] < lgcp.QUADRATURE_NOTE_NATS
         assert post["field"].attrs["includes_cell_term"]
         before = np.asarray(post["field"]).copy()
         lgcp.complete_posterior(res.idata, res.stats, res.setup, 3)  # a second call adds nothing
         np.testing.assert_array_equal(np.asarray(res.idata.posterior["field"]), before)
-        monkeypatch.setattr(lgcp, "variance_limit", lambda nodes: 0.5 * dm["term_variance_max"])
-        (note,) = lgcp.summary(res)["notes"]  # a posterior beyond what its quadrature was sized for
+        monkeypatch.setattr(lgcp, "QUADRATURE_NOTE_NATS", -1.0)
+        (note,) = lgcp.summary(res)["notes"]  # a quadrature error beyond the threshold
         assert "per-cell term's variance reached" in note and f"{dm['gauss_hermite_nodes']}-node" in note
         rate = np.exp(np.asarray(post["mu"]) + np.asarray(post["log_window_integral"]))
         np.testing.assert_allclose(np.asarray(post["rate"]), rate, rtol=1e-10)

@@ -138,7 +138,8 @@ def chain_layout(n_latent: int, chains: int = 1, n_cells: int = 0, grid_latent: 
     cells 91.0 s sequential against 195.5 s vectorised; 32² (4 × (300 + 300)) 51.2 s
     against 60.2 s. Small models (a handful of parameters) keep the vectorised layout,
     where one pass serves every chain — but not a model whose gradient does per-cell work
-    (``grid_latent``) on SEQUENTIAL_FROM cells or more, however few its latent values: 128²
+    (``grid_latent``) on SEQUENTIAL_FROM cells or more, however few its latent values (the
+    threshold borrowed from the latent dimension; measured at 128² only): 128²
     Matérn 3/2 strong, q 0.85 with the per-cell term integrated out (974 latent values, 16 384
     cells), had not finished 4 × (1000 + 1000) vectorised after 11 min (killed; ``bench/bench_lgcp.py
     --one 128 matern32 strong --variance-kept 0.85``), where q 0.9 (1 398 latent values, chain

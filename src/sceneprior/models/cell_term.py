@@ -43,8 +43,8 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-__all__ = ["GH_NODES", "NEWTON_STEPS", "PLACEMENT_STEPS", "nodes_for", "variance_limit", "marginal_loglik", "posterior_mode",
-           "draw_terms"]
+__all__ = ["GH_NODES", "NEWTON_STEPS", "PLACEMENT_STEPS", "REFERENCE_NODES", "nodes_for", "variance_limit",
+           "marginal_loglik", "rule_error", "posterior_mode", "draw_terms"]
 
 #: Gauss–Hermite nodes of the per-cell integral, by the largest term variance v expected
 #: (``nodes_for``), and the variance up to which each rule is trusted (``variance_limit``):
@@ -58,13 +58,14 @@ __all__ = ["GH_NODES", "NEWTON_STEPS", "PLACEMENT_STEPS", "nodes_for", "variance
 #: two exponentials per cell and gradient.
 NODES_BY_VARIANCE = ((0.012, 5), (0.06, 7), (0.1, 8), (0.3, 11), (0.6, 15))
 GH_NODES = 16  # beyond the table's variances (its error grows with v: 2e-7 at v = 1)
-#: Newton steps for the Lambert W of the integrand's mode inside the sampler (``_mode_w``;
-#: from its start, 4 steps reach float64 round-off over L from −50 to 10⁴: tests)
+#: Newton steps for the Lambert W of the integrand's mode to float64 round-off (``_mode_w``;
+#: from its start, 4 steps reach it over L from −50 to 10⁴: tests)
 NEWTON_STEPS = 4
 #: Newton steps for the mode that places the sampler's Gauss–Hermite nodes (``_gauss_hermite``):
-#: the rule holds at any centre, and after 2 steps the mode's error is below 2e-4 of the scale
-#: s at v = 1 (tests), which moves the rule's value by less than its own error
-PLACEMENT_STEPS = 2
+#: the rule holds at any centre, and after 3 steps the mode's error is below 0.01 of the
+#: scale s for every v down to the floor 1e-12 (tests; it grows as v^{−1/2}: 2 steps left
+#: 0.6 s at v = 1e-7, where a 5-node rule's value was off by nats)
+PLACEMENT_STEPS = 3
 
 
 def variance_limit(nodes: int) -> float:
@@ -110,6 +111,8 @@ def marginal_loglik(counts, eta, v, nodes: int = GH_NODES):
     finite η (callers mask cells without exposure), v > 0 a scalar; ``nodes`` of the
     Gauss–Hermite rule (``nodes_for``). jit/grad-friendly in η and v (reverse mode: the rule
     returns its value and, at the same nodes, its gradient in one pass — ``_gauss_hermite``)."""
+    if jnp.ndim(v) != 0:
+        raise ValueError(f"marginal_loglik: the term variance v must be a scalar, got shape {jnp.shape(v)}")
     return _gauss_hermite(int(nodes))(counts, eta, v)
 
 
@@ -124,12 +127,13 @@ def _gauss_hermite(nodes: int):
 
     (the second from the N(ε; 0, v) factor and the −½ log(2πv) in front) — so the backward
     pass is one product per cell. What automatic differentiation of the same sum would give,
-    at about half the cost (16 384 cells, 8 nodes, value and gradient on one core: 1.12 ms
-    against 1.68 ms; with the mode from PLACEMENT_STEPS = 2 Newton steps 0.91 ms; scratch
-    micro-benchmark under taskset -c 0). The mode and scale only place the nodes, so they
-    come from PLACEMENT_STEPS Newton steps (their error, below 2e-4 of s at v = 1, moves no
-    value by more than the rule's own error: tests/test_cell_term.py), and the logsumexp is
-    shifted by h at the centre (h ≤ h(m) at every node up to that error: no overflow)."""
+    at about two thirds of the cost (16 384 cells, 8 nodes, value and gradient on one core:
+    1.12 ms against 1.68 ms; scratch micro-benchmark under taskset -c 0). The mode and scale
+    only place the nodes, so they come from PLACEMENT_STEPS Newton steps (their error moves
+    no value by more than the rule's own error: tests/test_cell_term.py), and the logsumexp
+    is shifted by h at the placed centre, computed there exactly (the nodes nearest the
+    centre — an odd rule has one on it — keep terms of order one: no underflow; h exceeds
+    h(centre) at a node by little more than the mode's small error: no overflow)."""
     x_k, log_w = _rule(nodes)
     root2 = math.sqrt(2.0)
     rule_rows = np.stack([root2 * x_k, log_w], axis=1)  # (nodes, 2): √2 x_k, log w_k + x_k²
@@ -137,8 +141,8 @@ def _gauss_hermite(nodes: int):
     def parts(counts, eta, v):
         w = _mode_w(counts, eta, v, jnp, PLACEMENT_STEPS)
         m = v * counts - w
-        s = jnp.sqrt(v / (1.0 + w))  # (e^{η+m} + 1/v)^{−1/2}, e^{η+m} = w/v
-        shift = counts * (eta + m) - w / v - m * m / (2.0 * v)  # h(m)
+        s = jnp.sqrt(v / (1.0 + w))  # (e^{η+m} + 1/v)^{−1/2} at the mode, where e^{η+m} = w/v
+        shift = counts * (eta + m) - jnp.exp(eta + m) - m * m / (2.0 * v)  # h at the placed centre
 
         def node(sums, row):
             total, d_eta, d_sq = sums
@@ -150,7 +154,7 @@ def _gauss_hermite(nodes: int):
         # a scan over the nodes: one fused loop per node, where the same sum written out node
         # by node left XLA about 30 separate grid-sized passes (full 128² q 0.9 gradient on
         # one core, best form measured: 2.05 ms against 2.39 ms; scratch, taskset -c 0)
-        zero = jnp.zeros_like(eta)
+        zero = jnp.zeros(jnp.broadcast_shapes(jnp.shape(counts), jnp.shape(eta)), jnp.result_type(counts, eta, v))
         (total, d_eta, d_sq), _ = jax.lax.scan(node, (zero, zero, zero), jnp.asarray(rule_rows))
         value = jnp.log(root2 * s) - 0.5 * jnp.log(2.0 * math.pi * v) + shift + jnp.log(total)
         return value, (d_eta / total, d_sq / (total * 2.0 * v * v) - 0.5 / v)
@@ -165,6 +169,22 @@ def _gauss_hermite(nodes: int):
 
     rule.defvjp(parts, backward)
     return rule
+
+
+#: nodes of the reference rule a fit's rule is measured against (``rule_error``): within 1e-11
+#: nats per cell of scipy.integrate.quad up to v = 1 and 5e-9 at v = 2 (scratch run as for
+#: NODES_BY_VARIANCE; tests/test_cell_term.py checks it at the test cases)
+REFERENCE_NODES = 40
+
+
+def rule_error(counts, eta, v: float, nodes: int, chunk: int = 1 << 16) -> np.ndarray:
+    """|log p by the ``nodes``-node rule − log p by the REFERENCE_NODES rule| per cell (nats),
+    at term variance ``v``; counts, eta (n,) with finite η. For the fit's summary: the rule's
+    error on the fit's own cells."""
+    counts, eta = np.asarray(counts, float), np.asarray(eta, float)
+    rule = jax.jit(lambda c, e, v: jnp.abs(marginal_loglik(c, e, v, nodes) - marginal_loglik(c, e, v, REFERENCE_NODES)))
+    return np.concatenate([np.asarray(rule(counts[i:i + chunk], eta[i:i + chunk], float(v)))
+                           for i in range(0, counts.size, chunk)] or [np.zeros(0)])
 
 
 def posterior_mode(counts, eta, v, tol: float = 1e-13, max_steps: int = 60):
