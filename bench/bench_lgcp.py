@@ -36,7 +36,8 @@ the kept per-cell draws are thinned to the default budget as ``sceneprior fit`` 
 Data are simulated from the model's own prior-shaped field (our own numbers) on a
 Cartesian box of side 1000 m (``--field-seed``, with --one; 0 otherwise). Every fit row
 also says how its posterior meets that true field (``truth``: coverage of the 90 % and 50 %
-intervals of the cell log intensity, RMSE, mean posterior sd — ``truth_coverage``). Peak memory is the largest resident set size of the process
+intervals of the cell log intensity, RMSE, mean posterior sd — ``truth_coverage``).
+Peak memory is the largest resident set size of the process
 and its chain processes summed (sampled from /proc every 0.5 s, or ru_maxrss if larger)
 until the end of sampling — an upper bound where chain processes run, since pages they
 share (libraries) count once per process — so run one configuration per process for

@@ -53,7 +53,8 @@ def _integrals(n, eta, v):
 @pytest.mark.filterwarnings("ignore::scipy.integrate.IntegrationWarning")
 def test_marginal_and_its_gradient_match_numerical_integration():
     """log p(N | η) + log N! = log ∫ Pois(N | e^{η+ε}) N(ε; 0, v) dε + log N! by the module's
-    adaptive Gauss–Hermite rule (each rule at the largest variance it is chosen for), against scipy.integrate.quad; and its gradient
+    adaptive Gauss–Hermite rule (each rule at the largest variance it is chosen for), against
+    scipy.integrate.quad; and its gradient
     (jax, the nodes held) against the exact derivatives d/dη = N − E[e^{η+ε}] and d/dv =
     E[ε²]/(2v²) − 1/(2v) under the conditional of ε (the
     derivative of a log integral: the integrand's log derivative averaged under the

@@ -19,9 +19,9 @@ of h and s = (−h''(m))^{−1/2},
 
 x_k, w_k the Gauss–Hermite rule (numpy.polynomial.hermite.hermgauss). The rule holds for
 any centre and scale; m and s only place the nodes where the integrand is, so they are held
-fixed under differentiation (the rule computes its gradient itself, ``_gauss_hermite``): the
-gradient is the rule's derivative at fixed nodes, which estimates the integral's derivative, E[N − e^{η+ε}] in η, as
-accurately as the rule estimates the integral (tests/test_cell_term.py checks both against
+fixed under differentiation (the rule computes its gradient itself, ``_gauss_hermite``):
+the gradient is the rule's derivative at fixed nodes, which estimates the integral's
+derivative, E[N − e^{η+ε}] in η, as accurately as the rule estimates the integral (tests/test_cell_term.py checks both against
 scipy.integrate.quad). The mode in closed form: h'(m) = 0 gives m = vN − W(v e^{η+vN}), W
 the Lambert W function (Corless et al. 1996, from memory), computed by Newton on
 w + log w = log v + η + vN (``_mode_w``), and then e^{η+m} = W/v and s² = v/(1 + W).
@@ -153,8 +153,10 @@ def _gauss_hermite(nodes: int):
 
         # a scan over the nodes: one fused loop per node, where the same sum written out node
         # by node left XLA about 30 separate grid-sized passes (full 128² q 0.9 gradient on
-        # one core, best form measured: 2.05 ms against 2.39 ms; scratch, taskset -c 0)
-        zero = jnp.zeros(jnp.broadcast_shapes(jnp.shape(counts), jnp.shape(eta)), jnp.result_type(counts, eta, v))
+        # one core: 2.05 ms against 2.39 ms in one scratch run under taskset -c 0, within
+        # this machine's noise in another)
+        shape = jnp.broadcast_shapes(jnp.shape(counts), jnp.shape(eta))
+        zero = jnp.zeros(shape, jnp.result_type(counts, eta, v))
         (total, d_eta, d_sq), _ = jax.lax.scan(node, (zero, zero, zero), jnp.asarray(rule_rows))
         value = jnp.log(root2 * s) - 0.5 * jnp.log(2.0 * math.pi * v) + shift + jnp.log(total)
         return value, (d_eta / total, d_sq / (total * 2.0 * v * v) - 0.5 / v)

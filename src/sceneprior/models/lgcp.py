@@ -1105,9 +1105,9 @@ def dropped_modes(result, chunk: int = 4096) -> dict:
                     "term_variance_max": float(np.max(v)),
                     "nodes_rule": "sized at set-up for 4× the term's variance at the pilot (cell_term.nodes_for)",
                     "quadrature_error_nats": error,
-                    "quadrature_error_rule": (f"the rule's error against a {REFERENCE_NODES}-node rule, summed over the "
-                                              "exposed cells, at the posterior's largest term variance and each "
-                                              "cell's posterior mean log intensity; noted above "
+                    "quadrature_error_rule": (f"the rule's error against a {REFERENCE_NODES}-node rule, summed over "
+                                              "the exposed cells, at the posterior's largest term variance and "
+                                              "each cell's posterior mean log intensity; noted above "
                                               f"{QUADRATURE_NOTE_NATS:g} nats")}
         else:  # sampled (per-scan terms)
             pick = np.unique(np.linspace(0, sigma.size - 1, min(40, sigma.size)).round().astype(int))
