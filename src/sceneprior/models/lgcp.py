@@ -1097,7 +1097,7 @@ def dropped_modes(result, chunk: int = 4096) -> dict:
             pre = result.setup.inputs["precond"]
             counts, log_e = np.asarray(pre["counts_grid"], float), np.asarray(pre["log_exposure_grid"], float)
             exposed = np.isfinite(log_e)
-            level = np.mean(np.asarray(post["field"])[..., exposed], axis=(0, 1), dtype=float)  # f + ε
+            level = np.mean(np.asarray(post["field"]), axis=(0, 1), dtype=float)[exposed]  # f + ε, no draws' copy
             eta = log_e[exposed] + float(np.mean(post["mu"])) + level
             error = float(np.sum(rule_error(counts[exposed], eta, float(np.max(v)), nodes)))
             form = {"form": "integrated out cell by cell (models/cell_term.py) and drawn exactly afterwards",
