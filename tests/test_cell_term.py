@@ -141,3 +141,28 @@ def test_mode_is_the_lambert_w_solution():
     for n, eta, v in [(0, 8.0, 0.3), (300, math.log(300) + 6, 1.0), (5, -3.0, 0.05), (3000, 7.0, 2.0)]:
         m, w = cell_term.posterior_mode(n, eta, v)
         assert abs(n - math.exp(eta + m) - m / v) < 1e-9 * max(n, math.exp(eta + m), 1.0)
+
+
+@pytest.mark.filterwarnings("ignore::scipy.integrate.IntegrationWarning")
+def test_rule_sized_on_the_cells_is_the_fewest_within_budget():
+    """nodes_for_cells (the set-up's sizing on a fit's own cells) picks the fewest candidate
+    nodes whose summed error over the cells is within the budget at every variance given —
+    the errors measured here against scipy.integrate.quad instead of its own 40-node yardstick:
+    the chosen rule is within the budget, and every candidate with fewer nodes is not."""
+    rng = np.random.default_rng(11)
+    counts = np.concatenate([rng.poisson(60.0, 120), rng.poisson(0.5, 60)]).astype(float)
+    eta = np.log(np.maximum(counts, 0.3)) + 0.1 * rng.standard_normal(counts.size)
+    variances, budget = (0.0074, 0.03), 1e-3
+    nodes, tried = cell_term.nodes_for_cells(counts, eta, variances, budget)
+    exact = {v: np.array([_integrals(n, e, v)[0] - 0.5 * math.log(2.0 * math.pi * v) for n, e in zip(counts, eta)])
+             for v in variances}
+
+    def summed_error(k):
+        return max(float(np.sum(np.abs(np.asarray(cell_term.marginal_loglik(jnp.asarray(counts), jnp.asarray(eta), v, k))
+                                       - exact[v]))) for v in variances)
+
+    assert summed_error(nodes) <= budget, (nodes, tried)
+    fewer = [k for k in cell_term.CANDIDATE_NODES if k < nodes]
+    assert fewer, (nodes, tried)  # the case is chosen so that the fewest candidate does not suffice
+    assert all(summed_error(k) > budget for k in fewer), (nodes, tried)
+    assert tried[nodes] == pytest.approx(summed_error(nodes), rel=1e-3, abs=1e-9)

@@ -44,7 +44,7 @@ import jax.numpy as jnp
 import numpy as np
 
 __all__ = ["GH_NODES", "NEWTON_STEPS", "PLACEMENT_STEPS", "REFERENCE_NODES", "nodes_for", "variance_limit",
-           "marginal_loglik", "rule_error", "posterior_mode", "draw_terms"]
+           "marginal_loglik", "rule_error", "nodes_for_cells", "CANDIDATE_NODES", "posterior_mode", "draw_terms"]
 
 #: Gauss–Hermite nodes of the per-cell integral, by the largest term variance v expected
 #: (``nodes_for``), and the variance up to which each rule is trusted (``variance_limit``):
@@ -197,12 +197,46 @@ REFERENCE_NODES = 40
 
 def rule_error(counts, eta, v: float, nodes: int, chunk: int = 1 << 16) -> np.ndarray:
     """|log p by the ``nodes``-node rule − log p by the REFERENCE_NODES rule| per cell (nats),
-    at term variance ``v``; counts, eta (n,) with finite η. For the fit's summary: the rule's
-    error on the fit's own cells."""
+    at term variance ``v``; counts, eta (n,) with finite η. For the fit's summary and the
+    set-up's sizing (``nodes_for_cells``): the rule's error on the fit's own cells."""
+    return np.abs(_loglik_np(counts, eta, v, nodes, chunk) - _loglik_np(counts, eta, v, REFERENCE_NODES, chunk))
+
+
+def _loglik_np(counts, eta, v: float, nodes: int, chunk: int) -> np.ndarray:
+    """``marginal_loglik`` in float64 over chunks of cells, numpy in and out (one compiled
+    program per rule and chunk length)."""
     counts, eta = np.asarray(counts, float), np.asarray(eta, float)
-    rule = jax.jit(lambda c, e, v: jnp.abs(marginal_loglik(c, e, v, nodes) - marginal_loglik(c, e, v, REFERENCE_NODES)))
+    rule = _jitted_rule(int(nodes))
     return np.concatenate([np.asarray(rule(counts[i:i + chunk], eta[i:i + chunk], float(v)))
                            for i in range(0, counts.size, chunk)] or [np.zeros(0)])
+
+
+@lru_cache(maxsize=None)
+def _jitted_rule(nodes: int):
+    return jax.jit(lambda c, e, v: marginal_loglik(c, e, v, nodes))
+
+
+#: the node counts ``nodes_for_cells`` tries, fewest first (3, and the table's)
+CANDIDATE_NODES = tuple(sorted({3, *(k for _, k in NODES_BY_VARIANCE)}))
+
+
+def nodes_for_cells(counts, eta, variances, budget_nats: float) -> tuple[int, dict]:
+    """The fewest Gauss–Hermite nodes (CANDIDATE_NODES, else GH_NODES) whose error against the
+    REFERENCE_NODES rule, summed over the given cells (``rule_error``), stays within
+    ``budget_nats`` at every term variance in ``variances``: the rule sized on a fit's own
+    cells (counts, eta (n,) with finite η, e.g. at the chains' start), where the table
+    (``nodes_for``) bounds the worst cell of any data set. Why a sum: a log density off by at
+    most ε everywhere moves posterior probabilities by at most a factor e^{±2ε}. Returns
+    (nodes, {nodes tried: largest summed error over ``variances``, nats})."""
+    counts, eta = np.asarray(counts, float), np.asarray(eta, float)
+    reference = {float(v): _loglik_np(counts, eta, v, REFERENCE_NODES, 1 << 16) for v in variances}
+    tried = {}
+    for k in CANDIDATE_NODES:
+        tried[k] = max(float(np.sum(np.abs(_loglik_np(counts, eta, v, k, 1 << 16) - ref)))
+                       for v, ref in reference.items())
+        if tried[k] <= budget_nats:
+            return k, tried
+    return GH_NODES, tried
 
 
 def posterior_mode(counts, eta, v, tol: float = 1e-13, max_steps: int = 60):

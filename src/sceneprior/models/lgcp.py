@@ -60,7 +60,8 @@ from ..fields.spectral import Spectrum, periodised_report
 from ..fields.preconditioning import build_preconditioner, field_and_prior, safe_sqrt
 from ..fields.truncation import (MAP_MAX_COEFFICIENTS, ModeBasis, dense_preconditioner, dropped_mode_check,
                                  field_from_coefficients, mode_basis)
-from .cell_term import GH_NODES, REFERENCE_NODES, marginal_loglik, nodes_for, rule_error, variance_limit
+from .cell_term import (GH_NODES, REFERENCE_NODES, marginal_loglik, nodes_for, nodes_for_cells, rule_error,
+                        variance_limit)
 
 DEFAULT_PRIOR = {
     "rate_median": 10.0,
@@ -333,6 +334,11 @@ TERM_VARIANCE_FLOOR = 1e-12
 #: everywhere changes posterior probabilities by at most a factor e^{±2ε} (the ratio of the
 #: two normalised densities), so 0.01 nats keeps them within 2 %
 QUADRATURE_NOTE_NATS = 0.01
+#: the set-up sizes the per-cell quadrature for this many times the term's variance at the
+#: pilot (σ and ℓ move in the posterior: at 128² Matérn 3/2 strong q 0.9 the posterior's
+#: largest was 0.66× the pilot's on the bench's field and 2.1× on a second field; on an 8 × 8
+#: grid, whose pilot is poor, up to 16×, which the summary's check then reports)
+QUADRATURE_MARGIN = 4.0
 
 
 def _bounds(stats, prior: dict, source="model.prior"):
@@ -761,6 +767,36 @@ def conditional_mode(inputs: dict, sigma: float, ls) -> tuple[dict, dict]:
     return sites, report
 
 
+def size_quadrature(inputs: dict, start_sites: dict, sigma: float, ls, v_pilot: float) -> tuple[int, dict]:
+    """Gauss–Hermite nodes of the integrated per-cell term (``models.cell_term``). With the
+    chains' start (``conditional_mode``: the kept field and level at the pilot σ, ℓ): the fewest
+    nodes whose error, summed over the exposed cells at the start's η = log E_c + μ + f_c, is
+    within QUADRATURE_NOTE_NATS at the term variance there and at QUADRATURE_MARGIN times the
+    pilot's (``cell_term.nodes_for_cells``) — the summary's check (``dropped_modes``) measures
+    the same error again at the posterior's largest variance. Without a start: the table,
+    ``cell_term.nodes_for``, at QUADRATURE_MARGIN times the pilot's variance (its worst cell
+    of any data set within 1e-7 nats). Returns (nodes, report)."""
+    kernels, pre = inputs["kernels"], inputs["precond"]
+    table = nodes_for(QUADRATURE_MARGIN * v_pilot)
+    if "u_modes" not in start_sites or "level" not in start_sites:
+        return table, {"nodes": table, "rule": f"cell_term.nodes_for at {QUADRATURE_MARGIN:g}× the term's variance at "
+                                                "the pilot (no chains' start to size it on)"}
+    f, _, mu, v, _ = kernels.evaluate_marginal(jnp.asarray(start_sites["u_modes"]), jnp.asarray(start_sites["level"]),
+                                               jnp.asarray(sigma, float), jnp.asarray(ls, float), pre)
+    log_e = np.asarray(pre["log_exposure_grid"], float)
+    exposed = np.isfinite(log_e)
+    eta = log_e[exposed] + float(mu) + np.asarray(f, float)[exposed]
+    variances = sorted({float(v), QUADRATURE_MARGIN * max(float(v), v_pilot)})
+    nodes, tried = nodes_for_cells(np.asarray(pre["counts_grid"], float)[exposed], eta, variances,
+                                   QUADRATURE_NOTE_NATS)
+    return nodes, {"nodes": nodes, "table_nodes": table, "term_variances": variances,
+                   "summed_error_nats_by_nodes": {str(k): e for k, e in tried.items()},
+                   "rule": (f"the fewest nodes whose error against a {REFERENCE_NODES}-node rule, summed over the exposed "
+                            f"cells at the chains' start (conditional mode at the pilot σ, ℓ), is within "
+                            f"{QUADRATURE_NOTE_NATS:g} nats at the term variance there and at {QUADRATURE_MARGIN:g}× "
+                            f"the pilot's")}
+
+
 def setup(stats, prior: dict, model_spec, use_pad: bool | None = None, start_search: bool = True):
     """The model's inputs and sampler settings for binned ``stats``. ``use_pad``: force the
     padding correction on or off (None: by the data). ``start_search`` False skips the
@@ -789,8 +825,9 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None, start_sea
         report["truncation"]["mode_preconditioner"] = mode_map
         report["truncation"]["cell_term"] = {**cell_term, "source": dropped_source}
         cell_term_on = bool(cell_term["on"])
-        # the quadrature sized for 4× the term's variance at the pilot (σ, ℓ move in the posterior)
-        kernels = TruncatedFieldKernels(basis, cell_term_on, nodes_for(4.0 * cell_term["variance_at_pilot"]))
+        # the quadrature sized by the table for 4× the term's variance at the pilot (σ, ℓ move in
+        # the posterior); on the fit's own cells once the chains' start is known (size_quadrature)
+        kernels = TruncatedFieldKernels(basis, cell_term_on, nodes_for(QUADRATURE_MARGIN * cell_term["variance_at_pilot"]))
         n_latent = basis.n_latent + (1 if cell_term_on else 0)  # the term integrated out; the level sampled
         dense_mass, exclude = [("sigma", "ls_unit")], ["u_modes"]
         with_map = report["truncation"]["mode_preconditioner"]["form"] != "identity"
@@ -834,6 +871,12 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None, start_sea
     ls_pilot = lo * (hi / lo) ** u_pilot[: lo.size]
     start_sites, start_report = (conditional_mode(inputs, max(pre.pilot["sigma"], 0.05), ls_pilot) if start_search
                                  else ({}, NOT_SEARCHED))
+    if cell_term_on:  # the quadrature: on the fit's own cells at the chains' start where there is one
+        nodes, sizing = size_quadrature(inputs, start_sites, max(pre.pilot["sigma"], 0.05), ls_pilot,
+                                        cell_term["variance_at_pilot"])
+        if nodes != kernels.nodes:
+            kernels = inputs["kernels"] = TruncatedFieldKernels(basis, True, nodes)
+        report["truncation"]["cell_term"]["quadrature"] = sizing
 
     extra = {
         "kernel": kernel, "geom": spectrum, "embedding": report, "preconditioner": pre,
@@ -1101,9 +1144,10 @@ def dropped_modes(result, chunk: int = 4096) -> dict:
             eta = log_e[exposed] + float(np.mean(post["mu"])) + level
             error = float(np.sum(rule_error(counts[exposed], eta, float(np.max(v)), nodes)))
             form = {"form": "integrated out cell by cell (models/cell_term.py) and drawn exactly afterwards",
-                    "gauss_hermite_nodes": nodes, "nodes_trusted_up_to_variance": variance_limit(nodes),
+                    "gauss_hermite_nodes": nodes, "nodes_sized_for_variance": _sized_for(result.setup, nodes),
                     "term_variance_max": float(np.max(v)),
-                    "nodes_rule": "sized at set-up for 4× the term's variance at the pilot (cell_term.nodes_for)",
+                    "nodes_rule": result.setup.extra["embedding"]["truncation"]["cell_term"].get(
+                        "quadrature", {}).get("rule", "cell_term.nodes_for"),
                     "quadrature_error_nats": error,
                     "quadrature_error_rule": (f"the rule's error against a {REFERENCE_NODES}-node rule, summed over "
                                               "the exposed cells, at the posterior's largest term variance and "
@@ -1128,6 +1172,12 @@ def dropped_modes(result, chunk: int = 4096) -> dict:
     return {"treatment": "left out (model.dropped_modes)", **dropped_mode_check(basis, sigma, ls, s2)}
 
 
+def _sized_for(setup, nodes: int) -> float:
+    """The largest term variance the set-up sized the quadrature for (``size_quadrature``)."""
+    sizing = setup.extra["embedding"]["truncation"]["cell_term"].get("quadrature", {})
+    return max(sizing["term_variances"]) if "term_variances" in sizing else variance_limit(nodes)
+
+
 def summary(result) -> dict:
     ex = result.setup.extra
     g = result.stats.grid
@@ -1136,12 +1186,12 @@ def summary(result) -> dict:
     dropped = None if trunc is None else dropped_modes(result)
     notes = []
     if dropped is not None and dropped.get("quadrature_error_nats", 0.0) > QUADRATURE_NOTE_NATS:
-        notes.append(f"the per-cell term's variance reached {dropped['term_variance_max']:.3g} in the posterior, "
-                     f"beyond the {dropped['nodes_trusted_up_to_variance']:g} its {dropped['gauss_hermite_nodes']}-node "
-                     f"quadrature was sized for, where its error summed over the cells is about "
-                     f"{dropped['quadrature_error_nats']:.2g} nats (posterior probabilities within a factor of about "
-                     f"e^(±{2 * dropped['quadrature_error_nats']:.2g})); more nodes: models/cell_term.py, "
-                     "NODES_BY_VARIANCE")
+        notes.append(f"the per-cell term's variance reached {dropped['term_variance_max']:.3g} in the posterior "
+                     f"(its {dropped['gauss_hermite_nodes']}-node quadrature was sized at set-up for up to "
+                     f"{dropped['nodes_sized_for_variance']:.3g}), where the quadrature's error summed over the cells "
+                     f"is about {dropped['quadrature_error_nats']:.2g} nats (posterior probabilities within a factor "
+                     f"of about e^(±{2 * dropped['quadrature_error_nats']:.2g})); more nodes: models/lgcp.py, "
+                     "QUADRATURE_MARGIN")
     if dropped is not None and dropped["warning"]:
         notes.append(f"the truncated field (model.variance_kept = {trunc['variance_kept_target']:g}) leaves out modes "
                      f"of prior variance {dropped['dropped_variance_per_cell']:.2g} per cell, "
