@@ -174,17 +174,18 @@ def _run(kind, setup, chains, warmup, draws, dense_baseline=False, setup_s=0.0, 
     memory = TreeMemory()
     idata = run_nuts(fn, inputs, smp, progress=progress, thinning=thinning, **kw)
     complete_s = 0.0
-    if "term_variance" in idata.posterior:  # the integrated per-cell term: its exact draws, as the fit makes them
+    if not dense_baseline:  # as the fit completes the draws: the baseline (and the per-cell term's exact draws)
         t_c = time.perf_counter()
         idata = setup.extra["complete"](idata, None, setup, 1)
         complete_s = time.perf_counter() - t_c
     wall = time.perf_counter() - t + setup_s
     peak_sampling = memory.stop_mb()
     # cell log intensity μ + f: μ sampled with the integrated per-cell term (f then includes
-    # the term's draws), else μ = log ρ₀ drawn exactly from its conjugate Gamma given f (both
-    # formulations integrate ρ₀ out in the sampler); diagnostics in chunks of cells
+    # the term's draws), else μ = log ρ₀ drawn exactly from its conjugate Gamma given f —
+    # by complete_posterior, or here for the dense baseline, whose model records no log Z
+    # (both formulations integrate ρ₀ out in the sampler); diagnostics in chunks of cells
     f = np.array(idata.posterior["field"], np.float32)
-    if "term_variance" in idata.posterior:
+    if "mu" in idata.posterior:
         level = np.asarray(idata.posterior["mu"], float)
     else:
         a, b = setup.extra["gamma_prior"]
@@ -197,14 +198,16 @@ def _run(kind, setup, chains, warmup, draws, dense_baseline=False, setup_s=0.0, 
     truth = setup.extra.get("bench_truth")
     coverage = None if truth is None else truth_coverage(f, truth)
     term = None
-    if "term_variance" in idata.posterior:  # the per-cell term's variance: pilot, posterior, and the rule's limit
-        from sceneprior.models.cell_term import variance_limit
+    if "term_variance" in idata.posterior:  # the per-cell term's variance: pilot, posterior, what the rule was sized for
+        from sceneprior.models.lgcp import _sized_for
 
         tv = np.asarray(idata.posterior["term_variance"], float)
         nodes = setup.inputs["kernels"].nodes
-        term = {"at_pilot": setup.extra["embedding"]["truncation"]["cell_term"]["variance_at_pilot"],
+        cell_term = setup.extra["embedding"]["truncation"]["cell_term"]
+        term = {"at_pilot": cell_term["variance_at_pilot"],
                 "posterior_median": float(np.median(tv)), "posterior_max": float(np.max(tv)),
-                "gauss_hermite_nodes": nodes, "nodes_trusted_up_to": variance_limit(nodes)}
+                "gauss_hermite_nodes": nodes, "nodes_sized_for": _sized_for(setup, nodes),
+                "summed_error_nats_at_start": cell_term.get("quadrature", {}).get("summed_error_nats_by_nodes")}
     ss = idata.sample_stats
     # where the ESS is least: that cell's log-intensity sd, and the ESS of its two parts
     # (field value, level) on their own, beside the hyperparameters' ESS
@@ -222,7 +225,8 @@ def _run(kind, setup, chains, warmup, draws, dense_baseline=False, setup_s=0.0, 
     return {"wall_s": wall, "setup_s": setup_s, "steps_per_draw": float(np.mean(ss["n_steps"])),
             "min_ess_bulk": cd["ess_bulk_min"], "max_rhat": cd["r_hat_max"] if chains > 1 else None,
             "divergences": int(np.sum(ss["diverging"])), "ess_per_s": cd["ess_bulk_min"] / wall,
-            "peak_rss_mb": peak_sampling, "thinning": thinning, "term_draws_s": complete_s, "term_variance": term,
+            "peak_rss_mb": peak_sampling, "thinning": thinning,
+            "term_draws_s": complete_s if "term_variance" in idata.posterior else 0.0, "term_variance": term,
             "truth": coverage,
             "chains": chains, "warmup": warmup, "draws": draws, "least_ess": worst}
 

@@ -123,7 +123,7 @@ def lgcp_model(counts, exposure, window_area, obs, gamma_a, gamma_b, sigma_scale
         numpyro.factor("field_prior", log_prior_u + 0.5 * jnp.sum(u_modes * u_modes))
         # ρ₀ = e^μ ~ Gamma(a, b): log density of μ, a μ − b e^μ (+ const); μ = m̂ + τ·level − w̃ᵀf
         # has unit Jacobian in (u, level) up to the constant τ, so level's N(0, 1) is replaced
-        numpyro.factor("baseline_prior", gamma_a * mu - gamma_b * jnp.exp(mu) + 0.5 * level**2)
+        numpyro.factor("baseline_prior", baseline_log_prior(mu, gamma_a, gamma_b) + 0.5 * level**2)
         numpyro.factor("loglik", loglik)
         numpyro.deterministic("field", f.astype(jnp.float32))  # the kept field; ε added by complete_posterior
         numpyro.deterministic("mu", mu)
@@ -158,6 +158,12 @@ def lgcp_model(counts, exposure, window_area, obs, gamma_a, gamma_b, sigma_scale
     base = jnp.exp(mu + log_w)  # Λ = Σ_c λ_c |c ∩ W|
     mult = ppp_factor(total * mu + _count_dot(f, precond, obs, counts), base, scan_terms)
     numpyro.deterministic("rate", base * mult)
+
+
+def baseline_log_prior(mu, gamma_a, gamma_b):
+    """log density of μ = log ρ₀ for ρ₀ ~ Gamma(a, b), up to a constant: a μ − b e^μ (the
+    Gamma density in ρ₀ times the Jacobian e^μ)."""
+    return gamma_a * mu - gamma_b * jnp.exp(mu)
 
 
 def grid_data(counts, exposure, obs, n_cells) -> dict:
@@ -756,7 +762,7 @@ def conditional_mode(inputs: dict, sigma: float, ls) -> tuple[dict, dict]:
     def negative(x):
         if cells:  # the model's density with the term integrated out, μ through the level (lgcp_model)
             f, log_prior_u, mu, _, loglik = kernels.evaluate_marginal(x[:K], x[K], sig, lsj, pre)
-            return -(log_prior_u + a * mu - b * jnp.exp(mu) + loglik)
+            return -(log_prior_u + baseline_log_prior(mu, a, b) + loglik)
         u = x[:K] if truncated else kernels.rotate(x[0], x[1:], pre["householder"])
         f, log_prior_u, log_z, _ = kernels.evaluate(u, sig, lsj, pre, exposure, obs, area)
         return -(log_prior_u + integrated_loglik(f, log_z, pre, obs, counts, a, b))
