@@ -665,6 +665,13 @@ def test_per_cell_term_through_the_pipeline(tmp_path, monkeypatch, overdispersio
     lg = s[res.model.name]["lgcp"] if overdispersion else s["lgcp"]  # a composite kind nests the base's section
     term = lg["embedding"]["truncation"]["cell_term"]
     assert term["on"] and term["option"] == "auto" and term["screen"]["needed"]
+    # the quadrature sized on the run's own cells at the chains' start: the fewest candidate
+    # nodes within the budget (lgcp.size_quadrature; the choice itself: tests/test_cell_term.py)
+    sized = term["quadrature"]
+    errors = {int(k): e for k, e in sized["summed_error_nats_by_nodes"].items()}
+    assert sized["nodes"] == res.setup.inputs["kernels"].nodes == max(errors)
+    assert errors[sized["nodes"]] <= lgcp.QUADRATURE_NOTE_NATS
+    assert all(e > lgcp.QUADRATURE_NOTE_NATS for k, e in errors.items() if k < sized["nodes"])
     dm = lg["field_parameters"]["dropped_modes"]
     assert dm["treatment"].startswith("per-cell term") and dm["term_variance_per_cell"] > 0 and not dm["warning"]
     described = lg["parametrisation"]["description"]
@@ -677,6 +684,8 @@ def test_per_cell_term_through_the_pipeline(tmp_path, monkeypatch, overdispersio
     else:  # the written field is the kept field plus exact draws of ε: μ + f + ε, with the rate from it
         assert "level" in post and "u_cells" not in post and dm["form"].startswith("integrated out")
         assert 0.0 <= dm["quadrature_error_nats"] < lgcp.QUADRATURE_NOTE_NATS
+        assert dm["gauss_hermite_nodes"] == sized["nodes"] and dm["nodes_rule"] == sized["rule"]
+        assert dm["nodes_sized_for_variance"] == max(sized["term_variances"])
         assert post["field"].attrs["includes_cell_term"]
         before = np.asarray(post["field"]).copy()
         lgcp.complete_posterior(res.idata, res.stats, res.setup, 3)  # a second call adds nothing

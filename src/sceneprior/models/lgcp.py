@@ -786,7 +786,8 @@ def size_quadrature(inputs: dict, start_sites: dict, sigma: float, ls, v_pilot: 
     table = nodes_for(QUADRATURE_MARGIN * v_pilot)
     if "u_modes" not in start_sites or "level" not in start_sites:
         return table, {"nodes": table, "rule": f"cell_term.nodes_for at {QUADRATURE_MARGIN:g}× the term's variance at "
-                                                "the pilot (no chains' start to size it on)"}
+                                                "the pilot (no chains' start to size it on: no start search, or it "
+                                                "failed)"}
     f, _, mu, v, _ = kernels.evaluate_marginal(jnp.asarray(start_sites["u_modes"]), jnp.asarray(start_sites["level"]),
                                                jnp.asarray(sigma, float), jnp.asarray(ls, float), pre)
     log_e = np.asarray(pre["log_exposure_grid"], float)
@@ -877,9 +878,10 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None, start_sea
     ls_pilot = lo * (hi / lo) ** u_pilot[: lo.size]
     start_sites, start_report = (conditional_mode(inputs, max(pre.pilot["sigma"], 0.05), ls_pilot) if start_search
                                  else ({}, NOT_SEARCHED))
-    if cell_term_on:  # the quadrature: on the fit's own cells at the chains' start where there is one
-        nodes, sizing = size_quadrature(inputs, start_sites, max(pre.pilot["sigma"], 0.05), ls_pilot,
-                                        cell_term["variance_at_pilot"])
+    if cell_term_on:  # the quadrature: on the fit's own cells at the chains' start where the search found one
+        found = start_search and start_report.get("log_density_gain_nats", 0.0) > 0.0  # mode_search: 0 if it failed
+        nodes, sizing = size_quadrature(inputs, start_sites if found else {}, max(pre.pilot["sigma"], 0.05),
+                                        ls_pilot, cell_term["variance_at_pilot"])
         if nodes != kernels.nodes:
             kernels = inputs["kernels"] = TruncatedFieldKernels(basis, True, nodes)
         report["truncation"]["cell_term"]["quadrature"] = sizing
