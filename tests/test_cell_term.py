@@ -165,4 +165,11 @@ def test_rule_sized_on_the_cells_is_the_fewest_within_budget():
     fewer = [k for k in cell_term.CANDIDATE_NODES if k < nodes]
     assert fewer, (nodes, tried)  # the case is chosen so that the fewest candidate does not suffice
     assert all(summed_error(k) > budget for k in fewer), (nodes, tried)
-    assert tried[nodes] == pytest.approx(summed_error(nodes), rel=1e-3, abs=1e-9)
+    # the yardstick (the 40-node rule) measures the candidates' errors as quad does
+    for k in tried:
+        assert tried[k] == pytest.approx(summed_error(k), rel=1e-3, abs=1e-9), k
+    # a budget no rule meets: every candidate tried, the most nodes returned, its error reported
+    nodes, tried = cell_term.nodes_for_cells(counts, eta, variances, 1e-15)
+    assert nodes == cell_term.GH_NODES and sorted(tried) == list(cell_term.CANDIDATE_NODES) and tried[nodes] > 1e-15
+    with pytest.raises(ValueError, match="no term variance"):
+        cell_term.nodes_for_cells(counts, eta, (), budget)

@@ -12,7 +12,8 @@ so the sampler needs no coordinate per cell. Up to the constant −log N_c!,
     log p = log ∫ e^{h(ε)} dε − ½ log(2πv),   h(ε) = N(η + ε) − e^{η+ε} − ε²/(2v),
 
 h strictly concave (h'' = −e^{η+ε} − 1/v). The integral is taken by adaptive Gauss–Hermite
-quadrature (Liu & Pierce 1994, from memory; ``nodes_for`` sizes the rule): with the mode m
+quadrature (Liu & Pierce 1994, from memory; ``nodes_for_cells`` sizes the rule on a fit's own
+cells, ``nodes_for`` for any data set): with the mode m
 of h and s = (−h''(m))^{−1/2},
 
     ∫ e^{h} dε = √2 s ∫ e^{−x²} e^{h(m + √2 s x) + x²} dx ≈ √2 s Σ_k w_k e^{h(m + √2 s x_k) + x_k²},
@@ -54,8 +55,8 @@ __all__ = ["GH_NODES", "NEWTON_STEPS", "PLACEMENT_STEPS", "REFERENCE_NODES", "no
 #: 4e-8 at 0.06, 2e-7 at 0.1; 8 nodes 4e-8 at 0.1, 1e-6 at 0.3; 11 nodes 4e-8 at 0.3, 8e-7 at
 #: 0.6; 15 nodes 2e-8 at 0.6 (6 nodes are no better than 5, nor 12 than 11: an odd rule has a
 #: node at the mode) — the largest with few counts and a large v, where the integrand is
-#: skewed (tests/test_cell_term.py checks value and gradient at each limit). Each node costs
-#: two exponentials per cell and gradient.
+#: skewed (tests/test_cell_term.py checks value and gradient at each limit). Each pair of
+#: nodes costs three exponentials per cell and gradient, the centre node of an odd rule none.
 NODES_BY_VARIANCE = ((0.012, 5), (0.06, 7), (0.1, 8), (0.3, 11), (0.6, 15))
 GH_NODES = 16  # beyond the table's variances (its error grows with v: 2e-7 at v = 1)
 #: Newton steps for the Lambert W of the integrand's mode to float64 round-off (``_mode_w``;
@@ -173,7 +174,7 @@ def _gauss_hermite(nodes: int):
         else:  # the node at the centre: h there is the shift, so its term is the weight itself
             p0 = jnp.full(shape, math.exp(centre_log_w), dtype)
             sums = (p0, p0 * (counts - top), p0 * (m * m))
-        (total, d_eta, d_sq), _ = jax.lax.scan(pair, sums, jnp.asarray(pair_rows))
+        (total, d_eta, d_sq), _ = jax.lax.scan(pair, sums, jnp.asarray(pair_rows, dtype))
         value = jnp.log(root2 * s) - 0.5 * jnp.log(2.0 * math.pi * v) + shift + jnp.log(total)
         return value, (d_eta / total, d_sq / (total * 2.0 * v * v) - 0.5 / v)
 
@@ -216,27 +217,32 @@ def _jitted_rule(nodes: int):
     return jax.jit(lambda c, e, v: marginal_loglik(c, e, v, nodes))
 
 
-#: the node counts ``nodes_for_cells`` tries, fewest first (3, and the table's)
-CANDIDATE_NODES = tuple(sorted({3, *(k for _, k in NODES_BY_VARIANCE)}))
+#: the node counts ``nodes_for_cells`` tries, fewest first (3, the table's, GH_NODES)
+CANDIDATE_NODES = tuple(sorted({3, *(k for _, k in NODES_BY_VARIANCE), GH_NODES}))
 
 
 def nodes_for_cells(counts, eta, variances, budget_nats: float) -> tuple[int, dict]:
-    """The fewest Gauss–Hermite nodes (CANDIDATE_NODES, else GH_NODES) whose error against the
-    REFERENCE_NODES rule, summed over the given cells (``rule_error``), stays within
-    ``budget_nats`` at every term variance in ``variances``: the rule sized on a fit's own
-    cells (counts, eta (n,) with finite η, e.g. at the chains' start), where the table
-    (``nodes_for``) bounds the worst cell of any data set. Why a sum: a log density off by at
-    most ε everywhere moves posterior probabilities by at most a factor e^{±2ε}. Returns
-    (nodes, {nodes tried: largest summed error over ``variances``, nats})."""
+    """The fewest Gauss–Hermite nodes (CANDIDATE_NODES) whose error against the REFERENCE_NODES
+    rule, summed over the given cells (``rule_error``), stays within ``budget_nats`` at every
+    term variance in ``variances``: the rule sized on a fit's own cells (counts, eta (n,) with
+    finite η, e.g. at the chains' start), where the table (``nodes_for``) bounds the worst
+    cell of any data set. Why a sum: a log density off by at most ε everywhere moves
+    posterior probabilities by at most a factor e^{±2ε}. A non-finite error counts as beyond
+    the budget. Returns (nodes, {nodes tried: largest summed error over ``variances``, nats,
+    None if not finite}); when no candidate is within the budget, the most nodes
+    (GH_NODES), which the caller reports."""
     counts, eta = np.asarray(counts, float), np.asarray(eta, float)
-    reference = {float(v): _loglik_np(counts, eta, v, REFERENCE_NODES, 1 << 16) for v in variances}
+    variances = sorted({float(v) for v in variances})
+    if not variances:
+        raise ValueError("nodes_for_cells: no term variance to size the rule at")
+    reference = {v: _loglik_np(counts, eta, v, REFERENCE_NODES, 1 << 16) for v in variances}
     tried = {}
     for k in CANDIDATE_NODES:
-        tried[k] = max(float(np.sum(np.abs(_loglik_np(counts, eta, v, k, 1 << 16) - ref)))
-                       for v, ref in reference.items())
-        if tried[k] <= budget_nats:
+        error = max(float(np.sum(np.abs(_loglik_np(counts, eta, v, k, 1 << 16) - ref))) for v, ref in reference.items())
+        tried[k] = error if math.isfinite(error) else None
+        if tried[k] is not None and error <= budget_nats:
             return k, tried
-    return GH_NODES, tried
+    return CANDIDATE_NODES[-1], tried
 
 
 def posterior_mode(counts, eta, v, tol: float = 1e-13, max_steps: int = 60):

@@ -275,7 +275,7 @@ class TruncatedFieldKernels:
 
     basis: ModeBasis
     cell_term: bool = False
-    nodes: int = GH_NODES  # Gauss–Hermite nodes of the integrated term (cell_term.nodes_for)
+    nodes: int = GH_NODES  # Gauss–Hermite nodes of the integrated term (size_quadrature)
 
     @property
     def n_latent(self):
@@ -796,12 +796,14 @@ def size_quadrature(inputs: dict, start_sites: dict, sigma: float, ls, v_pilot: 
     variances = sorted({float(v), QUADRATURE_MARGIN * max(float(v), v_pilot)})
     nodes, tried = nodes_for_cells(np.asarray(pre["counts_grid"], float)[exposed], eta, variances,
                                    QUADRATURE_NOTE_NATS)
-    return nodes, {"nodes": nodes, "table_nodes": table, "term_variances": variances,
+    within = tried.get(nodes) is not None and tried[nodes] <= QUADRATURE_NOTE_NATS
+    return nodes, {"nodes": nodes, "table_nodes": table, "term_variances": variances, "within_budget": within,
                    "summed_error_nats_by_nodes": {str(k): e for k, e in tried.items()},
                    "rule": (f"the fewest nodes whose error against a {REFERENCE_NODES}-node rule, summed over the exposed "
                             f"cells at the chains' start (conditional mode at the pilot σ, ℓ), is within "
                             f"{QUADRATURE_NOTE_NATS:g} nats at the term variance there and at {QUADRATURE_MARGIN:g}× "
-                            f"the pilot's")}
+                            f"the larger of it and the pilot's (used where the term is integrated out: without "
+                            f"per-scan terms)")}
 
 
 def setup(stats, prior: dict, model_spec, use_pad: bool | None = None, start_search: bool = True):
@@ -885,6 +887,12 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None, start_sea
         if nodes != kernels.nodes:
             kernels = inputs["kernels"] = TruncatedFieldKernels(basis, True, nodes)
         report["truncation"]["cell_term"]["quadrature"] = sizing
+        if not sizing.get("within_budget", True):
+            worst = sizing["summed_error_nats_by_nodes"][str(nodes)]
+            advice.append(f"the per-cell term's quadrature, at its most nodes ({nodes}), is off by "
+                          f"{'a non-finite amount' if worst is None else f'{worst:.2g} nats'} summed over the cells at "
+                          f"the chains' start, beyond the {QUADRATURE_NOTE_NATS:g} it is sized for (summary.json: "
+                          f"lgcp.embedding.truncation.cell_term.quadrature)")
 
     extra = {
         "kernel": kernel, "geom": spectrum, "embedding": report, "preconditioner": pre,
@@ -1152,7 +1160,7 @@ def dropped_modes(result, chunk: int = 4096) -> dict:
             eta = log_e[exposed] + float(np.mean(post["mu"])) + level
             error = float(np.sum(rule_error(counts[exposed], eta, float(np.max(v)), nodes)))
             form = {"form": "integrated out cell by cell (models/cell_term.py) and drawn exactly afterwards",
-                    "gauss_hermite_nodes": nodes, "nodes_sized_for_variance": _sized_for(result.setup, nodes),
+                    "gauss_hermite_nodes": nodes, "nodes_sized_for_variance": quadrature_sized_for(result.setup, nodes),
                     "term_variance_max": float(np.max(v)),
                     "nodes_rule": result.setup.extra["embedding"]["truncation"]["cell_term"].get(
                         "quadrature", {}).get("rule", "cell_term.nodes_for"),
@@ -1180,7 +1188,7 @@ def dropped_modes(result, chunk: int = 4096) -> dict:
     return {"treatment": "left out (model.dropped_modes)", **dropped_mode_check(basis, sigma, ls, s2)}
 
 
-def _sized_for(setup, nodes: int) -> float:
+def quadrature_sized_for(setup, nodes: int) -> float:
     """The largest term variance the set-up sized the quadrature for (``size_quadrature``)."""
     sizing = setup.extra["embedding"]["truncation"]["cell_term"].get("quadrature", {})
     return max(sizing["term_variances"]) if "term_variances" in sizing else variance_limit(nodes)
