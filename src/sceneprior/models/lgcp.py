@@ -341,7 +341,7 @@ TERM_VARIANCE_FLOOR = 1e-12
 #: two normalised densities), so 0.01 nats keeps them within 2 %
 QUADRATURE_NOTE_NATS = 0.01
 #: the set-up sizes the per-cell quadrature for this many times the term's variance at the
-#: pilot (σ and ℓ move in the posterior: at 128² Matérn 3/2 strong q 0.9 the posterior's
+#: chains' start or the pilot, the larger (σ and ℓ move in the posterior: at 128² Matérn 3/2 strong q 0.9 the posterior's
 #: largest was 0.66× the pilot's on the bench's field and 2.1× on a second field; on an 8 × 8
 #: grid, whose pilot is poor, up to 16×, which the summary's check then reports)
 QUADRATURE_MARGIN = 4.0
@@ -778,7 +778,8 @@ def size_quadrature(inputs: dict, start_sites: dict, sigma: float, ls, v_pilot: 
     chains' start (``conditional_mode``: the kept field and level at the pilot σ, ℓ): the fewest
     nodes whose error, summed over the exposed cells at the start's η = log E_c + μ + f_c, is
     within QUADRATURE_NOTE_NATS at the term variance there and at QUADRATURE_MARGIN times the
-    pilot's (``cell_term.nodes_for_cells``) — the summary's check (``dropped_modes``) measures
+    larger of it and the pilot's (``cell_term.nodes_for_cells``; the most nodes, reported as
+    beyond the budget, if none is within it) — the summary's check (``dropped_modes``) measures
     the same error again at the posterior's largest variance. Without a start: the table,
     ``cell_term.nodes_for``, at QUADRATURE_MARGIN times the pilot's variance (its worst cell
     of any data set within 1e-7 nats). Returns (nodes, report)."""
