@@ -31,11 +31,13 @@ SHARED_FIXTURE_FILES = {"test_demo": "demo_run", "test_export": "demo_run", "tes
 #: seconds each scheduling unit (a test file, or a SHARED_FIXTURE_FILES group) took on one
 #: worker: one local run of `pytest -v --durations=0` (setup + call + teardown summed per
 #: file), 2026-12-04, warm compile cache. Only the order matters: the longest units start
-#: first, so the two workers end close together. Files not listed run last.
+#: first, so the two workers end close together. Files not listed run last. test_cell_term:
+#: 22.6 s summed over its four tests in a later `pytest -n0 tests/test_cell_term.py
+#: --durations=5` (fifteenth session; 30.5 s for its first test alone in that session's CI).
 SCOPE_SECONDS = {"test_lgcp_sites": 142, "test_lgcp": 138, "test_truncation": 300, "rain_runs": 84,
                  "test_chains": 70, "demo_run": 70, "test_mixture": 52, "test_detection": 34,
                  "test_birth": 28, "test_compare": 19, "test_gates": 14, "test_nuts_tree": 14,
-                 "test_objects": 10, "test_fields": 10, "test_cell_term": 8, "test_uniform": 10, "test_loglinear": 7}
+                 "test_objects": 10, "test_fields": 10, "test_cell_term": 23, "test_uniform": 10, "test_loglinear": 7}
 
 
 @pytest.hookimpl(optionalhook=True)  # a pytest-xdist hook: run without xdist, it is not called
