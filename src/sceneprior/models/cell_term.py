@@ -196,7 +196,11 @@ def _gauss_hermite(nodes: int):
 REFERENCE_NODES = 40
 
 
-def rule_error(counts, eta, v: float, nodes: int, chunk: int = 1 << 16) -> np.ndarray:
+#: cells per call of the compiled rule in ``rule_error`` and ``nodes_for_cells`` (numpy in and out)
+CHUNK_CELLS = 1 << 16
+
+
+def rule_error(counts, eta, v: float, nodes: int, chunk: int = CHUNK_CELLS) -> np.ndarray:
     """|log p by the ``nodes``-node rule − log p by the REFERENCE_NODES rule| per cell (nats),
     at term variance ``v``; counts, eta (n,) with finite η. For the fit's summary and the
     set-up's sizing (``nodes_for_cells``): the rule's error on the fit's own cells."""
@@ -235,10 +239,12 @@ def nodes_for_cells(counts, eta, variances, budget_nats: float) -> tuple[int, di
     variances = sorted({float(v) for v in variances})
     if not variances:
         raise ValueError("nodes_for_cells: no term variance to size the rule at")
-    reference = {v: _loglik_np(counts, eta, v, REFERENCE_NODES, 1 << 16) for v in variances}
+    reference = {v: _loglik_np(counts, eta, v, REFERENCE_NODES, CHUNK_CELLS) for v in variances}
     tried = {}
     for k in CANDIDATE_NODES:
-        error = max(float(np.sum(np.abs(_loglik_np(counts, eta, v, k, 1 << 16) - ref))) for v, ref in reference.items())
+        # rule_error's difference, with each variance's reference computed once for every candidate
+        error = max(float(np.sum(np.abs(_loglik_np(counts, eta, v, k, CHUNK_CELLS) - ref)))
+                    for v, ref in reference.items())
         tried[k] = error if math.isfinite(error) else None
         if tried[k] is not None and error <= budget_nats:
             return k, tried

@@ -773,6 +773,14 @@ def conditional_mode(inputs: dict, sigma: float, ls) -> tuple[dict, dict]:
     return sites, report
 
 
+def exposed_cells(pre: dict, mu: float, field) -> tuple[np.ndarray, np.ndarray]:
+    """(N_c, η_c = log E_c + μ + f_c) on the cells with exposure, from the model arrays
+    (``grid_data``) and a field on every grid cell: the per-cell term's inputs, numpy."""
+    log_e = np.asarray(pre["log_exposure_grid"], float)
+    exposed = np.isfinite(log_e)
+    return np.asarray(pre["counts_grid"], float)[exposed], log_e[exposed] + mu + np.asarray(field, float)[exposed]
+
+
 def size_quadrature(inputs: dict, start_sites: dict, sigma: float, ls, v_pilot: float) -> tuple[int, dict]:
     """Gauss–Hermite nodes of the integrated per-cell term (``models.cell_term``). With the
     chains' start (``conditional_mode``: the kept field and level at the pilot σ, ℓ): the fewest
@@ -791,11 +799,8 @@ def size_quadrature(inputs: dict, start_sites: dict, sigma: float, ls, v_pilot: 
                                                 "failed)"}
     f, _, mu, v, _ = kernels.evaluate_marginal(jnp.asarray(start_sites["u_modes"]), jnp.asarray(start_sites["level"]),
                                                jnp.asarray(sigma, float), jnp.asarray(ls, float), pre)
-    log_e = np.asarray(pre["log_exposure_grid"], float)
-    exposed = np.isfinite(log_e)
-    eta = log_e[exposed] + float(mu) + np.asarray(f, float)[exposed]
     variances = sorted({float(v), QUADRATURE_MARGIN * max(float(v), v_pilot)})
-    nodes, tried = nodes_for_cells(np.asarray(pre["counts_grid"], float)[exposed], eta, variances,
+    nodes, tried = nodes_for_cells(*exposed_cells(pre, float(mu), np.asarray(f, float)), variances,
                                    QUADRATURE_NOTE_NATS)
     within = tried.get(nodes) is not None and tried[nodes] <= QUADRATURE_NOTE_NATS
     return nodes, {"nodes": nodes, "table_nodes": table, "term_variances": variances, "within_budget": within,
@@ -1154,12 +1159,9 @@ def dropped_modes(result, chunk: int = 4096) -> dict:
         if "term_variance" in post:  # integrated out: the model recorded v per draw
             v = np.asarray(post["term_variance"], float).reshape(-1)
             nodes = result.setup.inputs["kernels"].nodes
-            pre = result.setup.inputs["precond"]
-            counts, log_e = np.asarray(pre["counts_grid"], float), np.asarray(pre["log_exposure_grid"], float)
-            exposed = np.isfinite(log_e)
-            level = np.mean(np.asarray(post["field"]), axis=(0, 1), dtype=float)[exposed]  # f + ε, no draws' copy
-            eta = log_e[exposed] + float(np.mean(post["mu"])) + level
-            error = float(np.sum(rule_error(counts[exposed], eta, float(np.max(v)), nodes)))
+            level = np.mean(np.asarray(post["field"]), axis=(0, 1), dtype=float)  # f + ε per cell, no draws' copy
+            counts, eta = exposed_cells(result.setup.inputs["precond"], float(np.mean(post["mu"])), level)
+            error = float(np.sum(rule_error(counts, eta, float(np.max(v)), nodes)))
             form = {"form": "integrated out cell by cell (models/cell_term.py) and drawn exactly afterwards",
                     "gauss_hermite_nodes": nodes, "nodes_sized_for_variance": quadrature_sized_for(result.setup, nodes),
                     "term_variance_max": float(np.max(v)),
