@@ -199,6 +199,7 @@ def _run(kind, setup, chains, warmup, draws, dense_baseline=False, setup_s=0.0, 
     coverage = None if truth is None else truth_coverage(f, truth)
     term = None
     if "term_variance" in idata.posterior:  # the per-cell term's variance: pilot, posterior, what the rule was sized for
+        from sceneprior.models.cell_term import rule_name
         from sceneprior.models.lgcp import quadrature_sized_for
 
         tv = np.asarray(idata.posterior["term_variance"], float)
@@ -206,7 +207,7 @@ def _run(kind, setup, chains, warmup, draws, dense_baseline=False, setup_s=0.0, 
         cell_term = setup.extra["embedding"]["truncation"]["cell_term"]
         term = {"at_pilot": cell_term["variance_at_pilot"],
                 "posterior_median": float(np.median(tv)), "posterior_max": float(np.max(tv)),
-                "gauss_hermite_nodes": nodes, "nodes_sized_for_variance": quadrature_sized_for(setup, nodes),
+                "quadrature": rule_name(nodes), "nodes_sized_for_variance": quadrature_sized_for(setup, nodes),
                 "summed_error_nats_at_start": cell_term.get("quadrature", {}).get("summed_error_nats_by_nodes")}
     ss = idata.sample_stats
     # where the ESS is least: that cell's log-intensity sd, and the ESS of its two parts

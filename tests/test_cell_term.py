@@ -124,26 +124,64 @@ def test_term_draws_follow_their_exact_conditional():
 
 
 def test_mode_is_the_lambert_w_solution():
-    """The integrand's mode (NEWTON_STEPS Newton steps on w + log w = L) against
-    scipy.special.lambertw: W(e^L) for L from −50 to 10⁴, to float64 round-off, and the mode
-    m = vN − W(v e^{η+vN}) solves h'(m) = N − e^{η+m} − m/v = 0."""
+    """The integrand's mode: ``lambert_w`` (the sampler's, Halley steps on log w) against
+    scipy.special.lambertw, W(e^L) for L from −50 to 10⁴, to float64 round-off; its derivative
+    W/(1 + W) (implicit differentiation) against central differences of scipy's; and the
+    numpy mode of the draws (``posterior_mode``) solves h'(m) = N − e^{η+m} − m/v = 0."""
     import scipy.special
 
-    L = np.concatenate([np.linspace(-50.0, 5.0, 221), np.geomspace(5.0, 1e4, 60)])
-    w = np.asarray(cell_term._mode_w(jnp.zeros_like(L), jnp.asarray(L), 1.0, jnp, cell_term.NEWTON_STEPS))
+    L = np.concatenate([np.linspace(-50.0, 5.0, 2201), np.geomspace(5.0, 1e4, 600)])
+    w = np.asarray(jax.jit(cell_term.lambert_w)(jnp.asarray(L)))
     ref = np.array([scipy.special.lambertw(np.exp(x)).real if x < 700 else np.nan for x in L])
     big = ~np.isfinite(ref)  # e^L overflows: W from its defining equation instead
-    ref[big] = [scipy.optimize.brentq(lambda y, x=x: y + math.log(y) - x, 1.0, x) for x in L[big]]
+    ref[big] = [scipy.optimize.brentq(lambda y, x=x: y + math.log(y) - x, 1.0, x, xtol=1e-14, rtol=1e-15)
+                for x in L[big]]
     np.testing.assert_allclose(w, ref, rtol=1e-13, atol=0.0)
-    # the sampler's node placement (PLACEMENT_STEPS): the mode's error in units of the rule's
-    # scale s = √(v/(1 + w)) stays below 0.01 down to the variance floor (w depends on L
-    # alone; the value and gradient tests above run with this placement)
-    placed = np.asarray(cell_term._mode_w(jnp.zeros_like(L), jnp.asarray(L), 1.0, jnp, cell_term.PLACEMENT_STEPS))
-    for v in (1.0, 1e-4, 1e-8, 1e-12):
-        assert np.max(np.abs(placed - ref) * np.sqrt((1.0 + ref) / v)) < 0.01, v
+    grad = np.asarray(jax.jit(jax.vmap(jax.grad(cell_term.lambert_w)))(jnp.asarray(L)))
+    small = L < 600
+    h = 1e-5
+    lw = scipy.special.lambertw
+    central = np.array([(lw(np.exp(x + h)).real - lw(np.exp(x - h)).real) / (2 * h) for x in L[small]])
+    np.testing.assert_allclose(grad[small], central, rtol=1e-7, atol=1e-300)
     for n, eta, v in [(0, 8.0, 0.3), (300, math.log(300) + 6, 1.0), (5, -3.0, 0.05), (3000, 7.0, 2.0)]:
         m, w = cell_term.posterior_mode(n, eta, v)
         assert abs(n - math.exp(eta + m) - m / v) < 1e-9 * max(n, math.exp(eta + m), 1.0)
+
+
+@pytest.mark.filterwarnings("ignore::scipy.integrate.IntegrationWarning")
+def test_laplace_expansion_matches_numerical_integration():
+    """The second-order Laplace expansion (``cell_term.laplace``, the rule LAPLACE) against
+    scipy.integrate.quad: where the data are strong (t = v/(1 + W) small) its value is within
+    1e-8 nats and its gradient (automatic differentiation through lambert_w) matches d/dη =
+    N − E[e^{η+ε}] (quad, as in the Gauss–Hermite test) and d/dv (central differences of
+    quad's values); and its error falls as t³ when v halves
+    at a fixed W (ratios 6–10 per halving), which a wrong second-order coefficient would
+    turn into t² (ratio 4) — Laplace's method and its expansion: module docstring."""
+    grad = jax.jit(jax.grad(lambda eta, v, n: cell_term.marginal_loglik(n[None], eta[None], v, cell_term.LAPLACE)[0],
+                            argnums=(0, 1)))
+    for n in (60, 2000):
+        for dt in (-0.5, 0.0, 0.5):
+            for v in (0.003, 0.03):
+                eta = math.log(n) + dt
+                log_z, mean, rate = _integrals(n, eta, v)
+                ref = log_z - 0.5 * math.log(2.0 * math.pi * v)
+                got = float(cell_term.laplace(jnp.array([float(n)]), jnp.array([eta]), v)[0])
+                assert abs(got - ref) < 1e-8, (n, dt, v, got - ref)
+                g_eta, g_v = (float(x) for x in grad(jnp.asarray(eta), jnp.asarray(v), jnp.asarray(float(n))))
+                assert g_eta == pytest.approx(n - rate, rel=1e-6, abs=1e-6 * n), (n, dt, v)
+                # d/dv by central differences of quad's values
+                up, down = (_integrals(n, eta, v * (1 + s), moments=False)[0] for s in (1e-6, -1e-6))
+                d_v = (up - down) / (2e-6 * v)
+                assert g_v == pytest.approx(d_v - 0.5 / v, rel=1e-5, abs=1e-6 / v), (n, dt, v)
+    for w in (0.5, 2.0):  # the mode at ε = 0: N = e^η = w/v
+        errors = []
+        for v in (0.008, 0.016, 0.032, 0.064):
+            n = w / v
+            eta = math.log(n)
+            ref = _integrals(n, eta, v, moments=False)[0] - 0.5 * math.log(2.0 * math.pi * v)
+            errors.append(abs(float(cell_term.laplace(jnp.array([n]), jnp.array([eta]), v)[0]) - ref))
+        ratios = np.array(errors[1:]) / np.array(errors[:-1])
+        assert np.all((ratios > 6.0) & (ratios < 10.0)), (w, errors)
 
 
 @pytest.mark.filterwarnings("ignore::scipy.integrate.IntegrationWarning")
@@ -155,7 +193,9 @@ def test_rule_sized_on_the_cells_is_the_fewest_within_budget():
     rng = np.random.default_rng(11)
     counts = np.concatenate([rng.poisson(60.0, 60), rng.poisson(0.5, 30)]).astype(float)
     eta = np.log(np.maximum(counts, 0.3)) + 0.1 * rng.standard_normal(counts.size)
-    variances, budget = (0.0074, 0.03), 1e-3
+    # few counts at large term variances, where the Laplace expansion and 3 and 5 nodes miss the
+    # budget (the choice: 7 nodes)
+    variances, budget = (0.1, 0.3), 3e-5
     nodes, tried = cell_term.nodes_for_cells(counts, eta, variances, budget)
     exact = {v: np.array([_integrals(n, e, v, moments=False)[0] - 0.5 * math.log(2.0 * math.pi * v)
                           for n, e in zip(counts, eta)])
@@ -173,6 +213,14 @@ def test_rule_sized_on_the_cells_is_the_fewest_within_budget():
     for k in tried:
         assert tried[k] == pytest.approx(summed_error(k), rel=1e-3, abs=1e-9), k
     # a budget no rule meets: every candidate tried, the most nodes returned, its error reported
+    # strong data at small variances: the Laplace expansion, within the budget by quad too
+    strong = counts[:60]
+    nodes, tried = cell_term.nodes_for_cells(strong, eta[:60], (0.0074, 0.03), budget)
+    assert nodes == cell_term.LAPLACE and list(tried) == [cell_term.LAPLACE], tried
+    exact_strong = np.array([_integrals(n, e, 0.03, moments=False)[0] - 0.5 * math.log(2.0 * math.pi * 0.03)
+                             for n, e in zip(strong, eta[:60])])
+    assert np.sum(np.abs(np.asarray(cell_term.laplace(jnp.asarray(strong), jnp.asarray(eta[:60]), 0.03))
+                         - exact_strong)) <= budget
     nodes, tried = cell_term.nodes_for_cells(counts, eta, variances, 1e-15)
     assert nodes == cell_term.GH_NODES and sorted(tried) == list(cell_term.CANDIDATE_NODES) and tried[nodes] > 1e-15
     with pytest.raises(ValueError, match="no term variance"):

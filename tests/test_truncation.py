@@ -684,7 +684,8 @@ def test_per_cell_term_through_the_pipeline(tmp_path, monkeypatch, overdispersio
     else:  # the written field is the kept field plus exact draws of ε: μ + f + ε, with the rate from it
         assert "level" in post and "u_cells" not in post and dm["form"].startswith("integrated out")
         assert 0.0 <= dm["quadrature_error_nats"] < lgcp.QUADRATURE_NOTE_NATS
-        assert dm["gauss_hermite_nodes"] == sized["nodes"] and dm["nodes_rule"] == sized["rule"]
+        assert dm["quadrature_nodes"] == sized["nodes"] and dm["nodes_rule"] == sized["rule"]
+        assert dm["quadrature"] == sized["quadrature"] == cell_term.rule_name(sized["nodes"])
         assert dm["nodes_sized_for_variance"] == max(sized["term_variances"])
         assert post["field"].attrs["includes_cell_term"]
         before = np.asarray(post["field"]).copy()
@@ -692,7 +693,7 @@ def test_per_cell_term_through_the_pipeline(tmp_path, monkeypatch, overdispersio
         np.testing.assert_array_equal(np.asarray(res.idata.posterior["field"]), before)
         monkeypatch.setattr(lgcp, "QUADRATURE_NOTE_NATS", -1.0)
         (note,) = lgcp.summary(res)["notes"]  # a quadrature error beyond the threshold
-        assert "per-cell term's variance reached" in note and f"{dm['gauss_hermite_nodes']}-node" in note
+        assert "per-cell term's variance reached" in note and dm["quadrature"] in note
         rate = np.exp(np.asarray(post["mu"]) + np.asarray(post["log_window_integral"]))
         np.testing.assert_allclose(np.asarray(post["rate"]), rate, rtol=1e-10)
         lam = np.exp(np.asarray(post["field"], float) + np.asarray(post["mu"])[..., None])

@@ -60,8 +60,8 @@ from ..fields.spectral import Spectrum, periodised_report
 from ..fields.preconditioning import build_preconditioner, field_and_prior, safe_sqrt
 from ..fields.truncation import (MAP_MAX_COEFFICIENTS, ModeBasis, dense_preconditioner, dropped_mode_check,
                                  field_from_coefficients, mode_basis)
-from .cell_term import (GH_NODES, REFERENCE_NODES, marginal_loglik, nodes_for, nodes_for_cells, rule_error,
-                        variance_limit)
+from .cell_term import (GH_NODES, LAPLACE, REFERENCE_NODES, marginal_loglik, nodes_for, nodes_for_cells, rule_error,
+                        rule_name, variance_limit)
 
 DEFAULT_PRIOR = {
     "rate_median": 10.0,
@@ -264,7 +264,8 @@ class TruncatedFieldKernels:
     part's correlation between neighbouring cells (short-ranged: the dropped modes are the
     fine scales). Two forms of the same model. Without per-scan terms the term is integrated
     out cell by cell (``evaluate_marginal``; ``models.cell_term``: adaptive Gauss–Hermite
-    quadrature of the Poisson–lognormal marginal), which needs the baseline μ sampled — as
+    quadrature of the Poisson–lognormal marginal, or Laplace's method to second order where
+    that is within budget on the fit's cells), which needs the baseline μ sampled — as
     μ = m̂ + τ·level − Σ_c w̃_c f_c (w̃ the data weights of the pilot map, normalised; m̂ and τ
     the data's weighted mean log intensity and its scale at set-up), so that the sampled
     ``level`` is the field's data-weighted level, nearly free of the field's shape — and the
@@ -275,7 +276,7 @@ class TruncatedFieldKernels:
 
     basis: ModeBasis
     cell_term: bool = False
-    nodes: int = GH_NODES  # Gauss–Hermite nodes of the integrated term (size_quadrature)
+    nodes: int = GH_NODES  # the integrated term's rule: Gauss–Hermite nodes, or cell_term.LAPLACE (size_quadrature)
 
     @property
     def n_latent(self):
@@ -782,9 +783,11 @@ def exposed_cells(pre: dict, mu: float, field) -> tuple[np.ndarray, np.ndarray]:
 
 
 def size_quadrature(inputs: dict, start_sites: dict, sigma: float, ls, v_pilot: float) -> tuple[int, dict]:
-    """Gauss–Hermite nodes of the integrated per-cell term (``models.cell_term``). With the
-    chains' start (``conditional_mode``: the kept field and level at the pilot σ, ℓ): the fewest
-    nodes whose error, summed over the exposed cells at the start's η = log E_c + μ + f_c, is
+    """The rule of the integrated per-cell term (``models.cell_term``: Gauss–Hermite nodes, or
+    ``cell_term.LAPLACE``). With the chains' start (``conditional_mode``: the kept field and
+    level at the pilot σ, ℓ): the cheapest rule — the second-order Laplace expansion, then the
+    fewest Gauss–Hermite nodes — whose error, summed over the exposed cells at the start's
+    η = log E_c + μ + f_c, is
     within QUADRATURE_NOTE_NATS at the term variance there and at QUADRATURE_MARGIN times the
     larger of it and the pilot's (``cell_term.nodes_for_cells``; the most nodes, reported as
     beyond the budget, if none is within it) — the summary's check (``dropped_modes``) measures
@@ -794,7 +797,8 @@ def size_quadrature(inputs: dict, start_sites: dict, sigma: float, ls, v_pilot: 
     kernels, pre = inputs["kernels"], inputs["precond"]
     table = nodes_for(QUADRATURE_MARGIN * v_pilot)
     if "u_modes" not in start_sites or "level" not in start_sites:
-        return table, {"nodes": table, "rule": f"cell_term.nodes_for at {QUADRATURE_MARGIN:g}× the term's variance at "
+        return table, {"nodes": table, "quadrature": rule_name(table),
+                       "rule": f"cell_term.nodes_for at {QUADRATURE_MARGIN:g}× the term's variance at "
                                                 "the pilot (no chains' start to size it on: no start search, or it "
                                                 "failed)"}
     f, _, mu, v, _ = kernels.evaluate_marginal(jnp.asarray(start_sites["u_modes"]), jnp.asarray(start_sites["level"]),
@@ -803,9 +807,11 @@ def size_quadrature(inputs: dict, start_sites: dict, sigma: float, ls, v_pilot: 
     nodes, tried = nodes_for_cells(*exposed_cells(pre, float(mu), np.asarray(f, float)), variances,
                                    QUADRATURE_NOTE_NATS)
     within = tried.get(nodes) is not None and tried[nodes] <= QUADRATURE_NOTE_NATS
-    return nodes, {"nodes": nodes, "table_nodes": table, "term_variances": variances, "within_budget": within,
-                   "summed_error_nats_by_nodes": {str(k): e for k, e in tried.items()},
-                   "rule": (f"the fewest nodes whose error against a {REFERENCE_NODES}-node rule, summed over the exposed "
+    return nodes, {"nodes": nodes, "quadrature": rule_name(nodes), "table_nodes": table, "term_variances": variances,
+                   "within_budget": within, "summed_error_nats_by_nodes": {str(k): e for k, e in tried.items()},
+                   "rule": (f"the cheapest rule — the second-order Laplace expansion (nodes {LAPLACE}), then the "
+                            f"fewest Gauss–Hermite nodes — whose error against a {REFERENCE_NODES}-node rule, summed "
+                            "over the exposed "
                             f"cells at the chains' start (conditional mode at the pilot σ, ℓ), is within "
                             f"{QUADRATURE_NOTE_NATS:g} nats at the term variance there and at {QUADRATURE_MARGIN:g}× "
                             f"the larger of it and the pilot's (used where the term is integrated out: without "
@@ -1163,7 +1169,8 @@ def dropped_modes(result, chunk: int = 4096) -> dict:
             counts, eta = exposed_cells(result.setup.inputs["precond"], float(np.mean(post["mu"])), level)
             error = float(np.sum(rule_error(counts, eta, float(np.max(v)), nodes)))
             form = {"form": "integrated out cell by cell (models/cell_term.py) and drawn exactly afterwards",
-                    "gauss_hermite_nodes": nodes, "nodes_sized_for_variance": quadrature_sized_for(result.setup, nodes),
+                    "quadrature": rule_name(nodes), "quadrature_nodes": nodes,
+                    "nodes_sized_for_variance": quadrature_sized_for(result.setup, nodes),
                     "term_variance_max": float(np.max(v)),
                     "nodes_rule": result.setup.extra["embedding"]["truncation"]["cell_term"].get(
                         "quadrature", {}).get("rule", "cell_term.nodes_for"),
@@ -1206,7 +1213,7 @@ def summary(result) -> dict:
     notes = []
     if dropped is not None and dropped.get("quadrature_error_nats", 0.0) > QUADRATURE_NOTE_NATS:
         notes.append(f"the per-cell term's variance reached {dropped['term_variance_max']:.3g} in the posterior "
-                     f"(its {dropped['gauss_hermite_nodes']}-node quadrature was sized at set-up for up to "
+                     f"(its quadrature, {dropped['quadrature']}, was sized at set-up for up to "
                      f"{dropped['nodes_sized_for_variance']:.3g}), where the quadrature's error summed over the cells "
                      f"is about {dropped['quadrature_error_nats']:.2g} nats (posterior probabilities within a factor "
                      f"of about e^(±{2 * dropped['quadrature_error_nats']:.2g})); more nodes: models/lgcp.py, "
