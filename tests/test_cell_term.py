@@ -79,14 +79,19 @@ def test_marginal_and_its_gradient_match_numerical_integration():
         assert abs(reference - ref) < max(1e-9, 1e-15 * abs(ref)), (n, dt, v, reference - ref)
         g_eta, g_v = (float(x) for x in grad(jnp.asarray(eta), jnp.asarray(v), jnp.asarray(float(n)), k))
         assert g_eta == pytest.approx(n - rate, rel=1e-6, abs=1e-6 * max(n, 1.0)), (n, dt, v)
-        m = float(cell_term.posterior_mode(n, eta, v)[0])
-        s = 1.0 / math.sqrt(math.exp(eta + m) + 1.0 / v)
-        hm = n * (eta + m) - math.exp(eta + m) - m * m / (2.0 * v)
-        second = scipy.integrate.quad(lambda e: e * e * math.exp(n * (eta + e) - math.exp(eta + e) - e * e / (2 * v)
-                                                                   - hm), m - 60 * s, m + 60 * s, points=[m],
-                                      limit=400, epsabs=0.0, epsrel=1e-12)[0] / math.exp(log_z - hm)
-        d_v = second / (2.0 * v * v) - 1.0 / (2.0 * v)
-        assert g_v == pytest.approx(d_v, rel=1e-5, abs=1e-6 / v), (n, dt, v)
+        assert g_v == pytest.approx(_d_v(n, eta, v, log_z), rel=1e-5, abs=1e-6 / v), (n, dt, v)
+
+
+def _d_v(n, eta, v, log_z):
+    """d/dv log p = E[ε²]/(2v²) − 1/(2v) under p(ε) ∝ e^{h(ε)} (the derivative of a log
+    integral), E[ε²] by scipy.integrate.quad; ``log_z`` = log ∫ e^{h} from ``_integrals``."""
+    m = float(cell_term.posterior_mode(n, eta, v)[0])
+    s = 1.0 / math.sqrt(math.exp(eta + m) + 1.0 / v)
+    hm = n * (eta + m) - math.exp(eta + m) - m * m / (2.0 * v)
+    second = scipy.integrate.quad(lambda e: e * e * math.exp(n * (eta + e) - math.exp(eta + e) - e * e / (2 * v)
+                                                               - hm), m - 60 * s, m + 60 * s, points=[m],
+                                  limit=400, epsabs=0.0, epsrel=1e-12)[0] / math.exp(log_z - hm)
+    return second / (2.0 * v * v) - 1.0 / (2.0 * v)
 
 
 def test_term_draws_follow_their_exact_conditional():
@@ -152,27 +157,33 @@ def test_mode_is_the_lambert_w_solution():
 def test_laplace_expansion_matches_numerical_integration():
     """The second-order Laplace expansion (``cell_term.laplace``, the rule LAPLACE) against
     scipy.integrate.quad: where the data are strong (t = v/(1 + W) small) its value is within
-    1e-8 nats and its gradient (automatic differentiation through lambert_w) matches d/dη =
-    N − E[e^{η+ε}] (quad, as in the Gauss–Hermite test) and d/dv (central differences of
-    quad's values); and its error falls as t³ when v halves
+    1e-8 nats and its gradient matches d/dη = N − E[e^{η+ε}] and d/dv = E[ε²]/(2v²) − 1/(2v)
+    (quad, as in the Gauss–Hermite test), up to 10⁷ counts; above its variance bound the
+    rule hands over to GH_NODES nodes; and its error falls as t³ when v halves
     at a fixed W (ratios 6–10 per halving), which a wrong second-order coefficient would
     turn into t² (ratio 4) — Laplace's method and its expansion: module docstring."""
     grad = jax.jit(jax.grad(lambda eta, v, n: cell_term.marginal_loglik(n[None], eta[None], v, cell_term.LAPLACE)[0],
                             argnums=(0, 1)))
-    for n in (60, 2000):
-        for dt in (-0.5, 0.0, 0.5):
-            for v in (0.003, 0.03):
-                eta = math.log(n) + dt
-                log_z, mean, rate = _integrals(n, eta, v)
-                ref = log_z - 0.5 * math.log(2.0 * math.pi * v)
-                got = float(cell_term.laplace(jnp.array([float(n)]), jnp.array([eta]), v)[0])
-                assert abs(got - ref) < 1e-8, (n, dt, v, got - ref)
-                g_eta, g_v = (float(x) for x in grad(jnp.asarray(eta), jnp.asarray(v), jnp.asarray(float(n))))
-                assert g_eta == pytest.approx(n - rate, rel=1e-6, abs=1e-6 * n), (n, dt, v)
-                # d/dv by central differences of quad's values
-                up, down = (_integrals(n, eta, v * (1 + s), moments=False)[0] for s in (1e-6, -1e-6))
-                d_v = (up - down) / (2e-6 * v)
-                assert g_v == pytest.approx(d_v - 0.5 / v, rel=1e-5, abs=1e-6 / v), (n, dt, v)
+    # strong data, and 10⁷ counts where d/dv through the mode would cancel terms of order N²
+    cases = [(n, dt, v) for n in (60, 2000) for dt in (-0.5, 0.0, 0.5) for v in (0.003, 0.03)]
+    cases += [(10_000_000, -1.0, 0.03), (10_000_000, 0.0, 1e-7)]
+    for n, dt, v in cases:
+        eta = math.log(n) + dt
+        log_z, mean, rate = _integrals(n, eta, v)
+        ref = log_z - 0.5 * math.log(2.0 * math.pi * v)
+        got = float(cell_term.laplace(jnp.array([float(n)]), jnp.array([eta]), v)[0])
+        assert abs(got - ref) < max(1e-8, 1e-15 * abs(ref)), (n, dt, v, got - ref)
+        g_eta, g_v = (float(x) for x in grad(jnp.asarray(eta), jnp.asarray(v), jnp.asarray(float(n))))
+        assert g_eta == pytest.approx(n - rate, rel=1e-6, abs=1e-6 * n), (n, dt, v)
+        assert g_v == pytest.approx(_d_v(n, eta, v, log_z), rel=1e-5, abs=1e-6 / v), (n, dt, v)
+    # above its bound the rule is GH_NODES nodes (where the expansion is off: few counts, large v)
+    n, eta = jnp.array([0.0, 3.0]), jnp.array([0.0, 1.0])
+    for v in (0.05, 30.0):
+        bounded = np.asarray(cell_term.marginal_loglik(n, eta, v, cell_term.LAPLACE, laplace_up_to=0.1))
+        expected = cell_term.laplace(n, eta, v) if v <= 0.1 else cell_term.marginal_loglik(n, eta, v, cell_term.GH_NODES)
+        np.testing.assert_allclose(bounded, np.asarray(expected), rtol=1e-13, atol=1e-13)  # compiled apart
+    exact = _integrals(0, 0.0, 30.0, moments=False)[0] - 0.5 * math.log(2.0 * math.pi * 30.0)
+    assert abs(float(cell_term.laplace(n, eta, 30.0)[0]) - exact) > 0.1  # why the bound: the expansion there
     for w in (0.5, 2.0):  # the mode at ε = 0: N = e^η = w/v
         errors = []
         for v in (0.008, 0.016, 0.032, 0.064):
@@ -186,10 +197,11 @@ def test_laplace_expansion_matches_numerical_integration():
 
 @pytest.mark.filterwarnings("ignore::scipy.integrate.IntegrationWarning")
 def test_rule_sized_on_the_cells_is_the_fewest_within_budget():
-    """nodes_for_cells (the set-up's sizing on a fit's own cells) picks the fewest candidate
-    nodes whose summed error over the cells is within the budget at every variance given —
-    the errors measured here against scipy.integrate.quad instead of its own 40-node yardstick:
-    the chosen rule is within the budget, and every candidate with fewer nodes is not."""
+    """nodes_for_cells (the set-up's sizing on a fit's own cells) picks the cheapest candidate
+    rule (the Laplace expansion, then the fewest nodes) whose summed error over the cells is
+    within the budget at every variance given — the errors measured here against
+    scipy.integrate.quad instead of its own 40-node yardstick: the chosen rule is within the
+    budget, and every cheaper candidate is not."""
     rng = np.random.default_rng(11)
     counts = np.concatenate([rng.poisson(60.0, 60), rng.poisson(0.5, 30)]).astype(float)
     eta = np.log(np.maximum(counts, 0.3)) + 0.1 * rng.standard_normal(counts.size)
@@ -212,7 +224,6 @@ def test_rule_sized_on_the_cells_is_the_fewest_within_budget():
     # the yardstick (the 40-node rule) measures the candidates' errors as quad does
     for k in tried:
         assert tried[k] == pytest.approx(summed_error(k), rel=1e-3, abs=1e-9), k
-    # a budget no rule meets: every candidate tried, the most nodes returned, its error reported
     # strong data at small variances: the Laplace expansion, within the budget by quad too
     strong = counts[:60]
     nodes, tried = cell_term.nodes_for_cells(strong, eta[:60], (0.0074, 0.03), budget)
@@ -221,6 +232,7 @@ def test_rule_sized_on_the_cells_is_the_fewest_within_budget():
                              for n, e in zip(strong, eta[:60])])
     assert np.sum(np.abs(np.asarray(cell_term.laplace(jnp.asarray(strong), jnp.asarray(eta[:60]), 0.03))
                          - exact_strong)) <= budget
+    # a budget no rule meets: every candidate tried, the most nodes returned, its error reported
     nodes, tried = cell_term.nodes_for_cells(counts, eta, variances, 1e-15)
     assert nodes == cell_term.GH_NODES and sorted(tried) == list(cell_term.CANDIDATE_NODES) and tried[nodes] > 1e-15
     with pytest.raises(ValueError, match="no term variance"):

@@ -686,6 +686,10 @@ def test_per_cell_term_through_the_pipeline(tmp_path, monkeypatch, overdispersio
         assert 0.0 <= dm["quadrature_error_nats"] < lgcp.QUADRATURE_NOTE_NATS
         assert dm["quadrature_nodes"] == sized["nodes"] and dm["nodes_rule"] == sized["rule"]
         assert dm["quadrature"] == sized["quadrature"] == cell_term.rule_name(sized["nodes"])
+        # the Laplace expansion only up to the largest variance it was measured at, 16 nodes above
+        kern = res.setup.inputs["kernels"]
+        bound = max(sized["term_variances"]) if sized["nodes"] == cell_term.LAPLACE else math.inf
+        assert kern.laplace_up_to == bound == dm.get("laplace_up_to_variance", math.inf)
         assert dm["nodes_sized_for_variance"] == max(sized["term_variances"])
         assert post["field"].attrs["includes_cell_term"]
         before = np.asarray(post["field"]).copy()

@@ -73,7 +73,9 @@ __all__ = ["GH_NODES", "LAPLACE", "HALLEY_STEPS", "REFERENCE_NODES", "nodes_for"
 #: Gauss–Hermite nodes of the per-cell integral, by the largest term variance v expected
 #: (``nodes_for``), and the variance up to which each rule is trusted (``variance_limit``):
 #: the fewest nodes whose worst error per cell stays within 1e-7 nats. Worst error against
-#: scipy.integrate.quad (scratch run with the sampler's node placement over N 0–3 000 and η
+#: scipy.integrate.quad (scratch run with the sampler's node placement of the time, three
+#: Newton steps — ``lambert_w``'s exact mode since moved the rules' values by at most 5e-11
+#: relative for v ≤ 0.6, a review's probe — over N 0–3 000 and η
 #: from 2 below to 3 above log N), in nats: 5 nodes 8e-8 at v = 0.012, 5e-7 at 0.03; 7 nodes
 #: 4e-8 at 0.06, 2e-7 at 0.1; 8 nodes 4e-8 at 0.1, 1e-6 at 0.3; 11 nodes 4e-8 at 0.3, 8e-7 at
 #: 0.6; 15 nodes 2e-8 at 0.6 (6 nodes are no better than 5, nor 12 than 11: an odd rule has a
@@ -82,10 +84,15 @@ __all__ = ["GH_NODES", "LAPLACE", "HALLEY_STEPS", "REFERENCE_NODES", "nodes_for"
 #: nodes costs three exponentials per cell and gradient, the centre node of an odd rule none.
 NODES_BY_VARIANCE = ((0.012, 5), (0.06, 7), (0.1, 8), (0.3, 11), (0.6, 15))
 GH_NODES = 16  # beyond the table's variances (its error grows with v: 2e-7 at v = 1)
+#: the rule code (in place of a node count) of the second-order Laplace expansion (``laplace``)
+LAPLACE = 0
 
 
 def variance_limit(nodes: int) -> float:
-    """The largest term variance the rule with ``nodes`` nodes is trusted for (∞ past the table)."""
+    """The largest term variance the rule with ``nodes`` nodes is trusted for by the table (∞
+    past it; 0 for LAPLACE, which is trusted only where it was measured on a fit's cells)."""
+    if int(nodes) == LAPLACE:
+        return 0.0
     return next((v for v, k in NODES_BY_VARIANCE if k == nodes), math.inf)
 
 
@@ -122,21 +129,22 @@ def _mode_w_step(w, L, xp):
     return xp.where(pos, safe * (1.0 + L - xp.log(safe)) / (1.0 + safe), 0.0)
 
 
-def marginal_loglik(counts, eta, v, nodes: int = GH_NODES):
+def marginal_loglik(counts, eta, v, nodes: int = GH_NODES, laplace_up_to: float = math.inf):
     """log p(N_c | η_c) + log N_c! per cell (module docstring), jax; counts, eta (n,) with
     finite η (callers mask cells without exposure), v > 0 a scalar; ``nodes`` of the
     Gauss–Hermite rule (``nodes_for``), or LAPLACE for the second-order Laplace expansion
-    (``laplace``). jit/grad-friendly in η and v (reverse mode: the Gauss–Hermite rule
-    returns its value and, at the same nodes, its gradient in one pass — ``_gauss_hermite``)."""
+    (``laplace``) where v ≤ ``laplace_up_to`` and GH_NODES nodes above it (jax.lax.cond:
+    one branch runs) — the expansion's error grows as t³ without bound (at N = 0, v = 30 it
+    puts log p above 0), so a model uses it only up to the variance it was measured at.
+    jit/grad-friendly in η and v (reverse mode: the Gauss–Hermite rule returns its value
+    and, at the same nodes, its gradient in one pass — ``_gauss_hermite``)."""
     if jnp.ndim(v) != 0:
         raise ValueError(f"marginal_loglik: the term variance v must be a scalar, got shape {jnp.shape(v)}")
-    if int(nodes) == LAPLACE:
+    if int(nodes) != LAPLACE:
+        return _gauss_hermite(int(nodes))(counts, eta, v)
+    if math.isinf(laplace_up_to):
         return laplace(counts, eta, v)
-    return _gauss_hermite(int(nodes))(counts, eta, v)
-
-
-#: the rule code (in place of a node count) of the second-order Laplace expansion (``laplace``)
-LAPLACE = 0
+    return jax.lax.cond(v <= laplace_up_to, laplace, _gauss_hermite(GH_NODES), counts, eta, v)
 
 
 def rule_name(nodes: int) -> str:
@@ -184,11 +192,17 @@ def _lambert_w_jvp(primals, tangents):
 def laplace(counts, eta, v):
     """log p(N | η) + log N! per cell by Laplace's method with its corrections to second order
     (module docstring: ``LAPLACE``), jax; gradients by automatic differentiation, through
-    ``lambert_w``'s exact derivative. No nodes: one Lambert W and one logarithm per cell."""
+    ``lambert_w``'s exact derivative. No nodes: one Lambert W, one exponential and one
+    logarithm per cell."""
     w = lambert_w(jnp.log(v) + eta + v * counts)
     m = v * counts - w  # the mode; e^{η+m} = w/v
     t, q = v / (1.0 + w), w / (1.0 + w)  # 1/(−h''(m)), e^{η+m}/(−h''(m))
-    h = counts * (eta + m) - w / v - m * m / (2.0 * v)
+    # h at the mode in its stationary form (h'(m) = 0), with e^{η+m} itself rather than w/v:
+    # then the mode's round-off moves h to second order only (with w/v, by N·δm: 5e-4 nats at
+    # N = 1e7, v = 0.03), and h is differentiated at a fixed mode (through m, d/dv cancels
+    # terms of order N²: off by 1.6e-2 at N = 1e7 in a review's probe)
+    fixed = jax.lax.stop_gradient(m)
+    h = counts * (eta + fixed) - jnp.exp(eta + fixed) - fixed * fixed / (2.0 * v)
     first = q * (-1.0 / 8.0 + q * 5.0 / 24.0)
     second = q * (-1.0 / 48.0 + q * (11.0 / 48.0 + q * (-25.0 / 48.0 + q * 5.0 / 16.0)))
     # log(1 + w), not log1p: 66 against 81 µs (as in lambert_w), the same absolute error

@@ -277,19 +277,20 @@ class TruncatedFieldKernels:
     basis: ModeBasis
     cell_term: bool = False
     nodes: int = GH_NODES  # the integrated term's rule: Gauss–Hermite nodes, or cell_term.LAPLACE (size_quadrature)
+    laplace_up_to: float = math.inf  # with LAPLACE: GH_NODES nodes above this term variance (the sizing's largest)
 
     @property
     def n_latent(self):
         return self.basis.n_latent
 
     def __reduce__(self):  # pickled without the jitted closure, rebuilt on loading
-        return (type(self), (self.basis, self.cell_term, self.nodes))
+        return (type(self), (self.basis, self.cell_term, self.nodes, self.laplace_up_to))
 
     def __post_init__(self):
         basis = self.basis
         zero = jnp.asarray(basis.nonzero)
         box, grid = basis.box_shape, basis.geom.grid_shape
-        nodes = self.nodes
+        nodes, laplace_up_to = self.nodes, self.laplace_up_to
 
         def kept(u, sigma, ls, pre):
             """(Λ, the kept field on the grid, the log prior density of u)."""
@@ -326,7 +327,7 @@ class TruncatedFieldKernels:
             le = pre["log_exposure_grid"]
             exposed = jnp.isfinite(le)
             eta = jnp.where(exposed, le + mu + f, 0.0)
-            ll = jnp.sum(jnp.where(exposed, marginal_loglik(pre["counts_grid"], eta, v, nodes), 0.0))
+            ll = jnp.sum(jnp.where(exposed, marginal_loglik(pre["counts_grid"], eta, v, nodes, laplace_up_to), 0.0))
             return f, logp, mu, v, ll
 
         object.__setattr__(self, "evaluate", jax.jit(evaluate))
@@ -896,8 +897,11 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None, start_sea
         found = start_search and start_report.get("log_density_gain_nats", 0.0) > 0.0  # mode_search: 0 if it failed
         nodes, sizing = size_quadrature(inputs, start_sites if found else {}, max(pre.pilot["sigma"], 0.05),
                                         ls_pilot, cell_term["variance_at_pilot"])
-        if nodes != kernels.nodes:
-            kernels = inputs["kernels"] = TruncatedFieldKernels(basis, True, nodes)
+        if nodes != kernels.nodes:  # the Laplace expansion only up to the variance it was measured at
+            bound = max(sizing["term_variances"]) if nodes == LAPLACE else math.inf
+            kernels = inputs["kernels"] = TruncatedFieldKernels(basis, True, nodes, bound)
+            if nodes == LAPLACE:
+                sizing.update(laplace_up_to_variance=bound, above_it=rule_name(GH_NODES))
         report["truncation"]["cell_term"]["quadrature"] = sizing
         if not sizing.get("within_budget", True):
             worst = sizing["summed_error_nats_by_nodes"][str(nodes)]
@@ -1164,12 +1168,18 @@ def dropped_modes(result, chunk: int = 4096) -> dict:
         form = {"form": "sampled, one value per cell (per-scan terms)"}
         if "term_variance" in post:  # integrated out: the model recorded v per draw
             v = np.asarray(post["term_variance"], float).reshape(-1)
-            nodes = result.setup.inputs["kernels"].nodes
+            kern = result.setup.inputs["kernels"]
+            nodes = kern.nodes
+            # measured: the rule the model used at that variance (the Laplace expansion hands over to
+            # GH_NODES above its bound)
+            measured = nodes if float(np.max(v)) <= kern.laplace_up_to else GH_NODES
             level = np.mean(np.asarray(post["field"]), axis=(0, 1), dtype=float)  # f + ε per cell, no draws' copy
             counts, eta = exposed_cells(result.setup.inputs["precond"], float(np.mean(post["mu"])), level)
-            error = float(np.sum(rule_error(counts, eta, float(np.max(v)), nodes)))
+            error = float(np.sum(rule_error(counts, eta, float(np.max(v)), measured)))
             form = {"form": "integrated out cell by cell (models/cell_term.py) and drawn exactly afterwards",
                     "quadrature": rule_name(nodes), "quadrature_nodes": nodes,
+                    **({"laplace_up_to_variance": kern.laplace_up_to,
+                        "above_it": rule_name(GH_NODES)} if nodes == LAPLACE else {}),
                     "nodes_sized_for_variance": quadrature_sized_for(result.setup, nodes),
                     "term_variance_max": float(np.max(v)),
                     "nodes_rule": result.setup.extra["embedding"]["truncation"]["cell_term"].get(
@@ -1216,8 +1226,8 @@ def summary(result) -> dict:
                      f"(its quadrature, {dropped['quadrature']}, was sized at set-up for up to "
                      f"{dropped['nodes_sized_for_variance']:.3g}), where the quadrature's error summed over the cells "
                      f"is about {dropped['quadrature_error_nats']:.2g} nats (posterior probabilities within a factor "
-                     f"of about e^(±{2 * dropped['quadrature_error_nats']:.2g})); more nodes: models/lgcp.py, "
-                     "QUADRATURE_MARGIN")
+                     f"of about e^(±{2 * dropped['quadrature_error_nats']:.2g})); a more accurate rule: "
+                     "models/lgcp.py, QUADRATURE_MARGIN")
     if dropped is not None and dropped["warning"]:
         notes.append(f"the truncated field (model.variance_kept = {trunc['variance_kept_target']:g}) leaves out modes "
                      f"of prior variance {dropped['dropped_variance_per_cell']:.2g} per cell, "
