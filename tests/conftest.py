@@ -33,7 +33,8 @@ SHARED_FIXTURE_FILES = {"test_demo": "demo_run", "test_export": "demo_run", "tes
 #: file), 2026-12-04, warm compile cache. Only the order matters: the longest units start
 #: first, so the two workers end close together. Files not listed run last. test_cell_term:
 #: 22.6 s summed over its four tests in a later `pytest -n0 tests/test_cell_term.py
-#: --durations=5` (fifteenth session; 30.5 s for its first test alone in that session's CI).
+#: --durations=5` (fifteenth session; 30.5 s for its first test alone in that session's CI);
+#: 23.4 s for its five tests in the sixteenth session's `pytest -n0 tests/test_cell_term.py`.
 SCOPE_SECONDS = {"test_lgcp_sites": 142, "test_lgcp": 138, "test_truncation": 300, "rain_runs": 84,
                  "test_chains": 70, "demo_run": 70, "test_mixture": 52, "test_detection": 34,
                  "test_birth": 28, "test_compare": 19, "test_gates": 14, "test_nuts_tree": 14,

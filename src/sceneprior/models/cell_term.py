@@ -107,26 +107,21 @@ def _rule(nodes: int):
     return x, np.log(w) + x**2
 
 
-def _mode_w(counts, eta, v, xp, steps):
-    """w = W(v e^{η + vN}) (Lambert W), so that the mode of h is m = vN − w and e^{η+m} = w/v
-    (h'(m) = 0 reads (vN − m) e^{vN − m} = v e^{η + vN}). w is the root of w + log w = L,
-    L = log v + η + vN, found by Newton from the left: w + log w is increasing and concave,
-    so the iterates rise monotonically onto the root, from w₀ = L − log L for L > 1 and
-    e^L/(1 + e^L) otherwise (both below it). One formula for every regime — no overflow, and
-    a start as good far above the data as near it. η = −∞ (no exposure) gives w = 0."""
-    L = xp.log(v) + eta + v * counts
-    z = xp.exp(xp.minimum(L, 1.0))
-    w = xp.where(L > 1.0, L - xp.log(xp.maximum(L, 1.0)), z / (1.0 + z))
-    for _ in range(steps):
-        w = _mode_w_step(w, L, xp)
-    return w
+def _newton_start(L):
+    """The start of ``posterior_mode``'s Newton iteration for w = W(e^L), numpy: w is the root
+    of w + log w = L, which Newton approaches from the left — w + log w is increasing and
+    concave, so the iterates rise monotonically onto the root — from w₀ = L − log L for L > 1
+    and e^L/(1 + e^L) otherwise (both below it). One formula for every regime — no overflow,
+    and a start as good far above the data as near it. L = −∞ (no exposure) gives w = 0."""
+    z = np.exp(np.minimum(L, 1.0))
+    return np.where(L > 1.0, L - np.log(np.maximum(L, 1.0)), z / (1.0 + z))
 
 
-def _mode_w_step(w, L, xp):
-    """One Newton step on w + log w = L (w = 0 stays 0)."""
+def _newton_step(w, L):
+    """One Newton step on w + log w = L, numpy (w = 0 stays 0)."""
     pos = w > 0.0
-    safe = xp.where(pos, w, 1.0)
-    return xp.where(pos, safe * (1.0 + L - xp.log(safe)) / (1.0 + safe), 0.0)
+    safe = np.where(pos, w, 1.0)
+    return np.where(pos, safe * (1.0 + L - np.log(safe)) / (1.0 + safe), 0.0)
 
 
 def marginal_loglik(counts, eta, v, nodes: int = GH_NODES, laplace_up_to: float = math.inf):
@@ -134,8 +129,8 @@ def marginal_loglik(counts, eta, v, nodes: int = GH_NODES, laplace_up_to: float 
     finite η (callers mask cells without exposure), v > 0 a scalar; ``nodes`` of the
     Gauss–Hermite rule (``nodes_for``), or LAPLACE for the second-order Laplace expansion
     (``laplace``) where v ≤ ``laplace_up_to`` and GH_NODES nodes above it (jax.lax.cond:
-    one branch runs) — the expansion's error grows as t³ without bound (at N = 0, v = 30 it
-    puts log p above 0), so a model uses it only up to the variance it was measured at.
+    one branch runs) — the expansion's error grows as t³ without bound (at N = 0, v = 30 a
+    review's probe found log p above 0), so a model uses it only up to the variance it was measured at.
     jit/grad-friendly in η and v (reverse mode: the Gauss–Hermite rule returns its value
     and, at the same nodes, its gradient in one pass — ``_gauss_hermite``)."""
     if jnp.ndim(v) != 0:
@@ -293,25 +288,28 @@ REFERENCE_NODES = 40
 CHUNK_CELLS = 1 << 16
 
 
-def rule_error(counts, eta, v: float, nodes: int, chunk: int = CHUNK_CELLS) -> np.ndarray:
-    """|log p by the ``nodes``-node rule − log p by the REFERENCE_NODES rule| per cell (nats),
-    at term variance ``v``; counts, eta (n,) with finite η. For the fit's summary and the
-    set-up's sizing (``nodes_for_cells``): the rule's error on the fit's own cells."""
-    return np.abs(_loglik_np(counts, eta, v, nodes, chunk) - _loglik_np(counts, eta, v, REFERENCE_NODES, chunk))
+def rule_error(counts, eta, v: float, nodes: int, laplace_up_to: float = math.inf,
+               chunk: int = CHUNK_CELLS) -> np.ndarray:
+    """|log p by the rule ``nodes`` (with ``laplace_up_to`` as in ``marginal_loglik``) − log p
+    by the REFERENCE_NODES rule| per cell (nats), at term variance ``v``; counts, eta (n,)
+    with finite η. For the fit's summary and the set-up's sizing (``nodes_for_cells``): the
+    rule's error on the fit's own cells."""
+    return np.abs(_loglik_np(counts, eta, v, nodes, chunk, laplace_up_to)
+                  - _loglik_np(counts, eta, v, REFERENCE_NODES, chunk))
 
 
-def _loglik_np(counts, eta, v: float, nodes: int, chunk: int) -> np.ndarray:
+def _loglik_np(counts, eta, v: float, nodes: int, chunk: int, laplace_up_to: float = math.inf) -> np.ndarray:
     """``marginal_loglik`` in float64 over chunks of cells, numpy in and out (one compiled
-    program per rule and chunk length)."""
+    program per rule, bound and chunk length)."""
     counts, eta = np.asarray(counts, float), np.asarray(eta, float)
-    rule = _jitted_rule(int(nodes))
+    rule = _jitted_rule(int(nodes), float(laplace_up_to))
     return np.concatenate([np.asarray(rule(counts[i:i + chunk], eta[i:i + chunk], float(v)))
                            for i in range(0, counts.size, chunk)] or [np.zeros(0)])
 
 
 @lru_cache(maxsize=None)
-def _jitted_rule(nodes: int):
-    return jax.jit(lambda c, e, v: marginal_loglik(c, e, v, nodes))
+def _jitted_rule(nodes: int, laplace_up_to: float = math.inf):
+    return jax.jit(lambda c, e, v: marginal_loglik(c, e, v, nodes, laplace_up_to))
 
 
 #: the rules ``nodes_for_cells`` tries, cheapest first: the Laplace expansion (LAPLACE), then
@@ -347,16 +345,16 @@ def nodes_for_cells(counts, eta, variances, budget_nats: float) -> tuple[int, di
 
 
 def posterior_mode(counts, eta, v, tol: float = 1e-13, max_steps: int = 60):
-    """(m, w): the mode m = vN − w of p(ε | N, η) and w = v e^{η+m} (``_mode_w``), numpy,
-    broadcasting; η may be −∞ for cells without exposure (then w = 0 and m = vN = 0: such
+    """(m, w): the mode m = vN − w of p(ε | N, η) and w = v e^{η+m} = W(v e^{η+vN}) (module
+    docstring), numpy, broadcasting; η may be −∞ for cells without exposure (then w = 0 and m = vN = 0: such
     cells have no counts). Newton to
     a relative step below ``tol``; raises if it has not converged in ``max_steps``."""
     counts, eta, v = np.asarray(counts, float), np.asarray(eta, float), np.asarray(v, float)
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-        w = _mode_w(counts, eta, v, np, 0)
         L = np.log(v) + eta + v * counts
+        w = _newton_start(L)
         for _ in range(max_steps):
-            new = _mode_w_step(w, L, np)
+            new = _newton_step(w, L)
             done = np.all(np.abs(new - w) <= tol * np.maximum(new, 1e-300))
             w = new
             if done:

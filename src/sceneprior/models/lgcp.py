@@ -799,17 +799,18 @@ def size_quadrature(inputs: dict, start_sites: dict, sigma: float, ls, v_pilot: 
     table = nodes_for(QUADRATURE_MARGIN * v_pilot)
     if "u_modes" not in start_sites or "level" not in start_sites:
         return table, {"nodes": table, "quadrature": rule_name(table),
-                       "rule": f"cell_term.nodes_for at {QUADRATURE_MARGIN:g}× the term's variance at "
-                                                "the pilot (no chains' start to size it on: no start search, or it "
-                                                "failed)"}
+                       "rule": f"cell_term.nodes_for at {QUADRATURE_MARGIN:g}× the term's variance at the pilot (no "
+                               "chains' start to size it on: no start search, or it failed)"}
     f, _, mu, v, _ = kernels.evaluate_marginal(jnp.asarray(start_sites["u_modes"]), jnp.asarray(start_sites["level"]),
                                                jnp.asarray(sigma, float), jnp.asarray(ls, float), pre)
     variances = sorted({float(v), QUADRATURE_MARGIN * max(float(v), v_pilot)})
     nodes, tried = nodes_for_cells(*exposed_cells(pre, float(mu), np.asarray(f, float)), variances,
                                    QUADRATURE_NOTE_NATS)
     within = tried.get(nodes) is not None and tried[nodes] <= QUADRATURE_NOTE_NATS
-    return nodes, {"nodes": nodes, "quadrature": rule_name(nodes), "table_nodes": table, "term_variances": variances,
-                   "within_budget": within, "summed_error_nats_by_nodes": {str(k): e for k, e in tried.items()},
+    # the Laplace expansion only up to the largest variance it was measured at
+    bound = {"laplace_up_to_variance": max(variances), "above_it": rule_name(GH_NODES)} if nodes == LAPLACE else {}
+    return nodes, {"nodes": nodes, "quadrature": rule_name(nodes), **bound, "table_nodes": table,
+                   "term_variances": variances, "within_budget": within, "summed_error_nats_by_nodes": {str(k): e for k, e in tried.items()},
                    "rule": (f"the cheapest rule — the second-order Laplace expansion (nodes {LAPLACE}), then the "
                             f"fewest Gauss–Hermite nodes — whose error against a {REFERENCE_NODES}-node rule, summed "
                             "over the exposed "
@@ -897,11 +898,9 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None, start_sea
         found = start_search and start_report.get("log_density_gain_nats", 0.0) > 0.0  # mode_search: 0 if it failed
         nodes, sizing = size_quadrature(inputs, start_sites if found else {}, max(pre.pilot["sigma"], 0.05),
                                         ls_pilot, cell_term["variance_at_pilot"])
-        if nodes != kernels.nodes:  # the Laplace expansion only up to the variance it was measured at
-            bound = max(sizing["term_variances"]) if nodes == LAPLACE else math.inf
-            kernels = inputs["kernels"] = TruncatedFieldKernels(basis, True, nodes, bound)
-            if nodes == LAPLACE:
-                sizing.update(laplace_up_to_variance=bound, above_it=rule_name(GH_NODES))
+        if nodes != kernels.nodes:
+            kernels = inputs["kernels"] = TruncatedFieldKernels(basis, True, nodes,
+                                                                sizing.get("laplace_up_to_variance", math.inf))
         report["truncation"]["cell_term"]["quadrature"] = sizing
         if not sizing.get("within_budget", True):
             worst = sizing["summed_error_nats_by_nodes"][str(nodes)]
@@ -1170,12 +1169,10 @@ def dropped_modes(result, chunk: int = 4096) -> dict:
             v = np.asarray(post["term_variance"], float).reshape(-1)
             kern = result.setup.inputs["kernels"]
             nodes = kern.nodes
-            # measured: the rule the model used at that variance (the Laplace expansion hands over to
-            # GH_NODES above its bound)
-            measured = nodes if float(np.max(v)) <= kern.laplace_up_to else GH_NODES
             level = np.mean(np.asarray(post["field"]), axis=(0, 1), dtype=float)  # f + ε per cell, no draws' copy
             counts, eta = exposed_cells(result.setup.inputs["precond"], float(np.mean(post["mu"])), level)
-            error = float(np.sum(rule_error(counts, eta, float(np.max(v)), measured)))
+            # the rule as the model used it at that variance (the Laplace expansion: GH_NODES above its bound)
+            error = float(np.sum(rule_error(counts, eta, float(np.max(v)), nodes, kern.laplace_up_to)))
             form = {"form": "integrated out cell by cell (models/cell_term.py) and drawn exactly afterwards",
                     "quadrature": rule_name(nodes), "quadrature_nodes": nodes,
                     **({"laplace_up_to_variance": kern.laplace_up_to,
