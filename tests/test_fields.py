@@ -383,3 +383,30 @@ def test_aliased_eigenvalues_give_periodised_kernel(name):
     err = np.abs(row - ref).max()
     assert err <= var * tail + 1e-12, (err, var * tail)
     assert row[0, 0] <= ref[0, 0] + 1e-12  # the dropped aliases only lower the variance
+
+
+def test_wrap_error_is_the_periodised_kernels_distance_from_the_planar_one():
+    # The wrap error of the 2×-torus periodised spectrum at length scale ℓ, against the
+    # periodised kernel summed in space (Poisson summation, as above; squared exponential,
+    # whose alias sum kept, |q| <= 1, misses less than exp(-2π²ℓ²(1.5/h)²) ≈ 1e-38 of σ² at
+    # ℓ = 2h) minus the planar kernel, maximised over the grid's lags. Then the bisection for
+    # the longest length scale within a limit: it meets the limit, and 2 % more exceeds it.
+    grid, spacing = (6, 5), (1.0, 1.0)
+    torus = (12, 10)
+    geom = emb.TorusGeometry("squared_exponential", grid, spacing, torus)
+    spec = spe.Spectrum(geom, "periodised")
+    k0 = np.arange(grid[0])[:, None]
+    k1 = np.arange(grid[1])[None, :]
+    for ls in (2.0, 3.0, 4.5):
+        ref = np.zeros(grid)
+        for j0 in range(-6, 7):
+            for j1 in range(-6, 7):
+                r = np.hypot((k0 + j0 * torus[0]) * spacing[0], (k1 + j1 * torus[1]) * spacing[1])
+                ref += reference_kernel("squared_exponential", r, 1.0, ls)
+        want = np.abs(ref - reference_kernel("squared_exponential", np.hypot(k0, k1), 1.0, ls)).max()
+        assert spe.wrap_error(spec, [ls, ls]) == pytest.approx(want, abs=1e-12)
+    lo2, hi2 = np.array([2.0, 2.0]), np.array([6.0, 6.0])
+    assert spe.wrap_error(spec, hi2) > 0.1
+    fits = spe.longest_within_wrap(spec, lo2, hi2, 0.1)
+    assert spe.wrap_error(spec, fits) <= 0.1 < spe.wrap_error(spec, 1.02 * fits)
+    assert spe.longest_within_wrap(spec, lo2, hi2, 1e-9) is None  # even the minimum exceeds it

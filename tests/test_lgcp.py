@@ -275,7 +275,8 @@ def test_coverage_and_more_scans_shrink_error(machinery):
 
 # --------------------------------------------------------------------------- pipeline
 def test_bad_lgcp_input_is_one_line_exit_2(tmp_path, capsys):
-    """Unknown kernel, zones outside the region, negative thresholds, impossible grids."""
+    """Unknown kernel, zones outside the region, negative thresholds, impossible grids, length
+    scales the torus cannot embed."""
     from conftest import box_case
     from sceneprior.cli import main
 
@@ -294,6 +295,9 @@ def test_bad_lgcp_input_is_one_line_exit_2(tmp_path, capsys):
     code, err = run(model={"kind": "lgcp"}, space={"frame": "cartesian", "x": [0.0, 1000.0], "y": [0.0, 500.0],
                                                    "cells": [2500, 2500]})
     assert code == 2 and "coarser grid" in err and "at most about" in err
+    # length scales the 2× torus cannot embed (covariance off by more than WRAP_LIMIT·σ²)
+    code, err = run(model={"kind": "lgcp", "prior": {"length_scale_max": 900.0}})
+    assert code == 2 and "periodic boundaries" in err and "use length_scale_max ≤" in err
 
 
 @pytest.mark.parametrize("variance_kept", [1.0, 0.99])
@@ -475,3 +479,4 @@ def test_chains_start_around_the_conditional_mode_of_the_model_density(variance_
     assert set(white).isdisjoint(bare.extra["init_strategy"].keywords["values"])
     assert bare.extra["chain_start"] == lgcp.NOT_SEARCHED
     assert bare.extra["init_strategy"].keywords["values"]["sigma"] == values["sigma"]
+

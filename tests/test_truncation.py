@@ -421,7 +421,10 @@ def test_variance_kept_default_depends_on_the_kernel(kernel, given, expected, so
     setup = kind.setup(_stats(N, SIDE, np.full(N * N, 3), K_SCANS), prior, ModelSpec("lgcp", {}, opts),
                        start_search=False)
     assert setup.extra["variance_kept_source"] == source
-    assert setup.extra["advice"] == []  # a small torus: no long-run note
+    # a small torus: no long-run note; ℓ up to half the 800 m box: the periodic-boundary note
+    # (wrap error above fields.spectral.WRAP_NOTE, below WRAP_LIMIT)
+    assert [a for a in setup.extra["advice"] if "periodic boundaries" not in a] == []
+    assert len(setup.extra["advice"]) == 1 and "use length_scale_max ≤" in setup.extra["advice"][0]
     if expected is None:
         assert setup.extra["modes"] is None  # every torus mode
         return

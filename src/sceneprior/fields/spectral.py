@@ -22,6 +22,7 @@ scales and the variance, the torus geometry static. The model keeps every torus 
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import jax
@@ -31,10 +32,22 @@ import numpy as np
 from sceneprior.fields.embedding import TorusGeometry, implied_first_row
 from sceneprior.fields.kernels import anisotropic_kernel, unit_spectral_density
 
-__all__ = ["Spectrum", "aliased_eigenvalues", "periodised_report", "N_ALIAS"]
+__all__ = ["Spectrum", "aliased_eigenvalues", "periodised_report", "wrap_error", "longest_within_wrap",
+           "N_ALIAS", "WRAP_NOTE", "WRAP_LIMIT"]
 
 #: alias terms per side of the periodised spectrum used by the model (3 × 3 terms)
 N_ALIAS = 1
+
+#: wrap errors (fractions of σ²) beyond which a fit notes (WRAP_NOTE) or refuses
+#: (WRAP_LIMIT) its prior's longest length scales (``models.lgcp.plan``): the periodised
+#: covariance is then a noticeably, or materially, different prior from the kernel asked
+#: for — a field with periodic boundaries. Our own limits, no published source. Measured
+#: (``wrap_error`` on 6²…64² grids, 2× torus): the default maximum, a quarter of the
+#: region's extent, gives at most 0.018 where the periodised spectrum is used (the minimum-
+#: image embedding, exact, serves Matérn 1/2 on coarse grids); half the extent gives
+#: 0.066–0.19; 0.625 of it 0.18–0.37; 0.75 of it 0.41–0.60; the whole extent above 1.
+WRAP_NOTE = 0.05
+WRAP_LIMIT = 0.25
 
 
 def _alias_tables(geom: TorusGeometry, n_alias: int):
@@ -92,19 +105,45 @@ class Spectrum:
         return aliased_eigenvalues(self.geom, length_scales, variance)
 
 
-def periodised_report(spec: Spectrum, lo2, hi2) -> dict:
-    """Wrap error of the periodised covariance against the planar kernel on grid lags (at
-    the largest length scales), and the variance lost by truncating the alias sum (at the
-    shortest), both as fractions of σ²."""
+def wrap_error(spec: Spectrum, length_scales) -> float:
+    """Largest difference, as a fraction of σ², between the covariance the torus spectrum
+    implies and the planar kernel at ``length_scales`` (per axis), over the grid's lags."""
     geom = spec.geom
     n0, n1 = geom.grid_shape
     h0, h1 = geom.spacing
-    row = np.asarray(implied_first_row(np.asarray(spec.eigenvalues(hi2, 1.0)), geom.torus_shape))
+    ls = np.asarray(length_scales, float)
+    row = np.asarray(implied_first_row(np.asarray(spec.eigenvalues(ls, 1.0)), geom.torus_shape))
     lags = ((h0 * np.arange(n0))[:, None], (h1 * np.arange(n1))[None, :])
-    planar = anisotropic_kernel(geom.kernel, lags, 1.0, hi2)
-    wrap = float(np.max(np.abs(row[:n0, :n1] - planar)))
+    planar = anisotropic_kernel(geom.kernel, lags, 1.0, ls)
+    return float(np.max(np.abs(row[:n0, :n1] - planar)))
+
+
+def longest_within_wrap(spec: Spectrum, lo2, hi2, limit: float, steps: int = 30):
+    """The largest length scales t·hi2 (one factor t ≤ 1 for both axes, t·hi2 ≥ lo2) whose wrap
+    error stays within ``limit``, by bisection on log t (the wrap error grows with the length
+    scale above the shortest ones, where the alias sum's deficit dominates it); None when even
+    the shortest, lo2, exceed the limit."""
+    lo2, hi2 = np.asarray(lo2, float), np.asarray(hi2, float)
+    if wrap_error(spec, hi2) <= limit:
+        return hi2
+    lo_t, hi_t = float(np.max(lo2 / hi2)), 1.0
+    if wrap_error(spec, lo_t * hi2) > limit:
+        return None
+    for _ in range(steps):
+        mid = math.sqrt(lo_t * hi_t)
+        lo_t, hi_t = (mid, hi_t) if wrap_error(spec, mid * hi2) <= limit else (lo_t, mid)
+    return lo_t * hi2
+
+
+def periodised_report(spec: Spectrum, lo2, hi2) -> dict:
+    """Wrap error of the periodised covariance against the planar kernel on grid lags (at
+    the largest length scales, :func:`wrap_error`), and the variance lost by truncating the
+    alias sum (at the shortest), both as fractions of σ²."""
+    geom = spec.geom
+    n0, n1 = geom.grid_shape
+    wrap = wrap_error(spec, hi2)
     var_lo = float(np.asarray(implied_first_row(np.asarray(spec.eigenvalues(lo2, 1.0)), geom.torus_shape))[0, 0])
     return {"method": "periodised", "torus_shape": list(geom.torus_shape), "grid_shape": [n0, n1],
-            "wrap_error": wrap, "alias_terms_per_side": N_ALIAS,
+            "wrap_error": wrap, "wrap_error_limit": WRAP_LIMIT, "alias_terms_per_side": N_ALIAS,
             "alias_variance_deficit_at_shortest_length_scale": max(0.0, 1.0 - var_lo),
             "valid": "eigenvalues are non-negative by construction"}

@@ -56,7 +56,7 @@ import numpyro.distributions as dist
 from ..errors import InputError
 from ..fields.embedding import TorusGeometry, plan_torus, torus_shape_for
 from ..fields.kernels import KERNEL_NAMES
-from ..fields.spectral import Spectrum, periodised_report
+from ..fields.spectral import WRAP_LIMIT, WRAP_NOTE, Spectrum, longest_within_wrap, periodised_report
 from ..fields.preconditioning import build_preconditioner, field_and_prior, safe_sqrt
 from ..fields.truncation import (MAP_MAX_COEFFICIENTS, ModeBasis, dense_preconditioner, dropped_mode_check,
                                  field_from_coefficients, mode_basis)
@@ -412,7 +412,42 @@ def plan(stats, kernel: str, prior: dict):
                              "this machine can sample; use a coarser grid")
         spectrum = Spectrum(geom, "periodised")
         report = periodised_report(spectrum, lo2, hi2)
+        _refuse_wrapped(stats, spectrum, report, lo2, hi2)
     return spectrum, report, lo, hi
+
+
+def wrap_advice(stats, spectrum, report, lo2, hi2, limit: float) -> str | None:
+    """None when the periodised torus covariance is within ``limit`` · σ² of the kernel at the
+    longest length scales the prior allows (``report["wrap_error"]``; the minimum-image
+    embedding is exact); else what to say: the bounds asked for, the error, and the longest
+    maxima within the limit (``fields.spectral.longest_within_wrap``)."""
+    if report.get("wrap_error", 0.0) <= limit:
+        return None
+    polar = stats.grid.frame == "polar"
+    keys = ("range_length_scale_max", "bearing_length_scale_max") if polar else ("length_scale_max",)
+    units = ("m", "°") if polar else ("m",)
+    asked = " and ".join(f"{k} {v:.4g} {u}" for k, v, u in zip(keys, hi2, units))
+    fits = longest_within_wrap(spectrum, lo2, hi2, limit)
+    what = ("even the minimum length scales exceed that; lower the length_scale_min bounds or use a larger region"
+            if fits is None else "use " + " and ".join(f"{k} ≤ {v:.4g} {u}" for k, v, u in zip(keys, fits, units)))
+    return (f"{asked}: on the padded torus (twice the grid) the field's covariance between cells differs from "
+            f"the {spectrum.geom.kernel} kernel's by up to {report['wrap_error']:.3g}·σ² at these length scales (a "
+            f"field with periodic boundaries); to keep it within {limit:g}·σ², {what}")
+
+
+def _note_wrap(advice: list, stats, spectrum, report, lo, hi) -> None:
+    """A note before sampling above ``fields.spectral.WRAP_NOTE`` (refused above WRAP_LIMIT)."""
+    text = wrap_advice(stats, spectrum, report, np.resize(lo, 2), np.resize(hi, 2), WRAP_NOTE)
+    if text is not None:
+        advice.append(f"model.prior: {text}")
+
+
+def _refuse_wrapped(stats, spectrum, report, lo2, hi2) -> None:
+    """InputError beyond ``fields.spectral.WRAP_LIMIT``: the torus cannot embed length scales
+    that long, and the fit would use a materially different prior from the one asked for."""
+    text = wrap_advice(stats, spectrum, report, lo2, hi2, WRAP_LIMIT)
+    if text is not None:
+        raise InputError(f"model.prior: {text}")
 
 
 def _check_variance_kept(variance_kept) -> None:
@@ -485,6 +520,7 @@ def truncated_plan(stats, kernel, prior, variance_kept):
     geom = TorusGeometry(kernel, stats.grid.shape, spacing, torus_shape_for(stats.grid.shape, spacing, hi2, 0.0, 2.0))
     spectrum = Spectrum(geom, "periodised")
     report = periodised_report(spectrum, lo2, hi2)
+    _refuse_wrapped(stats, spectrum, report, lo2, hi2)
     basis = mode_basis(geom, lo2, hi2, float(variance_kept))
     report["truncation"] = dict(basis.report)
     return spectrum, report, lo, hi, basis
@@ -842,6 +878,7 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None, start_sea
     if variance_kept != 1.0:
         spectrum, report, lo, hi, basis = truncated_plan(stats, kernel, prior, variance_kept)
         report["truncation"]["variance_kept_source"] = kept_source
+        _note_wrap(advice, stats, spectrum, report, lo, hi)
         pre, precond, mode_map = truncated_preconditioner(basis, counts_all, exposure_all, lo, hi,
                                                           prior["sigma_scale"], cell_term=dropped)
         cell_term = mode_map.pop("cell_term")
@@ -867,6 +904,7 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None, start_sea
             advice.append(f"model.dropped_modes = {dropped!r} has no effect here: every torus mode is kept "
                           "(model.variance_kept = 1)")
         spectrum, report, lo, hi = plan(stats, kernel, prior)
+        _note_wrap(advice, stats, spectrum, report, lo, hi)
         pre = build_preconditioner(spectrum, stats.grid.shape, counts_all, exposure_all,
                                    kernel, lo, hi, prior["sigma_scale"], use_pad=use_pad)
         kernels, precond, basis = FieldKernels(spectrum, pre.use_pad), pre.arrays(), None
