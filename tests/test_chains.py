@@ -304,3 +304,27 @@ def test_kernel_options_reach_the_sampler(monkeypatch):
         inference.run_nuts(_model, {"y": y}, smp, progress=False, target_accept=1.0)
     with pytest.raises(ValueError, match="step_size_jitter"):
         inference._tuned_nuts(NUTS)(_model, step_size_jitter=1.0)
+
+
+def _funnel():
+    # Neal's funnel (Neal 2003, "Slice sampling", Ann. Statist. 31, §8; from memory): NUTS
+    # diverges in its neck, so divergences occur at some transitions and not at others
+    v = numpyro.sample("v", dist.Normal(0.0, 3.0))
+    numpyro.sample("x", dist.Normal(0.0, jnp.exp(v / 2.0)).expand([6]).to_event(1))
+
+
+def test_thinned_draws_count_every_divergence():
+    """With thinning n, each kept draw is the last of a block of n transitions (numpyro's
+    fori_collect), and its ``diverging`` is the OR of the block's: checked against the same
+    chains unthinned (same keys, so the same transitions)."""
+    smp = _Sampler()
+    smp.chains, smp.warmup, smp.draws = 2, 150, 400
+    full = inference.run_nuts(_funnel, {}, smp, progress=False)
+    thin = inference.run_nuts(_funnel, {}, smp, progress=False, thinning=4)
+    v_full, v_thin = np.asarray(full.posterior["v"]), np.asarray(thin.posterior["v"])
+    assert v_thin.shape == (2, 100)
+    np.testing.assert_allclose(v_thin, v_full[:, 3::4], rtol=0, atol=1e-6)  # the block's last transition
+    div = np.asarray(full.sample_stats["diverging"]).reshape(2, 100, 4)
+    assert div.sum() > 0
+    assert (div.any(-1) & ~div[..., -1]).any()  # blocks whose kept transition alone would miss it
+    np.testing.assert_array_equal(np.asarray(thin.sample_stats["diverging"]), div.any(-1))

@@ -267,9 +267,10 @@ def fit(spec: FitSpec, progress: bool = True, log=print) -> FitResult:
     from .inference import diagnostics
 
     diag = diagnostics(idata, ("rate",) + kind.hyper)
-    if thinning > 1:  # numpyro records sample statistics at the kept iterations only
-        diag["divergences_counted_over"] = (f"kept draws only: every {thinning}th sampler iteration (the "
-                                            "per-cell draws budget thinned the sampler)")
+    if thinning > 1:  # sample statistics at the kept iterations; divergences carried to them (inference.nuts_kernel)
+        diag["divergences_counted_over"] = (f"every sampler transition: the per-cell draws budget kept every "
+                                            f"{thinning}th, and each kept draw counts once if any of the {thinning} "
+                                            "transitions since the previous kept draw diverged")
     result = FitResult(
         spec=spec,
         recording=rec,

@@ -252,10 +252,12 @@ def nuts_kernel_options(dense_mass=False, init_strategy=None, warmup_tree_depth:
             "target_accept": float(target_accept)}
 
 
-def nuts_kernel(fn, kernel: dict):
+def nuts_kernel(fn, kernel: dict, thinning: int = 1):
     """numpyro's NUTS for ``fn`` with the options bundle of :func:`nuts_kernel_options`
     (numpyro takes (warmup, sampling) tree depths, and it fills in the mass matrix dict it is
-    given, so it gets a copy)."""
+    given, so it gets a copy). ``thinning`` > 1: the MCMC keeps every n-th draw, and each kept
+    draw's ``diverging`` says whether any transition since the previous kept draw diverged
+    (``_tuned_nuts``), so that no divergence goes uncounted."""
     import jax.numpy as jnp
     from numpyro.infer import NUTS
 
@@ -263,6 +265,8 @@ def nuts_kernel(fn, kernel: dict):
     depth = MAX_TREE_DEPTH if wd is None else (int(wd), MAX_TREE_DEPTH)
     start = None if imm is None else {k: jnp.asarray(v) for k, v in imm.items()}
     tuned = {k: kernel[k] for k in ("step_size_jitter", "extra_uturn_checks") if kernel[k]}
+    if thinning > 1:
+        tuned["thinning"] = int(thinning)
     cls = _tuned_nuts(NUTS) if tuned else NUTS
     return cls(fn, dense_mass=kernel["dense_mass"], init_strategy=kernel["init_strategy"], max_tree_depth=depth,
                inverse_mass_matrix=start, target_accept_prob=kernel["target_accept"], **tuned)
@@ -273,7 +277,8 @@ def _sample(fn, inputs, key, kernel: dict, warmup, draws, thinning, exclude_site
     finished MCMC."""
     from numpyro.infer import MCMC
 
-    mcmc = MCMC(nuts_kernel(fn, kernel), num_warmup=warmup, num_samples=draws, num_chains=chains, chain_method=method,
+    mcmc = MCMC(nuts_kernel(fn, kernel, thinning), num_warmup=warmup, num_samples=draws, num_chains=chains,
+                chain_method=method,
                 progress_bar=progress, thinning=thinning)
     drop = tuple(f"~z.{name}" for name in exclude_sites)
     mcmc.run(key, extra_fields=("diverging", "num_steps") + drop, **inputs)
@@ -305,25 +310,31 @@ _TUNED = {}
 
 
 def _tuned_nuts(base):
-    """numpyro's NUTS (``base``, imported where it is used so tests may replace it) with two
+    """numpyro's NUTS (``base``, imported where it is used so tests may replace it) with three
     options: ``step_size_jitter`` — each post-warmup transition's step size from
     :func:`jittered_step_size` (warmup and its adaptation are numpyro's own, the same draws;
-    the adapted step size stays in the state between transitions) — and
-    ``extra_uturn_checks`` — the trees of :mod:`sceneprior.nuts_tree`."""
+    the adapted step size stays in the state between transitions) —, ``extra_uturn_checks``
+    — the trees of :mod:`sceneprior.nuts_tree` — and ``thinning``: the MCMC keeps every n-th
+    draw, so the state's ``diverging`` flag is carried through each block of n sampling
+    transitions (an OR, reset at the block's first) and the kept draw — numpyro's
+    ``fori_collect`` keeps the block's last, slot (i − warmup) // n — records whether any of
+    them diverged. The flag is only read out, never by the sampler, so the draws are the same."""
     if base in _TUNED:
         return _TUNED[base]
 
     class TunedNUTS(base):
-        def __init__(self, *args, step_size_jitter: float = 0.0, extra_uturn_checks: bool = False, **kwargs):
+        def __init__(self, *args, step_size_jitter: float = 0.0, extra_uturn_checks: bool = False,
+                     thinning: int = 1, **kwargs):
             if not 0.0 <= step_size_jitter < 1.0:
                 raise ValueError(f"step_size_jitter must be in [0, 1), got {step_size_jitter}")
             self._jitter = float(step_size_jitter)
             self._extra_checks = bool(extra_uturn_checks)
-            self._jitter_from = 0
+            self._thinning = int(thinning)
+            self._warmup = 0
             super().__init__(*args, **kwargs)
 
         def init(self, rng_key, num_warmup, *args, **kwargs):
-            self._jitter_from = int(num_warmup)
+            self._warmup = int(num_warmup)
             return super().init(rng_key, num_warmup, *args, **kwargs)
 
         def sample(self, state, model_args, model_kwargs):
@@ -338,7 +349,7 @@ def _tuned_nuts(base):
 
             adapted = state.adapt_state.step_size
             if self._jitter:
-                draw = partial(jittered_step_size, warmup=self._jitter_from, jitter=self._jitter)
+                draw = partial(jittered_step_size, warmup=self._warmup, jitter=self._jitter)
                 if not is_prng_key(state.rng_key):  # vectorised chains: a batch of keys, numpyro's kernel vmapped
                     draw = jax.vmap(draw)
                 eps = draw(state.rng_key, state.i, adapted)
@@ -346,8 +357,12 @@ def _tuned_nuts(base):
             with extra_checks() if self._extra_checks else contextlib.nullcontext():  # traced here
                 new = super().sample(state, model_args, model_kwargs)
             if self._jitter:
-                kept = jnp.where(state.i >= self._jitter_from, adapted, new.adapt_state.step_size)
+                kept = jnp.where(state.i >= self._warmup, adapted, new.adapt_state.step_size)
                 new = new._replace(adapt_state=new.adapt_state._replace(step_size=kept))
+            if self._thinning > 1:  # new.i − 1: this transition's 0-based index, warmup included
+                k = new.i - 1 - self._warmup
+                carry = (k > 0) & (k % self._thinning != 0)
+                new = new._replace(diverging=new.diverging | (state.diverging & carry))
             return new
 
     _TUNED[base] = TunedNUTS
