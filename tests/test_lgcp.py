@@ -480,3 +480,47 @@ def test_chains_start_around_the_conditional_mode_of_the_model_density(variance_
     assert bare.extra["chain_start"] == lgcp.NOT_SEARCHED
     assert bare.extra["init_strategy"].keywords["values"]["sigma"] == values["sigma"]
 
+
+def test_cells_gated_out_in_every_scan_are_marked_as_extrapolated(tmp_path):
+    """A moored object gated (disc, 80 m) in every scan at the centre of a 100 m cell removes
+    the whole cell from the window of every scan (a disc of radius r ≥ 50√2 m covers the
+    square around its centre: elementary geometry), so that cell has no exposure. Its value
+    is the field's prediction from its neighbours: intensity.nc flags it, the export keeps
+    its value and flags it, and the report's maps mark it."""
+    import json
+
+    import xarray as xr
+
+    from conftest import box_case, write_csv
+    from sceneprior.export import export_run
+    from sceneprior.fitting import fit
+    from sceneprior.report import build_report
+    from sceneprior.results import load_run, write_run
+    from sceneprior.spec import load_spec
+
+    rng = np.random.default_rng(8)
+    K = 40
+    n = rng.poisson(20.0, K)
+    s = np.repeat(np.arange(K), n)
+    x, y = rng.uniform(0, 1000, s.size), rng.uniform(0, 500, s.size)
+    keep = np.hypot(x - 450.0, y - 250.0) > 80.0  # detections in the gate would be dropped anyway
+    write_csv(tmp_path / "obj.csv", ["scan", "object", "x", "y"], [(k, "buoy", 450.0, 250.0) for k in range(K)])
+    spec = box_case(tmp_path, s[keep], np.round(x[keep], 3), np.round(y[keep], 3), n_scans_table=K,
+                    data={"detections": "det.csv", "scans": "scans.csv", "objects": "obj.csv",
+                          "gates": {"radius": 80.0}},
+                    model={"kind": "lgcp", "kernel": "matern32"},
+                    sampler={"chains": 2, "warmup": 150, "draws": 150, "seed": 2, "progress": False})
+    res = fit(load_spec(spec), progress=False, log=lambda m: None)
+    hole = 4 * 5 + 2  # cell (x 400–500 m, y 200–300 m), flat C-order on the 10 × 5 grid
+    assert res.stats.exposure[hole] == 0.0 and (np.delete(res.stats.exposure, hole) > 0).all()
+    path = write_run(res, tmp_path / "runs")
+    with xr.open_dataset(path / "intensity.nc", engine="h5netcdf") as ds:
+        flag = np.asarray(ds["extrapolated"].values, bool)
+        mean = np.asarray(ds["intensity_mean"].values, float)
+    assert flag.sum() == 1 and flag.reshape(-1)[hole]
+    assert np.isfinite(mean.reshape(-1)[hole]) and mean.reshape(-1)[hole] > 0  # predicted, not masked
+    run = load_run(path)
+    doc = json.loads(json.dumps(export_run(run, override_gate=True)[0]))  # short chains: gate overridden
+    assert np.asarray(doc["clutter"]["grid"]["extrapolated"], bool).reshape(-1)[hole]
+    assert doc["clutter"]["intensity"]["values"][4][2] is not None
+    assert "Dotted: 1 cell inside the window without exposure" in build_report(run)

@@ -363,6 +363,11 @@ def build_config(run, quantile: float | None = None, override_gate: bool = False
             "masked": masked.tolist(),
             "masked_note": "true: no area inside the window (permanent mask); values are null there. "
                            "A cell cut by a mask applies its value to its part inside the window only",
+            **({"extrapolated": (np.asarray(ds["extrapolated"].values, bool) & ~masked).tolist(),
+                "extrapolated_note": "true: inside the window but without exposure (gated out in every scan); "
+                                     "no detections could be seen there, so the value is the model's prediction "
+                                     "from neighbouring cells (an extrapolation), kept in the map"}
+               if "extrapolated" in ds else {}),
         },
         "intensity": {"units": "m-2 scan-1", "values": _grid_list(lam, masked)},
         "density": {"units": "m-2", "values": _grid_list(density, masked)},

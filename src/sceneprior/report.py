@@ -141,8 +141,33 @@ def _outline(ax, region):
         ax.plot(x, y, color=INK, lw=0.8)
 
 
-def _map_figure(grid, region, panels):
-    """panels: list of (title, values (n0, n1), cmap, colorbar label, vmin, vmax)."""
+def _cell_polygons(grid, cells):
+    """x/y outlines [m] of the grid's cells at flat indices ``cells`` (polar cells with their
+    arcs subdivided, as :func:`_mesh` draws them)."""
+    from .geometry import polar_to_cartesian
+
+    n1 = len(grid.edges1) - 1
+    out = []
+    for c in cells:
+        i, j = divmod(int(c), n1)
+        (a0, a1), (b0, b1) = grid.edges0[i:i + 2], grid.edges1[j:j + 2]
+        if grid.frame == "cartesian":
+            out.append(np.array([[a0, b0], [a1, b0], [a1, b1], [a0, b1]]))
+            continue
+        bb = np.linspace(b0, b1, max(2, int(math.ceil(b1 - b0)) + 1))
+        xo, yo = polar_to_cartesian(np.full_like(bb, a1), bb)
+        xi, yi = polar_to_cartesian(np.full_like(bb, a0), bb[::-1])
+        out.append(np.column_stack([np.concatenate([xo, xi]), np.concatenate([yo, yi])]))
+    return out
+
+
+def _map_figure(grid, region, panels, extrapolated=None):
+    """panels: list of (title, values (n0, n1), cmap, colorbar label, vmin, vmax);
+    ``extrapolated`` (n0, n1) bool: cells drawn dotted (window area but no exposure: their
+    values are predicted from neighbours)."""
+    from matplotlib.collections import PolyCollection
+
+    shown = np.flatnonzero(np.asarray(extrapolated, bool).reshape(-1)) if extrapolated is not None else []
     fig = _figure(5.2 * len(panels), 4.6)
     axes = fig.subplots(1, len(panels), squeeze=False)[0]
     for ax, (title, vals, cmap, label, vmin, vmax) in zip(axes, panels):
@@ -153,13 +178,17 @@ def _map_figure(grid, region, panels):
         ax.set_aspect("equal")
         _outline_km(ax, region)
         _mask_patches_km(ax, region)
+        if len(shown):
+            ax.add_collection(PolyCollection([v / 1000.0 for v in _cell_polygons(grid, shown)], facecolor="none",
+                                             edgecolor=INK, hatch="...", linewidth=0.5,
+                                             label="extrapolated: no exposure"))
         ax.set_xlabel("x east [km]")
         ax.set_ylabel("y north [km]")
         ax.set_title(title, fontsize=10, loc="left")
         cb = fig.colorbar(pm, ax=ax, shrink=0.8, pad=0.02)
         cb.set_label(label, fontsize=8, color=INK)
         cb.ax.tick_params(labelsize=7, colors=INK)
-        if region.masks:
+        if region.masks or len(shown):
             ax.legend(loc="lower left", fontsize=7, frameon=False)
     return fig
 
@@ -509,13 +538,18 @@ def build_report(run) -> str:
     # maps
     mean = np.asarray(ds["intensity_mean"].values, float) * 1e6
     sd = np.asarray(ds["intensity_sd"].values, float) * 1e6
+    extrapolated = np.asarray(ds["extrapolated"].values, bool) if "extrapolated" in ds else None
     fig = _map_figure(grid, region, [
         ("Intensity, posterior mean", mean, cm_mean, "detections per km² per scan", 0.0, float(np.nanmax(mean))),
         ("Intensity, posterior sd", sd, cm_sd, "detections per km² per scan", 0.0, float(np.nanmax(sd)) or 1.0),
-    ])
+    ], extrapolated=extrapolated)
     uniform = bool(np.nanmax(mean) - np.nanmin(mean) == 0)
+    n_extra = int(extrapolated.sum()) if extrapolated is not None else 0
     cap = ("Per-cell posterior mean and standard deviation of the clutter intensity (per km² per scan; "
            "1 km² = 10⁶ m²). Hatched: permanent masks (no data, zero intensity in the export)."
+           + (f" Dotted: {n_extra} cell{'s' if n_extra != 1 else ''} inside the window without exposure (covered "
+              "by gates in every scan): no data there, so the map extrapolates — the field predicts these cells "
+              "from their neighbours, and the export keeps their values." if n_extra else "")
            + (" The model is uniform, so both maps are flat over the window." if uniform else ""))
     sites = [str(x) for x in ds["site"].values] if "site_intensity_mean" in ds else []
     if sites:
@@ -534,7 +568,7 @@ def build_report(run) -> str:
             layers = [(f"{v} [{extra[0]} = {c}]", np.asarray(da.isel({extra[0]: i}).transpose(*grid.axes).values, float))
                       for i, c in enumerate(np.asarray(da[extra[0]].values)[:3])]
         for title, vals in layers:
-            f = _map_figure(grid, region, [(title, vals, cm_prob, "probability", 0.0, 1.0)])
+            f = _map_figure(grid, region, [(title, vals, cm_prob, "probability", 0.0, 1.0)], extrapolated=extrapolated)
             parts.append(_fig_html(_png(f), title, f"Exceedance probability ({esc(str(da.attrs.get('long_name', v)))})."))
     if not exc:
         parts.append('<p class="note">No exceedance map: this run\'s intensity.nc holds no exceedance '
