@@ -677,7 +677,8 @@ def main():
         rows = [call("--one", str(n), k, reg) for n in sizes for k in args.kernels for reg in ("weak", "strong")]
         show(rows)
     if "c" in args.parts:
-        print("\n(c) 1× vs 10× scans (32², Matérn 3/2, strong data per scan fixed)")
+        print("\n(c) 1× vs 10× scans (32², Matérn 3/2, the same detections per scan: "
+              f"{REGIMES['weak']} and {REGIMES['weak10']} per cell in total)")
         r1 = call("--one", "32", "matern32", "weak", scans=args.scans)
         r10 = call("--one", "32", "matern32", "weak10", scans=10 * args.scans)  # same rate per scan
         show([r1, r10])

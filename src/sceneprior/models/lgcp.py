@@ -1294,7 +1294,9 @@ def summary(result) -> dict:
                             + (("the dropped modes' variance as an independent term per cell, partially centred "
                                 "per cell (e_c = 1 + N_c v); " if "scan_terms" in result.setup.inputs else
                                 "the dropped modes' variance as an independent term per cell, integrated out cell by "
-                                "cell (Gauss–Hermite) and drawn exactly per draw afterwards (models/cell_term.py); ")
+                                "cell (the rule in field_parameters.dropped_modes.quadrature: Gauss–Hermite nodes or a "
+                                "second-order Laplace expansion) and drawn exactly per draw afterwards "
+                                "(models/cell_term.py); ")
                                if result.setup.inputs["kernels"].cell_term else ""))
                            + ("baseline ρ₀ sampled (per-scan terms make it non-conjugate)"
                               if "scan_terms" in result.setup.inputs else
