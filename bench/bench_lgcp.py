@@ -26,11 +26,14 @@ Usage:
     python bench/bench_lgcp.py --sizes 32 64 --kernels matern32 --chains 4 --warmup 1000 --draws 1000
     python bench/bench_lgcp.py --one 32 matern32 weak10 --scans 1000 --warmup-steps --seeds 1 2
                                                # warmup's leapfrog steps per 100 iterations
+    python bench/bench_lgcp.py --parts abc --variance-kept recommended
+                                               # the README's tables in one run (each size and
+                                               # kernel at the setting recommended for it)
 
 Every configuration takes ``--variance-kept Q`` (spectral truncation, model option
 variance_kept: the Fourier modes carrying the fraction Q of the prior variance at the
-shortest length scale; 1 = every torus mode); the rows print the latent dimension and
-the kept fraction. Wall times are production layouts (``inference.chain_layout``), and
+shortest length scale; 1 = every torus mode; ``recommended``: per configuration, as
+``recommended_variance_kept``); the rows print the latent dimension and the kept fraction. Wall times are production layouts (``inference.chain_layout``), and
 the kept per-cell draws are thinned to the default budget as ``sceneprior fit`` does.
 
 Data are simulated from the model's own prior-shaped field (our own numbers) on a
@@ -60,6 +63,30 @@ import numpy as np
 
 #: detections per cell in total, per data regime of parts (b)–(d)
 REGIMES = {"weak": 0.3, "weak10": 3.0, "strong": 60.0}
+
+
+def recommended_variance_kept(n, kernel, regime) -> float:
+    """The spectral truncation the README (Performance, "LGCP: what to expect") recommends for
+    an n² grid: the squared exponential 0.999 (the model's default for it); Matérn 3/2 on
+    128² cells and more 0.98 with weak data and 0.9 with strong data (the per-cell term then
+    on by model.dropped_modes = "auto"); every torus mode otherwise (Matérn up to 64², and
+    Matérn 1/2 and 5/2 at any size: the README advises 64² at most for Matérn 1/2)."""
+    if kernel == "squared_exponential":
+        return 0.999
+    if kernel == "matern32" and n >= 128:
+        return 0.9 if regime == "strong" else 0.98
+    return 1.0
+
+
+def _variance_kept_arg(text):
+    return text if text == "recommended" else float(text)
+
+
+def _kept(args, n, kernel, regime) -> float:
+    """--variance-kept for one configuration."""
+    if args.variance_kept == "recommended":
+        return recommended_variance_kept(int(n), kernel, regime)
+    return float(args.variance_kept)
 
 
 def _setup(n, kernel, per_cell, K, seed=0, variance_kept=1.0, dropped_modes="auto"):
@@ -404,7 +431,7 @@ def gradient_cost(args):
     configure_jax()
     size, kernel, regime = args.one
     per_cell = REGIMES[regime]
-    kind, setup, _ = _setup(int(size), kernel, per_cell, int(args.scans), variance_kept=args.variance_kept,
+    kind, setup, _ = _setup(int(size), kernel, per_cell, int(args.scans), variance_kept=_kept(args, size, kernel, regime),
                             dropped_modes=args.dropped_modes)
     info = initialize_model(jax.random.PRNGKey(0), kind.fn, model_kwargs=setup.inputs,
                             init_strategy=setup.extra["init_strategy"])
@@ -460,7 +487,7 @@ def dense_bound(args):
 
     configure_jax()
     size, kernel, regime = args.one
-    kind, setup, _ = _setup(int(size), kernel, REGIMES[regime], int(args.scans), variance_kept=args.variance_kept,
+    kind, setup, _ = _setup(int(size), kernel, REGIMES[regime], int(args.scans), variance_kept=_kept(args, size, kernel, regime),
                             dropped_modes=args.dropped_modes)
     fn, inputs = dense_model_inputs(setup)
     opts = dense_sampler_options(setup)
@@ -504,7 +531,7 @@ def warmup_steps(args):
 
     configure_jax()
     size, kernel, regime = args.one
-    kind, setup, _ = _setup(int(size), kernel, REGIMES[regime], int(args.scans), variance_kept=args.variance_kept,
+    kind, setup, _ = _setup(int(size), kernel, REGIMES[regime], int(args.scans), variance_kept=_kept(args, size, kernel, regime),
                             dropped_modes=args.dropped_modes)
     opts = nuts_options(setup, len(setup.inputs["window_area"]))
     bundle = nuts_kernel_options(**{k: opts[k] for k in inspect.signature(nuts_kernel_options).parameters})
@@ -536,7 +563,7 @@ def one(args):
     size = int(size)
     per_cell = REGIMES[regime]
     K = int(args.scans)
-    kind, setup, counts = _setup(size, kernel, per_cell, K, seed=args.field_seed, variance_kept=args.variance_kept,
+    kind, setup, counts = _setup(size, kernel, per_cell, K, seed=args.field_seed, variance_kept=_kept(args, size, kernel, regime),
                                  dropped_modes=args.dropped_modes)
     res = _run(kind, setup, args.chains, args.warmup, args.draws, dense_baseline=args.dense,
                setup_s=0.0 if args.dense else setup.extra["bench_setup_s"], progress=args.progress,
@@ -570,10 +597,11 @@ def main():
     ap.add_argument("--progress", action="store_true",
                     help="with --one: the sampler's progress bar on stderr (step size, leapfrog steps per "
                          "iteration) — for long runs such as the dense baseline at 32²")
-    ap.add_argument("--variance-kept", type=float, default=1.0,
+    ap.add_argument("--variance-kept", type=_variance_kept_arg, default=1.0,
                     help="spectral truncation: fraction of the field's prior variance kept (1: every torus mode; "
                          "1 for every kernel here, whereas a spec without model.variance_kept gives the squared "
-                         "exponential 0.999)")
+                         "exponential 0.999), or 'recommended': per configuration, the setting the README's "
+                         "Performance section recommends (recommended_variance_kept)")
     ap.add_argument("--dropped-modes", default="auto", choices=("auto", "per_cell", "leave_out"),
                     help="with --variance-kept below 1: model option dropped_modes (auto: the per-cell term where "
                          "the set-up's screen says the dropped modes would narrow the intervals)")
@@ -603,6 +631,9 @@ def main():
     ap.add_argument("--field-seed", type=int, default=0,
                     help="with --one: seed of the simulated true field and counts (every part uses 0)")
     ap.add_argument("--parts", default="abcd")
+    ap.add_argument("--row-limit-s", type=float, default=None,
+                    help="stop any one configuration's process after this many seconds; its row then says so "
+                         "(default: no limit)")
     args = ap.parse_args()
     # sampler constants of models.lgcp set from the command line (and passed on to the parts' runs)
     knobs = [(flag, name, value) for flag, name, value in
@@ -633,21 +664,33 @@ def main():
 
     def call(*extra, scans=None):
         cmd = base + ["--scans", str(scans or args.scans)] + list(extra)
-        out = subprocess.run(cmd, capture_output=True, text=True)
+        try:
+            out = subprocess.run(cmd, capture_output=True, text=True, timeout=args.row_limit_s)
+        except subprocess.TimeoutExpired:
+            out = None
+        which = dict(zip(("cells", "kernel", "regime"), (f"{extra[1]}²",) + tuple(extra[2:4]))) if extra[:1] == ("--one",) else {}
+        if out is None:
+            return {**which, "error": f"stopped after {args.row_limit_s:g} s (--row-limit-s)"}
         line = [ln for ln in out.stdout.splitlines() if ln.startswith("{")]
         if not line:
-            return {"error": (out.stderr.strip().splitlines() or ["failed"])[-1]}
+            return {**which, "error": (out.stderr.strip().splitlines() or ["failed"])[-1]}
         return json.loads(line[-1])
 
     cols = ("cells", "kernel", "regime", "formulation", "latent", "variance_kept", "cell_term", "chains", "warmup", "draws", "pad",
             "wall_s", "steps_per_draw", "min_ess_bulk",
             "max_rhat", "divergences", "ess_per_s", "peak_rss_mb")
 
+    def show_row(r):
+        if "error" in r:
+            print(" | ".join(str(r.get(c, "")) for c in cols[:3]) + " | " + r["error"], flush=True)
+            return
+        print(" | ".join(f"{r.get(c):.4g}" if isinstance(r.get(c), float) else str(r.get(c, "")) for c in cols),
+              flush=True)
+
     def show(rows):
         print(" | ".join(cols))
         for r in rows:
-            print(" | ".join(f"{r.get(c):.4g}" if isinstance(r.get(c), float) else str(r.get(c, r.get("error", "")))
-                             for c in cols))
+            show_row(r)
 
     print(f"chains {args.chains} × ({args.warmup} warmup + {args.draws} draws), 2 cores, float64")
     if "a" in args.parts:
@@ -674,8 +717,11 @@ def main():
         show(rows)
     if "b" in args.parts:
         print("\n(b) scaling")
-        rows = [call("--one", str(n), k, reg) for n in sizes for k in args.kernels for reg in ("weak", "strong")]
-        show(rows)
+        print(" | ".join(cols), flush=True)
+        for n in sizes:  # each row as its run ends (the whole part takes most of an hour)
+            for k in args.kernels:
+                for reg in ("weak", "strong"):
+                    show_row(call("--one", str(n), k, reg))
     if "c" in args.parts:
         print("\n(c) 1× vs 10× scans (32², Matérn 3/2, the same detections per scan: "
               f"{REGIMES['weak']} and {REGIMES['weak10']} per cell in total)")
