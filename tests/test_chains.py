@@ -313,18 +313,24 @@ def _funnel():
     numpyro.sample("x", dist.Normal(0.0, jnp.exp(v / 2.0)).expand([6]).to_event(1))
 
 
-def test_thinned_draws_count_every_divergence():
+@pytest.mark.parametrize("draws", [400, 402])
+def test_thinned_draws_count_every_divergence(draws):
     """With thinning n, each kept draw is the last of a block of n transitions (numpyro's
-    fori_collect), and its ``diverging`` is the OR of the block's: checked against the same
-    chains unthinned (same keys, so the same transitions)."""
+    fori_collect, whose blocks start after the first draws mod n transitions), and its
+    ``diverging`` is the OR of the block's — the first block also takes the transitions before
+    it: checked against the same chains unthinned (same keys, so the same transitions)."""
     smp = _Sampler()
-    smp.chains, smp.warmup, smp.draws = 2, 150, 400
+    smp.chains, smp.warmup, smp.draws = 2, 150, draws
+    n, head = 4, draws % 4
     full = inference.run_nuts(_funnel, {}, smp, progress=False)
-    thin = inference.run_nuts(_funnel, {}, smp, progress=False, thinning=4)
+    thin = inference.run_nuts(_funnel, {}, smp, progress=False, thinning=n)
     v_full, v_thin = np.asarray(full.posterior["v"]), np.asarray(thin.posterior["v"])
     assert v_thin.shape == (2, 100)
-    np.testing.assert_allclose(v_thin, v_full[:, 3::4], rtol=0, atol=1e-6)  # the block's last transition
-    div = np.asarray(full.sample_stats["diverging"]).reshape(2, 100, 4)
+    np.testing.assert_allclose(v_thin, v_full[:, head + n - 1::n], rtol=0, atol=1e-6)  # each block's last
+    div = np.asarray(full.sample_stats["diverging"])
+    blocks = div[:, head:].reshape(2, 100, n)
+    want = blocks.any(-1)
+    want[:, 0] |= div[:, :head].any(-1)  # the transitions no slot keeps go to the first block
     assert div.sum() > 0
-    assert (div.any(-1) & ~div[..., -1]).any()  # blocks whose kept transition alone would miss it
-    np.testing.assert_array_equal(np.asarray(thin.sample_stats["diverging"]), div.any(-1))
+    assert (want & ~blocks[..., -1]).any()  # blocks whose kept transition alone would miss it
+    np.testing.assert_array_equal(np.asarray(thin.sample_stats["diverging"]), want)

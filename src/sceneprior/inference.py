@@ -277,7 +277,10 @@ def _sample(fn, inputs, key, kernel: dict, warmup, draws, thinning, exclude_site
     finished MCMC."""
     from numpyro.infer import MCMC
 
-    mcmc = MCMC(nuts_kernel(fn, kernel, thinning), num_warmup=warmup, num_samples=draws, num_chains=chains,
+    nuts = nuts_kernel(fn, kernel, thinning)
+    if thinning > 1:
+        nuts.for_draws(draws)
+    mcmc = MCMC(nuts, num_warmup=warmup, num_samples=draws, num_chains=chains,
                 chain_method=method,
                 progress_bar=progress, thinning=thinning)
     drop = tuple(f"~z.{name}" for name in exclude_sites)
@@ -316,9 +319,12 @@ def _tuned_nuts(base):
     the adapted step size stays in the state between transitions) —, ``extra_uturn_checks``
     — the trees of :mod:`sceneprior.nuts_tree` — and ``thinning``: the MCMC keeps every n-th
     draw, so the state's ``diverging`` flag is carried through each block of n sampling
-    transitions (an OR, reset at the block's first) and the kept draw — numpyro's
-    ``fori_collect`` keeps the block's last, slot (i − warmup) // n — records whether any of
-    them diverged. The flag is only read out, never by the sampler, so the draws are the same."""
+    transitions (an OR, reset at the block's first) and the kept draw records whether any of
+    them diverged. numpyro's ``fori_collect`` fills slot (k − h) // n with the block's last
+    transition, k the sampling transition and h = draws mod n (its start_idx = warmup + h), so
+    blocks start at k = h + j·n and the first also takes the h transitions before it, which
+    no slot keeps (``for_draws`` gives the kernel the draws). The flag is only read out,
+    never by the sampler, so the draws are the same."""
     if base in _TUNED:
         return _TUNED[base]
 
@@ -330,12 +336,18 @@ def _tuned_nuts(base):
             self._jitter = float(step_size_jitter)
             self._extra_checks = bool(extra_uturn_checks)
             self._thinning = int(thinning)
+            self._draws = 0
             self._warmup = 0
             super().__init__(*args, **kwargs)
 
         def init(self, rng_key, num_warmup, *args, **kwargs):
             self._warmup = int(num_warmup)
             return super().init(rng_key, num_warmup, *args, **kwargs)
+
+        def for_draws(self, draws: int):
+            """The number of sampling transitions (needed with ``thinning``: where blocks start)."""
+            self._draws = int(draws)
+            return self
 
         def sample(self, state, model_args, model_kwargs):
             import contextlib
@@ -360,8 +372,11 @@ def _tuned_nuts(base):
                 kept = jnp.where(state.i >= self._warmup, adapted, new.adapt_state.step_size)
                 new = new._replace(adapt_state=new.adapt_state._replace(step_size=kept))
             if self._thinning > 1:  # new.i − 1: this transition's 0-based index, warmup included
-                k = new.i - 1 - self._warmup
-                carry = (k > 0) & (k % self._thinning != 0)
+                n, head = self._thinning, self._draws % self._thinning
+                k = new.i - 1 - self._warmup  # sampling transition k (negative in warmup)
+                # kept blocks start at k = head + j·n; the first also takes the head's k < head
+                starts = (k >= head + n) & ((k - head) % n == 0)
+                carry = (k > 0) & ~starts
                 new = new._replace(diverging=new.diverging | (state.diverging & carry))
             return new
 
