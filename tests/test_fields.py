@@ -386,10 +386,12 @@ def test_aliased_eigenvalues_give_periodised_kernel(name):
 
 
 def test_wrap_error_is_the_periodised_kernels_distance_from_the_planar_one():
-    # The wrap error of the 2×-torus periodised spectrum at length scale ℓ, against the
-    # periodised kernel summed in space (Poisson summation, as above; squared exponential,
-    # whose alias sum kept, |q| <= 1, misses less than exp(-2π²ℓ²(1.5/h)²) ≈ 1e-38 of σ² at
-    # ℓ = 2h) minus the planar kernel, maximised over the grid's lags. Then the bisection for
+    # The wrap error (the torus images summed in space) at length scale ℓ against the
+    # periodised covariance the spectrum implies (Poisson summation, as above: the DFT of
+    # the aliased spectral density, |q| <= 3) minus the planar kernel, maximised over the
+    # grid's lags — the squared exponential, whose alias sum misses less than
+    # exp(-2π²ℓ²(3.5/h)²) of σ² at ℓ >= 2h. It grows with ℓ for every kernel (Matérn 1/2
+    # too, whose truncated alias sum would add a deficit at short ℓ). Then the bisection for
     # the longest length scale within a limit: it meets the limit, and 2 % more exceeds it.
     grid, spacing = (6, 5), (1.0, 1.0)
     torus = (12, 10)
@@ -398,13 +400,13 @@ def test_wrap_error_is_the_periodised_kernels_distance_from_the_planar_one():
     k0 = np.arange(grid[0])[:, None]
     k1 = np.arange(grid[1])[None, :]
     for ls in (2.0, 3.0, 4.5):
-        ref = np.zeros(grid)
-        for j0 in range(-6, 7):
-            for j1 in range(-6, 7):
-                r = np.hypot((k0 + j0 * torus[0]) * spacing[0], (k1 + j1 * torus[1]) * spacing[1])
-                ref += reference_kernel("squared_exponential", r, 1.0, ls)
-        want = np.abs(ref - reference_kernel("squared_exponential", np.hypot(k0, k1), 1.0, ls)).max()
-        assert spe.wrap_error(spec, [ls, ls]) == pytest.approx(want, abs=1e-12)
+        row = np.fft.irfft2(np.asarray(spe.aliased_eigenvalues(geom, np.array([ls, ls]), 1.0, n_alias=3)), s=torus)
+        want = np.abs(row[: grid[0], : grid[1]] - reference_kernel("squared_exponential", np.hypot(k0, k1), 1.0, ls)).max()
+        assert spe.wrap_error(spec, [ls, ls]) == pytest.approx(want, abs=1e-10)
+    for name in KERNELS:
+        g = spe.Spectrum(emb.TorusGeometry(name, grid, spacing, torus), "periodised")
+        errs = [spe.wrap_error(g, [ls, ls]) for ls in (0.5, 1.0, 2.0, 3.0, 4.5, 6.0)]
+        assert np.all(np.diff(errs) > 0), (name, errs)
     lo2, hi2 = np.array([2.0, 2.0]), np.array([6.0, 6.0])
     assert spe.wrap_error(spec, hi2) > 0.1
     fits = spe.longest_within_wrap(spec, lo2, hi2, 0.1)

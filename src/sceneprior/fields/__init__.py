@@ -17,7 +17,8 @@ from sceneprior.fields.embedding import (
     validate_embedding,
 )
 from sceneprior.fields.kernels import KERNEL_NAMES, anisotropic_kernel, get_kernel
-from sceneprior.fields.spectral import Spectrum, aliased_eigenvalues, periodised_report
+from sceneprior.fields.spectral import (WRAP_LIMIT, WRAP_NOTE, Spectrum, aliased_eigenvalues, longest_within_wrap,
+                                        periodised_report, wrap_error)
 
 __all__ = [
     "KERNEL_NAMES",
@@ -33,4 +34,8 @@ __all__ = [
     "Spectrum",
     "aliased_eigenvalues",
     "periodised_report",
+    "wrap_error",
+    "longest_within_wrap",
+    "WRAP_NOTE",
+    "WRAP_LIMIT",
 ]

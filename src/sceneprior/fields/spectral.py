@@ -38,14 +38,14 @@ __all__ = ["Spectrum", "aliased_eigenvalues", "periodised_report", "wrap_error",
 #: alias terms per side of the periodised spectrum used by the model (3 × 3 terms)
 N_ALIAS = 1
 
-#: wrap errors (fractions of σ²) beyond which a fit notes (WRAP_NOTE) or refuses
-#: (WRAP_LIMIT) its prior's longest length scales (``models.lgcp.plan``): the periodised
-#: covariance is then a noticeably, or materially, different prior from the kernel asked
-#: for — a field with periodic boundaries. Our own limits, no published source. Measured
-#: (``wrap_error`` on 6²…64² grids, 2× torus): the default maximum, a quarter of the
-#: region's extent, gives at most 0.018 where the periodised spectrum is used (the minimum-
-#: image embedding, exact, serves Matérn 1/2 on coarse grids); half the extent gives
-#: 0.066–0.19; 0.625 of it 0.18–0.37; 0.75 of it 0.41–0.60; the whole extent above 1.
+#: wrap errors (fractions of σ², :func:`wrap_error`) beyond which a fit notes (WRAP_NOTE) or
+#: refuses (WRAP_LIMIT) its prior's longest length scales (``models.lgcp.plan``): the
+#: periodised covariance is then a noticeably, or materially, different prior from the
+#: kernel asked for — a field with periodic boundaries. Our own limits, no published
+#: source. Measured (``wrap_error`` on 6², 8², 16², 64² grids, 2× torus, every kernel): a
+#: maximum of a quarter of the region's extent (the default) gives at most 0.018 (Matérn 1/2
+#: at 64²); half the extent 0.066–0.19; 0.625 of it 0.18–0.37; 0.75 of it 0.41–0.60; the
+#: whole extent above 1.
 WRAP_NOTE = 0.05
 WRAP_LIMIT = 0.25
 
@@ -105,24 +105,32 @@ class Spectrum:
         return aliased_eigenvalues(self.geom, length_scales, variance)
 
 
-def wrap_error(spec: Spectrum, length_scales) -> float:
-    """Largest difference, as a fraction of σ², between the covariance the torus spectrum
-    implies and the planar kernel at ``length_scales`` (per axis), over the grid's lags."""
+def wrap_error(spec: Spectrum, length_scales, images: int = 3) -> float:
+    """The periodised kernel's departure from the planar one caused by the torus's period T
+    (per axis m·h): max over the grid's lags τ of Σ_{j ≠ 0} k(τ + j∘T), |j_a| ≤ ``images``,
+    as a fraction of σ², at ``length_scales`` (per axis) — summed in space (the periodised
+    row of the module docstring without its j = 0 term). It grows with the length scales
+    (every kernel here decreases with distance over ℓ), so a bisection can find the longest
+    within a limit. The alias sum's truncation is a separate figure (the variance deficit
+    of :func:`periodised_report`)."""
     geom = spec.geom
     n0, n1 = geom.grid_shape
-    h0, h1 = geom.spacing
-    ls = np.asarray(length_scales, float)
-    row = np.asarray(implied_first_row(np.asarray(spec.eigenvalues(ls, 1.0)), geom.torus_shape))
-    lags = ((h0 * np.arange(n0))[:, None], (h1 * np.arange(n1))[None, :])
-    planar = anisotropic_kernel(geom.kernel, lags, 1.0, ls)
-    return float(np.max(np.abs(row[:n0, :n1] - planar)))
+    (m0, m1), (h0, h1) = geom.torus_shape, geom.spacing
+    ls = np.resize(np.asarray(length_scales, float), 2)
+    i0 = (h0 * np.arange(n0))[:, None]
+    i1 = (h1 * np.arange(n1))[None, :]
+    total = np.zeros((n0, n1))
+    for j0 in range(-images, images + 1):
+        for j1 in range(-images, images + 1):
+            if j0 or j1:
+                total += anisotropic_kernel(geom.kernel, (np.abs(i0 + j0 * m0 * h0), np.abs(i1 + j1 * m1 * h1)), 1.0, ls)
+    return float(total.max())
 
 
-def longest_within_wrap(spec: Spectrum, lo2, hi2, limit: float, steps: int = 30):
-    """The largest length scales t·hi2 (one factor t ≤ 1 for both axes, t·hi2 ≥ lo2) whose wrap
-    error stays within ``limit``, by bisection on log t (the wrap error grows with the length
-    scale above the shortest ones, where the alias sum's deficit dominates it); None when even
-    the shortest, lo2, exceed the limit."""
+def longest_within_wrap(spec: Spectrum, lo2, hi2, limit: float, steps: int = 16):
+    """The largest length scales t·hi2 (one factor t ≤ 1 for both axes, t·hi2 ≥ lo2) whose
+    :func:`wrap_error` stays within ``limit``, by bisection on log t (about 4 significant
+    digits); None when even the shortest, lo2, exceed it."""
     lo2, hi2 = np.asarray(lo2, float), np.asarray(hi2, float)
     if wrap_error(spec, hi2) <= limit:
         return hi2
@@ -137,8 +145,9 @@ def longest_within_wrap(spec: Spectrum, lo2, hi2, limit: float, steps: int = 30)
 
 def periodised_report(spec: Spectrum, lo2, hi2) -> dict:
     """Wrap error of the periodised covariance against the planar kernel on grid lags (at
-    the largest length scales, :func:`wrap_error`), and the variance lost by truncating the
-    alias sum (at the shortest), both as fractions of σ²."""
+    the largest length scales, :func:`wrap_error`: the torus's images, without the alias
+    sum's truncation), and the variance lost by truncating the alias sum (at the shortest),
+    both as fractions of σ²."""
     geom = spec.geom
     n0, n1 = geom.grid_shape
     wrap = wrap_error(spec, hi2)

@@ -425,17 +425,19 @@ def wrap_advice(stats, spectrum, report, lo2, hi2, limit: float) -> str | None:
         return None
     polar = stats.grid.frame == "polar"
     keys = ("range_length_scale_max", "bearing_length_scale_max") if polar else ("length_scale_max",)
-    units = ("m", "°") if polar else ("m",)
-    asked = " and ".join(f"{k} {v:.4g} {u}" for k, v, u in zip(keys, hi2, units))
+    units = (" m", "°") if polar else (" m",)
+    asked = " and ".join(f"{k} {v:.4g}{u}" for k, v, u in zip(keys, hi2, units))
     fits = longest_within_wrap(spectrum, lo2, hi2, limit)
-    what = ("even the minimum length scales exceed that; lower the length_scale_min bounds or use a larger region"
-            if fits is None else "use " + " and ".join(f"{k} ≤ {v:.4g} {u}" for k, v, u in zip(keys, fits, units)))
+    if fits is not None and np.all(fits <= np.asarray(lo2) * 1.001):  # no room above the minimum
+        fits = None
+    what = ("even the minimum length scales reach it; lower the length_scale_min bounds as well, or fit a larger "
+            "region" if fits is None else "use " + " and ".join(f"{k} ≤ {v:.4g}{u}" for k, v, u in zip(keys, fits, units)))
     return (f"{asked}: on the padded torus (twice the grid) the field's covariance between cells differs from "
             f"the {spectrum.geom.kernel} kernel's by up to {report['wrap_error']:.3g}·σ² at these length scales (a "
             f"field with periodic boundaries); to keep it within {limit:g}·σ², {what}")
 
 
-def _note_wrap(advice: list, stats, spectrum, report, lo, hi) -> None:
+def note_wrap(advice: list, stats, spectrum, report, lo, hi) -> None:
     """A note before sampling above ``fields.spectral.WRAP_NOTE`` (refused above WRAP_LIMIT)."""
     text = wrap_advice(stats, spectrum, report, np.resize(lo, 2), np.resize(hi, 2), WRAP_NOTE)
     if text is not None:
@@ -878,7 +880,7 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None, start_sea
     if variance_kept != 1.0:
         spectrum, report, lo, hi, basis = truncated_plan(stats, kernel, prior, variance_kept)
         report["truncation"]["variance_kept_source"] = kept_source
-        _note_wrap(advice, stats, spectrum, report, lo, hi)
+        note_wrap(advice, stats, spectrum, report, lo, hi)
         pre, precond, mode_map = truncated_preconditioner(basis, counts_all, exposure_all, lo, hi,
                                                           prior["sigma_scale"], cell_term=dropped)
         cell_term = mode_map.pop("cell_term")
@@ -904,7 +906,7 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None, start_sea
             advice.append(f"model.dropped_modes = {dropped!r} has no effect here: every torus mode is kept "
                           "(model.variance_kept = 1)")
         spectrum, report, lo, hi = plan(stats, kernel, prior)
-        _note_wrap(advice, stats, spectrum, report, lo, hi)
+        note_wrap(advice, stats, spectrum, report, lo, hi)
         pre = build_preconditioner(spectrum, stats.grid.shape, counts_all, exposure_all,
                                    kernel, lo, hi, prior["sigma_scale"], use_pad=use_pad)
         kernels, precond, basis = FieldKernels(spectrum, pre.use_pad), pre.arrays(), None

@@ -310,6 +310,8 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None, start_sea
     counts, exposure = site_binned(stats, idx, S)
     kernel = model_spec.options.get("kernel", "matern32")
     spectrum, report, lo, hi = lgcp.plan(stats, kernel, prior)
+    advice = []  # lines the fit prints before sampling (lgcp.setup's)
+    lgcp.note_wrap(advice, stats, spectrum, report, lo, hi)
     pre, devs = _preconditioners(spectrum, stats, counts, exposure, kernel, lo, hi, prior, use_pad)
     dev_arrays = jax.tree.map(lambda *xs: jnp.stack(xs), *[d.arrays() for d in devs])
     kernels = SiteFieldKernels(spectrum, pre.use_pad, devs[0].use_pad)
@@ -336,7 +338,7 @@ def setup(stats, prior: dict, model_spec, use_pad: bool | None = None, start_sea
     extra = {
         "kernel": kernel, "geom": spectrum, "embedding": report, "preconditioner": pre,
         "dev_preconditioners": devs, "ls_bounds": {"min": lo.tolist(), "max": hi.tolist()},
-        "sites": sites, "site_index": idx, "site_scans": scans, "site_column": column,
+        "sites": sites, "site_index": idx, "site_scans": scans, "site_column": column, "advice": advice,
         "site_window_scans": exposure.sum(axis=1) / window_total if window_total > 0 else scans,
         "n_latent": (S + 1) * spectrum.geom.n_torus,
         "dense_mass": [("sigma", "sigma_dev", "ls_unit", "cv", "level", "u_soft", "dev_soft")],
