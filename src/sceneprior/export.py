@@ -48,7 +48,7 @@ import numpy as np
 
 from . import __version__
 from .errors import InputError
-from .results import CAUTION, DETECTION_SCHEMA, SUMMARY_SCHEMA, load_run, model_notes
+from .results import CAUTION, DETECTION_SCHEMA, SUMMARY_SCHEMA, extrapolation_note, load_run, model_notes
 
 TRACKER_SCHEMA = "sceneprior.tracker/1"
 SCHEMA_FILE = "tracker-1.schema.json"
@@ -363,11 +363,11 @@ def build_config(run, quantile: float | None = None, override_gate: bool = False
             "masked": masked.tolist(),
             "masked_note": "true: no area inside the window (permanent mask); values are null there. "
                            "A cell cut by a mask applies its value to its part inside the window only",
-            **({"extrapolated": (np.asarray(ds["extrapolated"].values, bool) & ~masked).tolist(),
-                "extrapolated_note": "true: inside the window but without exposure (gated out in every scan); "
-                                     "no detections could be seen there, so the value is the model's prediction "
-                                     "from neighbouring cells (an extrapolation), kept in the map"}
-               if "extrapolated" in ds else {}),
+            "extrapolated": ((np.asarray(ds["extrapolated"].values, bool) if "extrapolated" in ds
+                              else np.zeros((n0, n1), bool)) & ~masked).tolist(),
+            "extrapolated_note": ("true: inside the window but without exposure (gated out in every scan), so no "
+                                  "detection could be seen there: " + extrapolation_note(s["model"]["kind"])
+                                  + "; the value is kept in the map"),
         },
         "intensity": {"units": "m-2 scan-1", "values": _grid_list(lam, masked)},
         "density": {"units": "m-2", "values": _grid_list(density, masked)},

@@ -503,7 +503,8 @@ def _sites_html(s: dict, ds, grid, region, sites: list, cmap) -> str:
     vals = np.asarray(ds["site_intensity_mean"].values, float) * 1e6
     top = float(np.nanmax(vals[: len(shown)]))
     fig = _map_figure(grid, region, [(f"Site {name}, posterior mean", vals[j], cmap, "detections per km² per scan",
-                                      0.0, top) for j, name in enumerate(shown)])
+                                      0.0, top) for j, name in enumerate(shown)],
+                      extrapolated=np.asarray(ds["extrapolated"].values, bool) if "extrapolated" in ds else None)
     more = f" Only the first {SITE_PANELS} of {len(sites)} sites are drawn." if len(sites) > SITE_PANELS else ""
     cap = ("Each site's clutter intensity, per-cell posterior mean (per km² per scan), on one colour scale: the shared "
            "field plus the site's deviation at the site's baseline. A site with few detections is pulled toward the "
@@ -526,6 +527,7 @@ def build_report(run) -> str:
     """The report page (HTML text) of a loaded run."""
     from .export import run_geometry
     from .gate import check_run
+    from .results import extrapolation_note
 
     s = run.summary
     region, grid, w = run_geometry(run)
@@ -548,8 +550,8 @@ def build_report(run) -> str:
     cap = ("Per-cell posterior mean and standard deviation of the clutter intensity (per km² per scan; "
            "1 km² = 10⁶ m²). Hatched: permanent masks (no data, zero intensity in the export)."
            + (f" Dotted: {n_extra} cell{'s' if n_extra != 1 else ''} inside the window without exposure (covered "
-              "by gates in every scan): no data there, so the map extrapolates — the field predicts these cells "
-              "from their neighbours, and the export keeps their values." if n_extra else "")
+              f"by gates in every scan): no data there — {extrapolation_note(s['model']['kind'])}; the export "
+              "keeps their values and flags them." if n_extra else "")
            + (" The model is uniform, so both maps are flat over the window." if uniform else ""))
     sites = [str(x) for x in ds["site"].values] if "site_intensity_mean" in ds else []
     if sites:
@@ -569,7 +571,8 @@ def build_report(run) -> str:
                       for i, c in enumerate(np.asarray(da[extra[0]].values)[:3])]
         for title, vals in layers:
             f = _map_figure(grid, region, [(title, vals, cm_prob, "probability", 0.0, 1.0)], extrapolated=extrapolated)
-            parts.append(_fig_html(_png(f), title, f"Exceedance probability ({esc(str(da.attrs.get('long_name', v)))})."))
+            parts.append(_fig_html(_png(f), title, f"Exceedance probability ({esc(str(da.attrs.get('long_name', v)))})."
+                                   + (" Dotted: cells without exposure, as above." if n_extra else "")))
     if not exc:
         parts.append('<p class="note">No exceedance map: this run\'s intensity.nc holds no exceedance '
                      "probabilities (the model kind writes them when thresholds are named in the spec).</p>")

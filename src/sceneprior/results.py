@@ -36,6 +36,13 @@ def _interval(draws: np.ndarray) -> dict:
             "q50": float(q[1]), "q95": float(q[2])}
 
 
+def extrapolation_note(kind: str) -> str:
+    """What a cell without exposure (no data of its own) gets from model ``kind``."""
+    if kind.startswith("lgcp"):
+        return "its intensity is the field's prediction from neighbouring cells (an extrapolation)"
+    return f"its intensity comes from the {kind} model's fitted form alone (an extrapolation)"
+
+
 def intensity_dataset(result):
     """xarray Dataset of per-cell posterior summaries of the intensity (CF-style attributes).
 
@@ -89,7 +96,7 @@ def intensity_dataset(result):
     if result.stats.exposure.size and (unobserved := (stats.exposure <= 0) & ~outside).any():
         data_vars["extrapolated"] = ((a0, a1), unobserved.reshape(n0, n1).astype(np.int8),
                                      {"units": "1", "long_name": "1 where the cell has window area but "
-                                      "no exposure: its intensity is predicted from neighbours"})
+                                      "no exposure: " + extrapolation_note(result.model.name)})
     if result.model.site_cell_intensity is not None:
         _add_site_maps(result, data_vars, coords, outside)
     data_vars["counts"] = ((a0, a1), stats.counts.reshape(n0, n1),
