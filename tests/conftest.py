@@ -35,8 +35,10 @@ SHARED_FIXTURE_FILES = {"test_demo": "demo_run", "test_export": "demo_run", "tes
 #: 22.6 s summed over its four tests in a later `pytest -n0 tests/test_cell_term.py
 #: --durations=5` (fifteenth session; 30.5 s for its first test alone in that session's CI);
 #: 23.4 s for its five tests in the sixteenth session's `pytest -n0 tests/test_cell_term.py`.
-SCOPE_SECONDS = {"test_lgcp_sites": 142, "test_lgcp": 138, "test_truncation": 300, "rain_runs": 84,
-                 "test_chains": 70, "demo_run": 70, "test_mixture": 52, "test_detection": 34,
+#: Seventeenth session: test_lgcp + 15 s (the extrapolated-cell fit, 14.7 s alone), test_chains
+#: + 12.6 s (the thinned-divergence tests, 8.8 + 3.8 s alone).
+SCOPE_SECONDS = {"test_lgcp_sites": 142, "test_lgcp": 153, "test_truncation": 300, "rain_runs": 84,
+                 "test_chains": 83, "demo_run": 70, "test_mixture": 52, "test_detection": 34,
                  "test_birth": 28, "test_compare": 19, "test_gates": 14, "test_nuts_tree": 14,
                  "test_objects": 10, "test_fields": 10, "test_cell_term": 23, "test_uniform": 10, "test_loglinear": 7}
 
@@ -407,8 +409,9 @@ def batched_nuts(model, inputs: dict, dense_mass, keep, warmup: int, draws: int,
 def check_sbc(draws, truths, names, thin_to: int = 19, bins: int = 5, alpha: float = 0.01, shift: float = 1.0):
     """Simulation-based calibration (Talts et al. 2018): per replication r, the rank of the
     true value among ``thin_to`` evenly spaced posterior draws of ``draws[r]`` (n_draws,
-    n_quantities; one chain) must be uniform on {0, …, thin_to}, with thin_to at most the
-    draws' bulk ESS (arviz) in 90 % of the replications per quantity; tested per quantity with
+    n_quantities; one chain) must be uniform on {0, …, thin_to}, with thin_to at most half the
+    draws' median bulk ESS (arviz) per quantity (and 4/3 of it in 90 % of the replications);
+    tested per quantity with
     scipy.stats.chisquare over ``bins`` equal groups of ranks at a Bonferroni level
     alpha / n_quantities. Negative control: the same test on truths moved by ``shift``
     posterior sd (per replication) must reject for every quantity, or the check has no
@@ -428,16 +431,17 @@ def check_sbc(draws, truths, names, thin_to: int = 19, bins: int = 5, alpha: flo
             out[r] = (d[idx] < (np.asarray(t, float) + offset * d.std(axis=0))[None, :]).sum(axis=0)
         return out
 
-    # thinned to about the effective sample size: the thin_to kept draws are no more than
-    # the bulk ESS (arviz) of the replication's draws in at least 90 % of the replications,
-    # per quantity. Measured, 100 replications each, 19 kept of 200: tests/test_lgcp.py's
-    # SBC 10th percentiles 20.7 (σ) to 164 (μ), medians 58–288; the truncated-field SBCs of
-    # tests/test_truncation.py 10th percentiles 59–200, medians 106–336
+    # thinned to about the effective sample size: per quantity, the thin_to kept draws are at
+    # most half the median bulk ESS (arviz) over the replications, and at most 4/3 of it in
+    # 90 % of them. Measured, 100 replications each, 19 kept of 200: tests/test_lgcp.py's SBC
+    # medians 58 (σ) to 288, 10th percentiles 20.7 (σ) to 164; the truncated-field SBCs of
+    # tests/test_truncation.py medians 106–336, 10th percentiles 59–200
     import arviz as az
 
     ess = np.array([[float(az.ess(np.asarray(d, float)[None, :, j])) for j in range(len(names))] for d in draws])
     for j, name in enumerate(names):
-        assert np.quantile(ess[:, j], 0.1) >= thin_to, (name, "thinned beyond the ESS", np.quantile(ess[:, j], 0.1))
+        med, low = np.median(ess[:, j]), np.quantile(ess[:, j], 0.1)
+        assert med >= 2 * thin_to and low >= 0.75 * thin_to, (name, "thinned beyond the ESS", med, low)
     level = alpha / len(names)
     calibrated, moved = ranks(0.0), ranks(shift)
     for j, name in enumerate(names):
