@@ -26,9 +26,9 @@ Usage:
     python bench/bench_lgcp.py --sizes 32 64 --kernels matern32 --chains 4 --warmup 1000 --draws 1000
     python bench/bench_lgcp.py --one 32 matern32 weak10 --scans 1000 --warmup-steps --seeds 1 2
                                                # warmup's leapfrog steps per 100 iterations
-    python bench/bench_lgcp.py --parts abc --variance-kept recommended
-                                               # the README's tables in one run (each size and
-                                               # kernel at the setting recommended for it)
+    python bench/bench_lgcp.py --parts bc --variance-kept recommended --row-limit-s 900
+                                               # the README's (b) and (c) tables in one run (each
+                                               # size and kernel at the setting recommended for it)
 
 Every configuration takes ``--variance-kept Q`` (spectral truncation, model option
 variance_kept: the Fourier modes carrying the fraction Q of the prior variance at the
