@@ -33,8 +33,9 @@ Usage:
 Every configuration takes ``--variance-kept Q`` (spectral truncation, model option
 variance_kept: the Fourier modes carrying the fraction Q of the prior variance at the
 shortest length scale; 1 = every torus mode; ``recommended``: per configuration, as
-``recommended_variance_kept``); the rows print the latent dimension and the kept fraction. Wall times are production layouts (``inference.chain_layout``), and
-the kept per-cell draws are thinned to the default budget as ``sceneprior fit`` does.
+``recommended_variance_kept``); the rows print the latent dimension and the kept fraction.
+Wall times are production layouts (``inference.chain_layout``), and the kept per-cell
+draws are thinned to the default budget as ``sceneprior fit`` does.
 
 Data are simulated from the model's own prior-shaped field (our own numbers) on a
 Cartesian box of side 1000 m (``--field-seed``, with --one; 0 otherwise). Every fit row
@@ -668,7 +669,8 @@ def main():
             out = subprocess.run(cmd, capture_output=True, text=True, timeout=args.row_limit_s)
         except subprocess.TimeoutExpired:
             out = None
-        which = dict(zip(("cells", "kernel", "regime"), (f"{extra[1]}²",) + tuple(extra[2:4]))) if extra[:1] == ("--one",) else {}
+        which = ({"cells": f"{extra[1]}²", "kernel": extra[2], "regime": extra[3]} if extra[:1] == ("--one",)
+                 else {})
         if out is None:
             return {**which, "error": f"stopped after {args.row_limit_s:g} s (--row-limit-s)"}
         line = [ln for ln in out.stdout.splitlines() if ln.startswith("{")]

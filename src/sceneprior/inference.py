@@ -252,12 +252,12 @@ def nuts_kernel_options(dense_mass=False, init_strategy=None, warmup_tree_depth:
             "target_accept": float(target_accept)}
 
 
-def nuts_kernel(fn, kernel: dict, thinning: int = 1):
+def nuts_kernel(fn, kernel: dict, thinning: int = 1, draws: int = 0):
     """numpyro's NUTS for ``fn`` with the options bundle of :func:`nuts_kernel_options`
     (numpyro takes (warmup, sampling) tree depths, and it fills in the mass matrix dict it is
-    given, so it gets a copy). ``thinning`` > 1: the MCMC keeps every n-th draw, and each kept
-    draw's ``diverging`` says whether any transition since the previous kept draw diverged
-    (``_tuned_nuts``), so that no divergence goes uncounted."""
+    given, so it gets a copy). ``thinning`` > 1: the MCMC keeps every n-th of its ``draws``,
+    and each kept draw's ``diverging`` says whether any transition since the previous kept
+    draw diverged (``_tuned_nuts``), so that no divergence goes uncounted."""
     import jax.numpy as jnp
     from numpyro.infer import NUTS
 
@@ -266,7 +266,7 @@ def nuts_kernel(fn, kernel: dict, thinning: int = 1):
     start = None if imm is None else {k: jnp.asarray(v) for k, v in imm.items()}
     tuned = {k: kernel[k] for k in ("step_size_jitter", "extra_uturn_checks") if kernel[k]}
     if thinning > 1:
-        tuned["thinning"] = int(thinning)
+        tuned.update(thinning=int(thinning), draws=int(draws))
     cls = _tuned_nuts(NUTS) if tuned else NUTS
     return cls(fn, dense_mass=kernel["dense_mass"], init_strategy=kernel["init_strategy"], max_tree_depth=depth,
                inverse_mass_matrix=start, target_accept_prob=kernel["target_accept"], **tuned)
@@ -277,10 +277,7 @@ def _sample(fn, inputs, key, kernel: dict, warmup, draws, thinning, exclude_site
     finished MCMC."""
     from numpyro.infer import MCMC
 
-    nuts = nuts_kernel(fn, kernel, thinning)
-    if thinning > 1:
-        nuts.for_draws(draws)
-    mcmc = MCMC(nuts, num_warmup=warmup, num_samples=draws, num_chains=chains,
+    mcmc = MCMC(nuts_kernel(fn, kernel, thinning, draws), num_warmup=warmup, num_samples=draws, num_chains=chains,
                 chain_method=method,
                 progress_bar=progress, thinning=thinning)
     drop = tuple(f"~z.{name}" for name in exclude_sites)
@@ -323,31 +320,26 @@ def _tuned_nuts(base):
     them diverged. numpyro's ``fori_collect`` fills slot (k − h) // n with the block's last
     transition, k the sampling transition and h = draws mod n (its start_idx = warmup + h), so
     blocks start at k = h + j·n and the first also takes the h transitions before it, which
-    no slot keeps (``for_draws`` gives the kernel the draws). The flag is only read out,
+    no slot keeps (``draws``: the MCMC's sampling transitions). The flag is only read out,
     never by the sampler, so the draws are the same."""
     if base in _TUNED:
         return _TUNED[base]
 
     class TunedNUTS(base):
         def __init__(self, *args, step_size_jitter: float = 0.0, extra_uturn_checks: bool = False,
-                     thinning: int = 1, **kwargs):
+                     thinning: int = 1, draws: int = 0, **kwargs):
             if not 0.0 <= step_size_jitter < 1.0:
                 raise ValueError(f"step_size_jitter must be in [0, 1), got {step_size_jitter}")
             self._jitter = float(step_size_jitter)
             self._extra_checks = bool(extra_uturn_checks)
             self._thinning = int(thinning)
-            self._draws = 0
+            self._draws = int(draws)
             self._warmup = 0
             super().__init__(*args, **kwargs)
 
         def init(self, rng_key, num_warmup, *args, **kwargs):
             self._warmup = int(num_warmup)
             return super().init(rng_key, num_warmup, *args, **kwargs)
-
-        def for_draws(self, draws: int):
-            """The number of sampling transitions (needed with ``thinning``: where blocks start)."""
-            self._draws = int(draws)
-            return self
 
         def sample(self, state, model_args, model_kwargs):
             import contextlib

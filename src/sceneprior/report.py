@@ -98,10 +98,21 @@ def _mesh(grid, values):
     return X, Y, np.repeat(values, m, axis=1)
 
 
+def _sector_outline(r0, r1, b0, b1, points: int) -> np.ndarray:
+    """x/y vertices [m] of the annular sector r0…r1 m, bearings b0…b1 degrees: the outer arc
+    (``points`` points) and the inner arc back."""
+    from .geometry import polar_to_cartesian
+
+    bb = np.linspace(b0, b1, points)
+    xo, yo = polar_to_cartesian(np.full_like(bb, r1), bb)
+    xi, yi = polar_to_cartesian(np.full_like(bb, r0), bb[::-1])
+    return np.column_stack([np.concatenate([xo, xi]), np.concatenate([yo, yi])])
+
+
 def _mask_patches(ax, region):
     from matplotlib.patches import Polygon
 
-    from .geometry import PolygonMask, polar_to_cartesian
+    from .geometry import PolygonMask
 
     for mk in region.masks:
         if isinstance(mk, PolygonMask):
@@ -116,10 +127,7 @@ def _mask_patches(ax, region):
             b1 = min(mk.bearing[1], region.bounds1[1])
             if not (r1 > r0 and b1 > b0):
                 continue
-            bb = np.linspace(b0, b1, 60)
-            xo, yo = polar_to_cartesian(np.full_like(bb, r1), bb)
-            xi, yi = polar_to_cartesian(np.full_like(bb, r0), bb[::-1])
-            verts = np.column_stack([np.concatenate([xo, xi]), np.concatenate([yo, yi])])
+            verts = _sector_outline(r0, r1, b0, b1, 60)
         ax.add_patch(Polygon(verts, closed=True, facecolor=(0.55, 0.52, 0.47, 0.25), edgecolor=INK,
                              hatch="xx", linewidth=0.6, label=f"masked: {mk.name or 'mask'}"))
 
@@ -144,8 +152,6 @@ def _outline(ax, region):
 def _cell_polygons(grid, cells):
     """x/y outlines [m] of the grid's cells at flat indices ``cells`` (polar cells with their
     arcs subdivided, as :func:`_mesh` draws them)."""
-    from .geometry import polar_to_cartesian
-
     n1 = len(grid.edges1) - 1
     out = []
     for c in cells:
@@ -154,10 +160,7 @@ def _cell_polygons(grid, cells):
         if grid.frame == "cartesian":
             out.append(np.array([[a0, b0], [a1, b0], [a1, b1], [a0, b1]]))
             continue
-        bb = np.linspace(b0, b1, max(2, int(math.ceil(b1 - b0)) + 1))
-        xo, yo = polar_to_cartesian(np.full_like(bb, a1), bb)
-        xi, yi = polar_to_cartesian(np.full_like(bb, a0), bb[::-1])
-        out.append(np.column_stack([np.concatenate([xo, xi]), np.concatenate([yo, yi])]))
+        out.append(_sector_outline(a0, a1, b0, b1, max(2, int(math.ceil(b1 - b0)) + 1)))
     return out
 
 
@@ -495,7 +498,7 @@ def _num(v, fmt=".4g"):
 SITE_PANELS = 6  # site maps drawn per report (the first ones, in the run's site order)
 
 
-def _sites_html(s: dict, ds, grid, region, sites: list, cmap) -> str:
+def _sites_html(s: dict, ds, grid, region, sites: list, cmap, extrapolated=None) -> str:
     """The per-site section of a run with a map per site: each site's posterior mean map on a
     common colour scale (the first SITE_PANELS sites) and a table of the sites' rates."""
     esc = html.escape
@@ -503,8 +506,7 @@ def _sites_html(s: dict, ds, grid, region, sites: list, cmap) -> str:
     vals = np.asarray(ds["site_intensity_mean"].values, float) * 1e6
     top = float(np.nanmax(vals[: len(shown)]))
     fig = _map_figure(grid, region, [(f"Site {name}, posterior mean", vals[j], cmap, "detections per km² per scan",
-                                      0.0, top) for j, name in enumerate(shown)],
-                      extrapolated=np.asarray(ds["extrapolated"].values, bool) if "extrapolated" in ds else None)
+                                      0.0, top) for j, name in enumerate(shown)], extrapolated=extrapolated)
     more = f" Only the first {SITE_PANELS} of {len(sites)} sites are drawn." if len(sites) > SITE_PANELS else ""
     cap = ("Each site's clutter intensity, per-cell posterior mean (per km² per scan), on one colour scale: the shared "
            "field plus the site's deviation at the site's baseline. A site with few detections is pulled toward the "
@@ -559,7 +561,7 @@ def build_report(run) -> str:
                 "field, no site deviation); each site's own map follows.")
     parts.append(f"<section><h2>Where the clutter is</h2>{_fig_html(_png(fig), 'intensity maps', cap)}")
     if sites:
-        parts.append(_sites_html(s, ds, grid, region, sites, cm_mean))
+        parts.append(_sites_html(s, ds, grid, region, sites, cm_mean, extrapolated))
     exc = [v for v in ds.data_vars if "exceed" in v.lower()]
     for v in exc[:3]:
         da = ds[v]

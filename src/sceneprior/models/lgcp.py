@@ -848,7 +848,8 @@ def size_quadrature(inputs: dict, start_sites: dict, sigma: float, ls, v_pilot: 
     # the Laplace expansion only up to the largest variance it was measured at
     bound = {"laplace_up_to_variance": max(variances), "above_it": rule_name(GH_NODES)} if nodes == LAPLACE else {}
     return nodes, {"nodes": nodes, "quadrature": rule_name(nodes), **bound, "table_nodes": table,
-                   "term_variances": variances, "within_budget": within, "summed_error_nats_by_nodes": {str(k): e for k, e in tried.items()},
+                   "term_variances": variances, "within_budget": within,
+                   "summed_error_nats_by_nodes": {str(k): e for k, e in tried.items()},
                    "rule": (f"the cheapest rule — the second-order Laplace expansion (nodes {LAPLACE}), then the "
                             f"fewest Gauss–Hermite nodes — whose error against a {REFERENCE_NODES}-node rule, summed "
                             "over the exposed "
